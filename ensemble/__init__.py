@@ -1,0 +1,19 @@
+"""Batch ensemble runner for epidemic compartment models.
+
+The pipeline, one module a stage::
+
+    scenario file -> ensemble.scenario (validated, frozen dataclasses)
+                  -> ensemble.model     (compiled right-hand side and Jacobian)
+                  -> ensemble.sampling  (parameter design, draws per member)
+                  -> ensemble.integrate (fixed-step integration of a chunk, step check)
+                  -> ensemble.output    (CF result dataset, streaming writer, summaries)
+
+``ensemble.api`` is what notebooks and the command line call.
+"""
+
+__version__ = "0.1.0"
+
+CAUTION = (
+    "Model projections inform, and never replace, the guidance of the public-health "
+    "authority responsible for the population."
+)

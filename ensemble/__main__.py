@@ -1,0 +1,5 @@
+"""``python -m ensemble``: the same as the ``ensemble`` console script."""
+
+from ensemble.cli import main
+
+main()

@@ -1,0 +1,286 @@
+"""The validated scenario: frozen dataclasses, one per table of the scenario file.
+
+Everything here has already been checked by :mod:`ensemble.scenario.load`; later stages
+may trust it.  Times are :class:`fractions.Fraction` so that the whole-multiple rules
+(``days`` a multiple of ``report_every``, schedule days on the step grid) are exact.
+Mappings are read-only (:class:`types.MappingProxyType`) and keep the file's order.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from datetime import date
+from fractions import Fraction
+from typing import Literal, Union
+
+from ensemble.scenario.expressions import Node
+
+Shape = Literal["scalar", "vector", "matrix"]
+"""Kind of value an expression or parameter has: a number, a vector over groups, or a
+G x G matrix."""
+
+
+@dataclass(frozen=True)
+class Expression:
+    """An expression from the scenario file, parsed and checked.
+
+    Attributes
+    ----------
+    text : the text as written.
+    tree : the parsed tree (:mod:`ensemble.scenario.expressions`).
+    key : key path it came from, e.g. ``model.flows[0].rate``.
+    shape : what it evaluates to.
+    names : every name it uses, directly.
+    """
+
+    text: str
+    tree: Node
+    key: str
+    shape: Shape
+    names: frozenset[str]
+
+
+# ----------------------------------------------------------------------------- model
+
+
+@dataclass(frozen=True)
+class Rest:
+    """Marker for the one compartment that takes what is left of the population."""
+
+
+InitialValue = Union[Rest, float, tuple[float, ...], Expression]
+"""An initial count: ``"rest"``, a number, one number per group, or an expression of
+parameters (scalar, or a vector over groups)."""
+
+Matrix = tuple[tuple[float, ...], ...]
+"""A G x G matrix of numbers, row-major."""
+
+
+@dataclass(frozen=True)
+class Flow:
+    """Persons per day moved from ``source`` to ``target``.
+
+    ``source`` is None for an inflow from outside (births), ``target`` None for an
+    outflow (deaths).  ``rate`` is the total over the group or population, not per capita.
+    """
+
+    name: str
+    source: str | None
+    target: str | None
+    rate: Expression
+
+
+@dataclass(frozen=True)
+class Model:
+    """The compartments, their strata, and the flows between them.
+
+    ``population`` has one entry per group (a single entry without groups).
+    ``initial`` lists every compartment in ``compartments`` order; an omitted one is 0.0.
+    """
+
+    compartments: tuple[str, ...]
+    groups: tuple[str, ...] | None
+    population: tuple[float, ...]
+    initial: Mapping[str, InitialValue]
+    exclude_from_N: tuple[str, ...]
+    flows: tuple[Flow, ...]
+    matrices: Mapping[str, Matrix]
+
+    @property
+    def n_groups(self) -> int:
+        """Number of strata (1 for a model without groups)."""
+        return len(self.groups) if self.groups else 1
+
+
+# ------------------------------------------------------------------------ parameters
+
+
+@dataclass(frozen=True)
+class Fixed:
+    """A known value: a number, or one number per group."""
+
+    value: float | tuple[float, ...]
+
+
+@dataclass(frozen=True)
+class Distribution:
+    """A value drawn once per member (once per member and group with ``per_group``).
+
+    ``family`` is one of ``fixed uniform normal lognormal gamma beta triangular choice``.
+    ``arguments`` holds the family's keys as written (``low``/``high`` for uniform,
+    ``mean``/``sd``, ``low``/``mode``/``high``, ``value``); ``truncation`` the optional
+    (low, high) of normal, lognormal and gamma (None where open).  For ``choice``,
+    ``values`` and normalised ``weights``.
+    """
+
+    family: str
+    arguments: Mapping[str, float]
+    truncation: tuple[float | None, float | None] = (None, None)
+    values: tuple[float, ...] = ()
+    weights: tuple[float, ...] = ()
+    per_group: bool = False
+
+
+@dataclass(frozen=True)
+class Derived:
+    """An expression of other parameters, evaluated per member after sampling."""
+
+    expression: Expression
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """A function of time given at knots.
+
+    ``days`` strictly increase and lie on the step grid.  ``values`` are numbers or
+    expressions of parameters, one per knot.  ``between`` is ``"step"`` (a value holds on
+    [day, next day)) or ``"linear"``.  Before the first day the first value holds; after
+    the last, the last.
+    """
+
+    days: tuple[Fraction, ...]
+    values: tuple[float | Expression, ...]
+    between: Literal["step", "linear"] = "step"
+
+
+ParameterForm = Union[Fixed, Distribution, Derived, Schedule]
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One named parameter: its form, shape, and the optional units and description."""
+
+    name: str
+    form: ParameterForm
+    shape: Shape
+    units: str | None = None
+    description: str | None = None
+
+
+@dataclass(frozen=True)
+class Variant:
+    """One scenario variant: overrides of parameters and matrices."""
+
+    name: str
+    title: str | None
+    parameters: Mapping[str, Parameter]
+    matrices: Mapping[str, Matrix]
+
+
+# -------------------------------------------------------------------- solver and I/O
+
+
+@dataclass(frozen=True)
+class StepCheck:
+    """The per-member step-refinement check (SPEC section 1, ``[solver] check``)."""
+
+    refine: int = 2
+    levels: int = 2
+    rtol: float = 1e-3
+    atol: float = 0.01
+    enabled: bool = True
+
+
+@dataclass(frozen=True)
+class Newton:
+    """Newton iteration settings for the implicit methods.
+
+    ``tol`` is the max-norm of the Newton update in persons, already resolved to its
+    default max(1e-3 * atol, 1e-12 * population) by the loader.
+    """
+
+    tol: float
+    max_iter: int = 20
+
+
+@dataclass(frozen=True)
+class Solver:
+    """Fixed-step integration settings.  ``step`` and ``report_every`` are days."""
+
+    method: Literal["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
+    step: Fraction
+    report_every: Fraction
+    check: StepCheck
+    newton: Newton
+
+    @property
+    def steps_per_report(self) -> int:
+        """Whole number of steps between reports."""
+        return int(self.report_every / self.step)
+
+
+@dataclass(frozen=True)
+class Output:
+    """Where and what to write."""
+
+    path: str
+    quantiles: tuple[float, ...]
+    members: bool = True
+    compare_to: str | None = None
+    compression: int = 4
+
+
+@dataclass(frozen=True)
+class Compute:
+    """How to distribute the work; none of it changes a single number of the result."""
+
+    chunk: int | None = None
+    workers: int | None = None
+    cluster: str | None = None
+    address: str | None = None
+
+
+@dataclass(frozen=True)
+class Source:
+    """The scenario file as read: its path (as given) and full text."""
+
+    path: str
+    text: str
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A validated scenario file.
+
+    ``parameters`` are the base parameters in file order; ``variants`` is never empty
+    (a file without variants has one named ``baseline``).
+    """
+
+    name: str
+    title: str | None
+    description: str | None
+    start: date | None
+    days: Fraction
+    members: int
+    seed: int
+    model: Model
+    parameters: Mapping[str, Parameter]
+    sampling: Literal["random", "latin-hypercube", "sobol"]
+    variants: tuple[Variant, ...]
+    solver: Solver
+    output: Output
+    compute: Compute
+    source: Source
+
+    @property
+    def n_reports(self) -> int:
+        """Number of reported times, including t = 0."""
+        return int(self.days / self.solver.report_every) + 1
+
+    def report_times(self) -> list[Fraction]:
+        """Reported times k * report_every, k = 0 .. days / report_every, exactly."""
+        every = self.solver.report_every
+        return [k * every for k in range(self.n_reports)]
+
+    def variant_parameters(self, variant: Variant) -> Mapping[str, Parameter]:
+        """The base parameters with ``variant``'s overrides applied, in file order."""
+        merged = dict(self.parameters)
+        merged.update(variant.parameters)
+        return merged
+
+    def variant_matrices(self, variant: Variant) -> Mapping[str, Matrix]:
+        """The model's matrices with ``variant``'s overrides applied."""
+        merged = dict(self.model.matrices)
+        merged.update(variant.matrices)
+        return merged
