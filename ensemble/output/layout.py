@@ -1,0 +1,133 @@
+"""What a result file looks like apart from its numbers: labels, times, parameters,
+provenance (:class:`ResultLayout`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Literal
+
+import numpy as np
+
+import ensemble
+from ensemble.model.compile import CompiledModel
+from ensemble.scenario.schema import Schedule, Scenario
+
+
+@dataclass(frozen=True)
+class ParameterInfo:
+    """A parameter reported per member as ``param_<name>``.
+
+    Attributes
+    ----------
+    shape : ``"scalar"`` -> (variant, member); ``"vector"`` -> (variant, member, group).
+    units, description : as given in the scenario file (None where absent).
+    """
+
+    shape: Literal["scalar", "vector"]
+    units: str | None = None
+    description: str | None = None
+
+
+@dataclass(frozen=True)
+class ResultLayout:
+    """Everything about a result file except the numbers.
+
+    Attributes
+    ----------
+    scenario : the validated scenario (title, start, quantiles, compression, the
+        ``members`` flag, ``compare_to``, the file's text for the ``scenario`` attribute).
+    variants : variant names, in file order (index = the variant index of a chunk key).
+    compartments, groups, flows : labels (``groups`` None without strata).
+    times : (n_reports,) float64 reported times in days since the start.
+    members : members per variant.
+    parameters : name -> :class:`ParameterInfo` for every parameter constant in time in
+        every variant (reported as ``param_<name>``), in file order.
+    time_varying_parameters : names of the parameters that follow a schedule in some
+        variant (global attribute ``time_varying_parameters``).
+    fingerprint : digest of everything that changes the numbers (checked on resume).
+    history : the command and time that made the file (global attribute ``history``).
+    source : program and version (global attribute ``source``).
+    """
+
+    scenario: Scenario
+    variants: tuple[str, ...]
+    compartments: tuple[str, ...]
+    groups: tuple[str, ...] | None
+    flows: tuple[str, ...]
+    times: np.ndarray
+    members: int
+    parameters: Mapping[str, ParameterInfo]
+    time_varying_parameters: tuple[str, ...]
+    fingerprint: str
+    history: str
+    source: str = f"ensemble {ensemble.__version__}"
+
+    @property
+    def n_groups(self) -> int:
+        """Number of strata (1 without groups)."""
+        return len(self.groups) if self.groups else 1
+
+    @property
+    def n_states(self) -> int:
+        """Rows of a chunk's ``state``: compartment-major, ``c * n_groups + g``."""
+        return len(self.compartments) * self.n_groups
+
+    @property
+    def n_flow_elements(self) -> int:
+        """Rows of a chunk's ``flow_count``: flow-major, ``f * n_groups + g``."""
+        return len(self.flows) * self.n_groups
+
+    @property
+    def n_reports(self) -> int:
+        """Number of reported times, including t = 0."""
+        return len(self.times)
+
+    @classmethod
+    def from_scenario(cls, scenario: Scenario, models: Sequence[CompiledModel],
+                      fingerprint: str, history: str) -> ResultLayout:
+        """The layout of ``scenario``'s result.
+
+        Parameters
+        ----------
+        scenario : the validated scenario, with command-line overrides applied.
+        models : one compiled model per variant, in ``scenario.variants`` order (their
+            labels must agree).
+        fingerprint, history : see the class attributes.
+        """
+        if len(models) != len(scenario.variants):
+            raise ValueError(f"{len(models)} compiled models for "
+                             f"{len(scenario.variants)} variants")
+        first = models[0]
+        for model in models[1:]:
+            if (model.compartments, model.groups, model.flows) != (
+                    first.compartments, first.groups, first.flows):
+                raise ValueError("compiled models of the variants disagree on labels")
+        per_variant = [scenario.variant_parameters(v) for v in scenario.variants]
+        names: list[str] = []
+        for merged in per_variant:
+            names.extend(n for n in merged if n not in names)
+        time_varying = tuple(n for n in names
+                             if any(isinstance(m[n].form, Schedule)
+                                    for m in per_variant if n in m))
+        parameters: dict[str, ParameterInfo] = {}
+        for name in names:
+            if name in time_varying:
+                continue
+            defined = [m[name] for m in per_variant if name in m]
+            shapes = {p.shape for p in defined}
+            if shapes - {"scalar", "vector"} or len(shapes) != 1:
+                continue
+            units = next((p.units for p in defined if p.units), None)
+            description = next((p.description for p in defined if p.description), None)
+            parameters[name] = ParameterInfo(shapes.pop(), units, description)
+        times = np.array([float(t) for t in scenario.report_times()], dtype=np.float64)
+        return cls(scenario=scenario,
+                   variants=tuple(v.name for v in scenario.variants),
+                   compartments=tuple(first.compartments), groups=first.groups,
+                   flows=tuple(first.flows), times=times, members=scenario.members,
+                   parameters=MappingProxyType(parameters),
+                   time_varying_parameters=time_varying,
+                   fingerprint=fingerprint, history=history)
