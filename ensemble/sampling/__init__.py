@@ -1,0 +1,12 @@
+"""Parameter design: uniform draws, distributions, derived values, initial states.
+
+- :mod:`~ensemble.sampling.uniform`: one uniform column per uncertain parameter element
+  (random, Latin hypercube, Sobol'), independent of chunking;
+- :mod:`~ensemble.sampling.distributions`: mean/sd conversions and inverse CDFs;
+- :mod:`~ensemble.sampling.evaluate`: numpy evaluation of vector-level expressions;
+- :mod:`~ensemble.sampling.design`: :class:`Design` and :func:`make_design`.
+"""
+
+from ensemble.sampling.design import Design, make_design, time_varying_parameters
+
+__all__ = ["Design", "make_design", "time_varying_parameters"]

@@ -1,0 +1,176 @@
+"""Uniform draws in (0, 1): one column per uncertain parameter element.
+
+A column is keyed by the parameter's name and element (``(name, g)``; element 0 for a
+scalar), never by variant, so a variant that overrides a distribution maps the same
+uniform draws (common random numbers).  Member i's draw depends on the scenario (seed,
+method, ``members``) and i only, never on which other members are asked for with it.
+
+- ``random``: column (name, g) is the PCG64 stream (O'Neill 2014, "PCG: A family of
+  simple fast space-efficient statistically good algorithms for random number
+  generation") seeded by ``SeedSequence([seed, tag, hash(name), g])``; member i takes
+  the stream's output i, reached with ``advance(i)`` in O(log i), so a chunk costs
+  O(chunk) whatever its position and raising ``members`` keeps every existing draw.
+- ``latin-hypercube``: column (name, g) is (perm_i + jitter_i) / members with its own
+  permutation and jitter (McKay, Beckman & Conover 1979, "A comparison of three methods
+  for selecting values of input variables in the analysis of output from a computer
+  code", Technometrics 21:239-245), so adding a parameter changes no other column.
+- ``sobol``: Sobol' points (Sobol' 1967, "On the distribution of points in a cube and the
+  approximate evaluation of integrals", USSR Comput. Math. Math. Phys. 7:86-112), scrambled
+  by :class:`scipy.stats.qmc.Sobol` (linear matrix scramble and digital shift), one
+  dimension per column of the union over all variants, in the file's parameter order, so
+  every variant sees the same points.  Each point is moved to the centre of its 2^-32
+  cell, which keeps the net's balance and keeps 0 out.
+"""
+
+from __future__ import annotations
+
+import functools
+import hashlib
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
+
+import numpy as np
+from scipy.stats import qmc
+
+from ensemble.scenario.schema import Distribution, Scenario
+from ensemble.sampling.distributions import needs_draw
+
+ColumnKey = tuple[str, int]
+"""(parameter name, element): element g of a per-group parameter, 0 for a scalar."""
+
+_STREAM_TAGS = {"random": 1, "latin-hypercube-permutation": 2, "latin-hypercube-jitter": 3,
+                "sobol": 4}
+"""Separate the seed spaces of the methods' streams."""
+
+SOBOL_BITS = 32
+"""Bits of the Sobol' points (at most 2^32 members; scipy's ``fast_forward`` handles
+at most 32)."""
+
+_PERMUTATION_CACHE_SIZE = 32
+"""Latin hypercube permutations kept per process (4 bytes per member each)."""
+
+
+def uncertain_columns(scenario: Scenario) -> tuple[ColumnKey, ...]:
+    """Every column any variant draws, in the file's parameter order.
+
+    A parameter has a column per element if the base scenario or any variant gives it a
+    distribution other than ``fixed``; ``per_group`` gives one per group.
+    """
+    columns: list[ColumnKey] = []
+    for name in scenario.parameters:
+        forms = [scenario.parameters[name].form]
+        forms += [v.parameters[name].form for v in scenario.variants if name in v.parameters]
+        drawn = [f for f in forms if isinstance(f, Distribution) and needs_draw(f)]
+        if not drawn:
+            continue
+        per_group = any(f.per_group for f in drawn)
+        elements = scenario.model.n_groups if per_group else 1
+        columns.extend((name, g) for g in range(elements))
+    return tuple(columns)
+
+
+def uniform_draws(scenario: Scenario, keys: Sequence[ColumnKey],
+                  members: np.ndarray) -> dict[ColumnKey, np.ndarray]:
+    """Draws in (0, 1) of columns ``keys`` for member indices ``members``.
+
+    Parameters
+    ----------
+    scenario : gives ``seed``, ``sampling`` and ``members`` (the ensemble size).
+    keys : the columns wanted; for ``sobol`` each must be in :func:`uncertain_columns`.
+    members : (M,) member indices in [0, scenario.members).
+
+    Returns
+    -------
+    dict mapping each key to an (M,) float64 array.
+    """
+    members = np.asarray(members, dtype=np.int64)
+    if members.size and (members.min() < 0 or members.max() >= scenario.members):
+        raise ValueError(f"member indices must lie in [0, {scenario.members})")
+    if scenario.sampling == "random":
+        return {key: _random_column(scenario.seed, key, members) for key in keys}
+    if scenario.sampling == "latin-hypercube":
+        return {key: _latin_hypercube_column(scenario.seed, key, scenario.members, members)
+                for key in keys}
+    if scenario.sampling == "sobol":
+        return _sobol_columns(scenario.seed, uncertain_columns(scenario), keys, members)
+    raise ValueError(f"unknown sampling method {scenario.sampling!r}")
+
+
+def _name_hash(name: str) -> int:
+    """A stable 64-bit hash of a parameter name (Python's hash() varies per process)."""
+    return int.from_bytes(hashlib.blake2b(name.encode("utf-8"), digest_size=8).digest(),
+                          "little")
+
+
+def _stream(seed: int, tag: str, key: ColumnKey) -> np.random.PCG64:
+    name, element = key
+    return np.random.PCG64(np.random.SeedSequence([seed, _STREAM_TAGS[tag],
+                                                   _name_hash(name), element]))
+
+
+def _runs(members: np.ndarray) -> Iterator[tuple[int, slice]]:
+    """(first member, positions) of each run of consecutive indices in ``members``."""
+    breaks = np.flatnonzero(np.diff(members) != 1) + 1
+    bounds = np.concatenate(([0], breaks, [members.size]))
+    for begin, end in zip(bounds[:-1], bounds[1:]):
+        if end > begin:
+            yield int(members[begin]), slice(int(begin), int(end))
+
+
+def _open_unit(raw: np.ndarray) -> np.ndarray:
+    """uint64 outputs -> (k + 1/2) / 2^52, k the top 52 bits: strictly inside (0, 1)."""
+    return ((raw >> np.uint64(12)).astype(np.float64) + 0.5) * 2.0 ** -52
+
+
+def _stream_values(seed: int, tag: str, key: ColumnKey, members: np.ndarray) -> np.ndarray:
+    """Output i of the column's stream, mapped into (0, 1), for each i in ``members``."""
+    out = np.empty(members.size)
+    for first, positions in _runs(members):
+        bit_generator = _stream(seed, tag, key)
+        bit_generator.advance(first)
+        out[positions] = _open_unit(bit_generator.random_raw(positions.stop - positions.start))
+    return out
+
+
+def _random_column(seed: int, key: ColumnKey, members: np.ndarray) -> np.ndarray:
+    return _stream_values(seed, "random", key, members)
+
+
+@functools.lru_cache(maxsize=_PERMUTATION_CACHE_SIZE)
+def _latin_hypercube_permutation(seed: int, key: ColumnKey, size: int) -> np.ndarray:
+    """Stratum of each member in column ``key``: a permutation of 0 .. size-1."""
+    generator = np.random.Generator(_stream(seed, "latin-hypercube-permutation", key))
+    strata = generator.permutation(size).astype(np.int32 if size < 2 ** 31 else np.int64)
+    strata.flags.writeable = False
+    return strata
+
+
+def _latin_hypercube_column(seed: int, key: ColumnKey, size: int,
+                            members: np.ndarray) -> np.ndarray:
+    """Member i's draw lies in stratum perm_i: (perm_i + jitter_i) / size."""
+    strata = _latin_hypercube_permutation(seed, key, size)[members].astype(np.float64)
+    jitter = _stream_values(seed, "latin-hypercube-jitter", key, members)
+    inside = np.minimum(strata + jitter, np.nextafter(strata + 1.0, 0.0))
+    return inside / size
+
+
+def _sobol_columns(seed: int, columns: tuple[ColumnKey, ...], keys: Sequence[ColumnKey],
+                   members: np.ndarray) -> dict[ColumnKey, np.ndarray]:
+    position: Mapping[ColumnKey, int] = {key: j for j, key in enumerate(columns)}
+    missing = [key for key in keys if key not in position]
+    if missing:
+        raise ValueError(f"columns {missing} are not among the scenario's uncertain columns")
+    if not keys:
+        return {}
+    points = np.empty((members.size, len(columns)))
+    for first, rows in _runs(members):
+        engine = qmc.Sobol(len(columns), scramble=True, bits=SOBOL_BITS,
+                           rng=np.random.Generator(_stream(seed, "sobol", ("", 0))))
+        if first:
+            engine.fast_forward(first)
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="The balance properties",
+                                    category=UserWarning)
+            points[rows] = engine.random(rows.stop - rows.start)
+    points += 2.0 ** -(SOBOL_BITS + 1)
+    return {key: np.ascontiguousarray(points[:, position[key]]) for key in keys}
