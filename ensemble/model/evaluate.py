@@ -1,0 +1,232 @@
+"""The numpy reference evaluator of a compiled model over a chunk of members.
+
+:class:`RateFunctions` turns the scalar IR of a :class:`~ensemble.model.compile.CompiledModel`
+into two Python functions over rows of member arrays (states x members): the flow rates
+and their non-zero partial derivatives with respect to the state.  The functions are
+generated as source text from the validated IR, using only our own identifiers and
+``repr`` of floats, and compiled once; no scenario text is ever evaluated.  Each distinct
+subtree is computed once (common subexpressions are shared through a dict keyed by node)
+into a row of one work array whose rows are reused as soon as a value is dead, so a call
+allocates one array however large the model.
+
+All members share the stage time ``t`` (a float); ``y`` is (n_states, M), ``p``
+(n_parameter_slots, M), ``s`` (n_schedule_slots, M).  Arithmetic runs under
+``numpy.errstate(all="ignore")``: a member whose values become invalid gets NaN or inf
+silently, and the integrator flags it.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+import scipy.sparse
+
+from ensemble.model.compile import CompiledModel
+from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
+                               TimeRef, select_le, walk)
+
+_NUMPY_NAMES = {
+    "add": "np.add", "sub": "np.subtract", "mul": "np.multiply", "div": "np.divide",
+    "pow": "np.power", "neg": "np.negative", "exp": "np.exp", "log": "np.log",
+    "sqrt": "np.sqrt", "abs": "np.absolute", "sin": "np.sin", "cos": "np.cos",
+    "min": "np.minimum", "max": "np.maximum", "sign": "np.sign",
+}
+"""numpy spelling of each operation of :data:`ensemble.model.ir.OPERATIONS` but
+``select_le``, which is :func:`ensemble.model.ir.select_le`."""
+
+
+class RateFunctions:
+    """Flow rates and their state derivatives for a chunk of members, in numpy.
+
+    Parameters
+    ----------
+    model : the compiled model.
+
+    Attributes
+    ----------
+    model : the compiled model.
+    jacobian_flow, jacobian_state : (nnz,) intp, the flow element and state row of each
+        non-zero partial derivative, in the order :meth:`rate_jacobian` writes them
+        (flow elements in order, each one's states ascending).
+    source : the generated Python source, for reading and debugging.
+    """
+
+    def __init__(self, model: CompiledModel):
+        self.model = model
+        pattern = [(k, j, tree) for k, partials in enumerate(model.rate_derivatives)
+                   for j, tree in partials]
+        self.jacobian_flow = np.array([k for k, _, _ in pattern], dtype=np.intp)
+        self.jacobian_state = np.array([j for _, j, _ in pattern], dtype=np.intp)
+        rates = _Program("rates", model.rates)
+        jacobian = _Program("rate_jacobian", [tree for _, _, tree in pattern])
+        self._work_rows = {"rates": rates.n_buffers, "rate_jacobian": jacobian.n_buffers}
+        self.source = rates.source + "\n\n" + jacobian.source
+        namespace: dict[str, object] = {"np": np, "select_le": select_le}
+        exec(compile(self.source, "<generated rates>", "exec"), namespace)
+        self._generated = {name: namespace[name] for name in self._work_rows}
+        self._assembly = self._assembly_matrix()
+
+    def __reduce__(self):
+        return RateFunctions, (self.model,)
+
+    @property
+    def nnz(self) -> int:
+        """Number of non-zero partial derivatives of the rates."""
+        return len(self.jacobian_flow)
+
+    def rates(self, t: float, y: np.ndarray, p: np.ndarray, s: np.ndarray,
+              out: np.ndarray | None = None) -> np.ndarray:
+        """Flow rates (n_flow_elements, M), persons per day, written into ``out``."""
+        if out is None:
+            out = np.empty((self.model.n_flow_elements, y.shape[1]))
+        return self._call("rates", t, y, p, s, out)
+
+    def rate_jacobian(self, t: float, y: np.ndarray, p: np.ndarray, s: np.ndarray,
+                      out: np.ndarray | None = None) -> np.ndarray:
+        """The non-zero partials d rate / d state (nnz, M), ordered as ``jacobian_flow``
+        and ``jacobian_state``."""
+        if out is None:
+            out = np.empty((self.nnz, y.shape[1]))
+        return self._call("rate_jacobian", t, y, p, s, out)
+
+    def right_hand_side(self, t: float, y: np.ndarray, p: np.ndarray, s: np.ndarray,
+                        out: np.ndarray | None = None,
+                        rates: np.ndarray | None = None) -> np.ndarray:
+        """dy/dt = stoichiometry @ rates, (n_states, M); ``rates`` receives the rates."""
+        rates = self.rates(t, y, p, s, rates)
+        if out is None:
+            out = np.empty(y.shape)
+        return np.matmul(self.model.stoichiometry, rates, out=out)
+
+    def state_jacobian(self, partials: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Dense Jacobian of the right-hand side, (M, n_states, n_states), from the
+        partials of :meth:`rate_jacobian`: ``stoichiometry @ d rates / d y`` per member,
+        laid out for a batched ``numpy.linalg.solve``."""
+        n, members = self.model.n_states, partials.shape[1]
+        dense = self._assembly @ partials
+        if out is None:
+            out = np.empty((members, n, n))
+        out[...] = dense.T.reshape(members, n, n)
+        return out
+
+    def _call(self, name: str, t: float, y: np.ndarray, p: np.ndarray, s: np.ndarray,
+              out: np.ndarray) -> np.ndarray:
+        work = np.empty((self._work_rows[name], y.shape[1]))
+        with np.errstate(all="ignore"):
+            self._generated[name](float(t), y, p, s, out, work)
+        return out
+
+    def _assembly_matrix(self) -> scipy.sparse.csr_array:
+        """Sparse (n_states**2, nnz) map from the partials to the flattened Jacobian:
+        entry (i * n + j, e) is stoichiometry[i, flow e] for j the state of partial e."""
+        n = self.model.n_states
+        stoichiometry = self.model.stoichiometry
+        rows, columns, values = [], [], []
+        for e, (k, j) in enumerate(zip(self.jacobian_flow, self.jacobian_state)):
+            for i in np.flatnonzero(stoichiometry[:, k]):
+                rows.append(i * n + j)
+                columns.append(e)
+                values.append(stoichiometry[i, k])
+        return scipy.sparse.csr_array((values, (rows, columns)), shape=(n * n, self.nnz))
+
+
+class _Program:
+    """Source of one generated function ``name(t, y, p, s, out, w)`` that writes the value
+    of ``roots[k]`` into ``out[k]`` using rows of the work array ``w`` for intermediates.
+
+    Attributes
+    ----------
+    source : the function's text.
+    n_buffers : rows of ``w`` it needs.
+    """
+
+    def __init__(self, name: str, roots: Sequence[ScalarNode]):
+        self._expression: dict[ScalarNode, str] = {}
+        self._array: dict[ScalarNode, bool] = {}
+        order = list(walk(*roots))
+        remaining: dict[ScalarNode, int] = {}
+        for node in order:
+            if isinstance(node, Apply):
+                for arg in node.args:
+                    remaining[arg] = remaining.get(arg, 0) + 1
+        destination: dict[ScalarNode, str] = {}
+        for k, root in enumerate(roots):
+            if isinstance(root, Apply) and root not in destination:
+                destination[root] = f"out[{k}]"
+        body: list[str] = []
+        free: list[int] = []
+        self.n_buffers = 0
+        for node in order:
+            if not isinstance(node, Apply):
+                self._leaf(node)
+                continue
+            args = [self._expression[a] for a in node.args]
+            for arg in node.args:
+                remaining[arg] -= 1
+                held = self._expression[arg]
+                if remaining[arg] == 0 and held.startswith("w") and held[1:].isdigit():
+                    free.append(int(held[1:]))
+            self._array[node] = any(self._array[a] for a in node.args)
+            if not self._array[node]:
+                target = f"v{len(body)}"
+                body.append(f"{target} = {_call(node.op, args)}")
+            else:
+                target = destination.get(node) or self._buffer(free)
+                if node.op == "select_le":
+                    body.append(f"{target}[...] = {_call(node.op, args)}")
+                else:
+                    body.append(f"{_call(node.op, args + ['out=' + target])}")
+            self._expression[node] = target
+        for k, root in enumerate(roots):
+            if self._expression[root] != f"out[{k}]":
+                body.append(f"out[{k}] = {self._expression[root]}")
+        bindings = self._bindings(order)
+        lines = [f"def {name}(t, y, p, s, out, w):"]
+        if self.n_buffers:
+            lines.append("    " + ", ".join(f"w{i}" for i in range(self.n_buffers)) + ", = w")
+        lines.extend("    " + line for line in bindings + body)
+        lines.append("    return out")
+        self.source = "\n".join(lines) + "\n"
+
+    def _leaf(self, node: ScalarNode) -> None:
+        if isinstance(node, Const):
+            self._expression[node], self._array[node] = _literal(node.value), False
+        elif isinstance(node, TimeRef):
+            self._expression[node], self._array[node] = "t", False
+        else:
+            row = {StateRef: "y", ParamRef: "p", ScheduleRef: "s"}[type(node)]
+            self._expression[node], self._array[node] = f"{row}{node.index}", True
+
+    def _buffer(self, free: list[int]) -> str:
+        if free:
+            free.sort()
+            return f"w{free.pop(0)}"
+        self.n_buffers += 1
+        return f"w{self.n_buffers - 1}"
+
+    @staticmethod
+    def _bindings(order: list[ScalarNode]) -> list[str]:
+        """``y3 = y[3]`` for every input row read."""
+        lines = []
+        for node in order:
+            if isinstance(node, (StateRef, ParamRef, ScheduleRef)):
+                row = {StateRef: "y", ParamRef: "p", ScheduleRef: "s"}[type(node)]
+                lines.append(f"{row}{node.index} = {row}[{node.index}]")
+        return lines
+
+
+def _call(op: str, args: list[str]) -> str:
+    function = "select_le" if op == "select_le" else _NUMPY_NAMES[op]
+    return f"{function}({', '.join(args)})"
+
+
+def _literal(value: float) -> str:
+    """Source text of a float64 constant (``np.inf`` and ``np.nan`` where needed)."""
+    if math.isnan(value):
+        return "np.nan"
+    if math.isinf(value):
+        return "np.inf" if value > 0 else "(-np.inf)"
+    text = repr(float(value))
+    return f"({text})" if text.startswith("-") else text
