@@ -2,33 +2,41 @@
 
 The trajectory is the run at the requested step h; reruns at h/r (and h/r^2 with
 ``levels = 3``) only estimate its error (SPEC section 3, ``step_error`` and
-``observed_order``).
+``observed_order``).  The estimate is Richardson's (Richardson 1911, Phil. Trans. R. Soc.
+A 210:307-357; Hairer, Norsett & Wanner 1993, *Solving Ordinary Differential Equations I*,
+sec. II.4): for a method of order p the global error of the run at h is
+``(x_h - x_{h/r}) / (1 - r^-p)`` to leading order.
 """
 
 from __future__ import annotations
 
+import importlib
 from dataclasses import dataclass
+from fractions import Fraction
 
 import numpy as np
 
+from ensemble.integrate.methods import METHODS
+from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
+                                       NEWTON_NOT_CONVERGED, NON_FINITE, STATUS_FLAGS,
+                                       STEP_CHECK_FAILED)
+from ensemble.integrate.stepper import Trajectory, integrate_fixed
 from ensemble.model.compile import CompiledModel
 from ensemble.sampling import Design
 from ensemble.scenario.schema import Solver
 
-STEP_CHECK_FAILED = 1
-BELOW_NEGATIVE_ATOL = 2
-NON_FINITE = 4
-INVALID_START = 8
-NEWTON_NOT_CONVERGED = 16
+__all__ = [
+    "BELOW_NEGATIVE_ATOL", "INVALID_START", "NEWTON_NOT_CONVERGED", "NON_FINITE",
+    "STATUS_FLAGS", "STEP_CHECK_FAILED", "ChunkResult", "integrate_chunk",
+    "observed_order", "step_error",
+]
 
-STATUS_FLAGS: tuple[tuple[int, str], ...] = (
-    (STEP_CHECK_FAILED, "step_check_failed"),
-    (BELOW_NEGATIVE_ATOL, "state_below_minus_atol"),
-    (NON_FINITE, "non_finite_value"),
-    (INVALID_START, "impossible_drawn_start"),
-    (NEWTON_NOT_CONVERGED, "newton_not_converged"),
-)
-"""The status bits of SPEC section 3 and their CF ``flag_meanings`` words."""
+ROUND_OFF_FACTOR = 100.0
+"""d2 <= ROUND_OFF_FACTOR * eps * max|x| counts as round-off (common practice, no source)."""
+
+NEWTON_TOL_FACTOR = 10.0
+"""d2 <= NEWTON_TOL_FACTOR * newton.tol counts as Newton noise for the implicit methods
+(common practice, no source)."""
 
 
 @dataclass(frozen=True)
@@ -53,8 +61,104 @@ class ChunkResult:
     status: np.ndarray
 
 
+def step_error(coarse: np.ndarray, fine: np.ndarray, refine: int, order: int,
+               rtol: float, atol: float) -> np.ndarray:
+    """Scaled Richardson estimate of the error of ``coarse`` per member.
+
+    ``max over states and times of |x_h - x_{h/r}| / (1 - r^-p) / (atol + rtol |x_{h/r}|)``
+    for (M, n_states, n_reports) trajectories at h and h/r; NaN for a member with a
+    non-finite value in either.
+    """
+    scale = atol + rtol * np.abs(fine)
+    error = np.abs(coarse - fine) / (1.0 - float(refine) ** -order) / scale
+    return error.reshape(len(error), -1).max(axis=1)
+
+
+def observed_order(coarse: np.ndarray, fine: np.ndarray, finest: np.ndarray, refine: int,
+                   noise_floor: float) -> np.ndarray:
+    """``log(d1 / d2) / log(r)`` per member from runs at h, h/r and h/r^2.
+
+    ``d1 = max |x_h - x_{h/r}|`` and ``d2 = max |x_{h/r} - x_{h/r^2}|`` over states and
+    times.  NaN where d2 is at the noise level, ``d2 <= ROUND_OFF_FACTOR * eps *
+    max|x_{h/r}| + noise_floor``, where the ratio measures noise rather than the
+    method's error (``noise_floor`` is ``NEWTON_TOL_FACTOR * newton.tol`` for the
+    implicit methods, 0 for the explicit ones).
+    """
+    members = len(coarse)
+    d1 = np.abs(coarse - fine).reshape(members, -1).max(axis=1)
+    d2 = np.abs(fine - finest).reshape(members, -1).max(axis=1)
+    size = np.abs(fine).reshape(members, -1).max(axis=1)
+    floor = ROUND_OFF_FACTOR * np.finfo(np.float64).eps * size + noise_floor
+    with np.errstate(all="ignore"):
+        order = np.log(d1 / d2) / np.log(refine)
+    return np.where(d2 > floor, order, np.nan)
+
+
+def _integrator(backend: str):
+    """The ``integrate_fixed`` of ``backend`` ("numpy" or "compiled")."""
+    if backend == "numpy":
+        return integrate_fixed
+    if backend != "compiled":
+        raise ValueError(f"unknown integration backend {backend!r}: "
+                         "expected 'numpy' or 'compiled'")
+    try:
+        module = importlib.import_module("ensemble.integrate.compiled")
+        return module.integrate_fixed_compiled
+    except (ImportError, AttributeError) as error:
+        raise RuntimeError("the compiled integration backend is not available "
+                           f"({error}); use backend='numpy'") from error
+
+
 def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_reports: int,
                     backend: str = "numpy") -> ChunkResult:
     """Integrate ``design``'s members over ``n_reports - 1`` report intervals and check
-    each member's step."""
-    raise NotImplementedError
+    each member's step.
+
+    Parameters
+    ----------
+    model, design : the variant's compiled model and the chunk's member inputs.
+    solver : method, step, report interval, step check and Newton settings.
+    n_reports : reported times, t = 0 included.
+    backend : "numpy" (:func:`ensemble.integrate.stepper.integrate_fixed`) or
+        "compiled" (``ensemble.integrate.compiled.integrate_fixed_compiled``, same
+        signature and semantics).
+
+    Returns
+    -------
+    ChunkResult
+        The trajectories of the run at ``solver.step``; ``step_error`` (NaN when the check
+        is off or a value is non-finite), ``observed_order`` (NaN unless ``levels = 3``),
+        and the status bits of every run ORed, with STEP_CHECK_FAILED where the step
+        error is above 1 or not finite (members with an impossible start excepted).
+    """
+    integrate = _integrator(backend)
+    method = METHODS[solver.method]
+    check = solver.check
+
+    def run(refinement: int) -> Trajectory:
+        step = float(Fraction(solver.step) / refinement)
+        return integrate(model, design, method, step, solver.steps_per_report * refinement,
+                         n_reports, solver.newton, check.atol)
+
+    result = run(1)
+    status = result.status.copy()
+    members = len(design.members)
+    error = np.full(members, np.nan)
+    order = np.full(members, np.nan)
+    if check.enabled:
+        refined = run(check.refine)
+        status |= refined.status
+        with np.errstate(all="ignore"):
+            error = step_error(result.state, refined.state, check.refine, method.order,
+                               check.rtol, check.atol)
+        if check.levels == 3:
+            finest = run(check.refine ** 2)
+            status |= finest.status
+            noise = NEWTON_TOL_FACTOR * solver.newton.tol if method.implicit else 0.0
+            order = observed_order(result.state, refined.state, finest.state, check.refine,
+                                   noise)
+        failed = ~(error <= 1.0) & ((status & INVALID_START) == 0)
+        status[failed] |= STEP_CHECK_FAILED
+    return ChunkResult(members=np.asarray(design.members), state=result.state,
+                       flow_count=result.flow_count, step_error=error,
+                       observed_order=order, status=status)
