@@ -7,3 +7,64 @@
 """
 
 from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from ensemble.scenario.load import load_scenario, scenario_warnings
+from ensemble.scenario.schema import Scenario
+
+
+def run(scenario: Scenario | str | os.PathLike[str], *,
+        output: str | os.PathLike[str] | None = None,
+        chunk: int | None = None, workers: int | None = None, address: str | None = None,
+        resume: bool = False, force: bool = False, progress: bool | None = None,
+        backend: str | None = None, history: str | None = None) -> Path:
+    """Run every variant of a scenario and write its result file.
+
+    Parameters
+    ----------
+    scenario : a validated scenario (:func:`load_scenario`, with any member or seed
+        override), or the path of a scenario file.
+    output : result path, instead of the file's ``output.path``.
+    chunk : members per task (default: the file's ``[compute] chunk``, else a size that
+        gives tasks of a second or so and several per worker).
+    workers : worker processes on this machine (default: the file's, else one per core);
+        ``0`` computes everything in this process, without dask.distributed.
+    address : a running dask scheduler to use instead of a local cluster.
+    resume : continue from ``<output>.partial`` (afresh if there is none; nothing to do
+        if the result is complete with the same fingerprint).
+    force : replace an existing result.
+    progress : draw a progress bar on standard error (default: when it is a terminal).
+    backend : ``"numpy"`` or ``"compiled"`` integration (default
+        :data:`ensemble.run.execute.DEFAULT_BACKEND`).
+    history : the result's ``history`` attribute (default: this call and the time).
+
+    Returns
+    -------
+    The result's path.
+
+    Raises
+    ------
+    ensemble.output.ResultExists, ensemble.output.FingerprintMismatch : nothing was
+        computed (the command line exits with 2).
+    ensemble.run.RunFailed, ensemble.output.StoreWriteError, OSError : the run failed;
+        finished chunks are kept for ``resume`` (exit 1).
+    """
+    import dataclasses
+    from datetime import datetime, timezone
+
+    from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
+    from ensemble.scenario.load import load_scenario as load
+
+    if not isinstance(scenario, Scenario):
+        scenario = load(scenario)
+    if output is not None:
+        scenario = dataclasses.replace(
+            scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))
+    if history is None:
+        now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+        history = f"{now} ensemble.api.run({scenario.source.path!r})"
+    return run_scenario(scenario, history=history, backend=backend or DEFAULT_BACKEND,
+                        chunk=chunk, workers=workers, address=address, resume=resume,
+                        force=force, progress=Progress(bar=progress))
