@@ -55,10 +55,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     from datetime import datetime, timezone
 
     from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
-    from ensemble.scenario.load import load_scenario as load
 
     if not isinstance(scenario, Scenario):
-        scenario = load(scenario)
+        scenario = load_scenario(scenario)
     if output is not None:
         scenario = dataclasses.replace(
             scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))
@@ -68,3 +67,20 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     return run_scenario(scenario, history=history, backend=backend or DEFAULT_BACKEND,
                         chunk=chunk, workers=workers, address=address, resume=resume,
                         force=force, progress=Progress(bar=progress))
+
+
+def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
+    """Members of a result file behind each status bit, over every variant.
+
+    Returns
+    -------
+    flag word (as in the file's ``flag_meanings``) -> number of members with that bit.
+    """
+    import numpy as np
+    import xarray as xr
+
+    from ensemble.integrate.check import STATUS_FLAGS
+
+    with xr.open_dataset(path, decode_times=False) as dataset:
+        status = dataset["status"].values
+    return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}

@@ -6,10 +6,94 @@ interrupted.
 
 from __future__ import annotations
 
+import sys
+from pathlib import Path
+from typing import Optional
+
 import typer
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Run sampled ensembles of epidemic compartment models.")
+
+
+def _interrupt_on_sigterm(signum: int, frame: object) -> None:
+    """Treat SIGTERM like Ctrl-C: stop, keep finished work, exit 130."""
+    raise KeyboardInterrupt
+
+
+@app.command()
+def run(
+    scenario: Path = typer.Argument(..., help="Scenario file (TOML)."),
+    output: Optional[Path] = typer.Option(
+        None, "--output", "-o", help="Result file (default: the file's output.path)."),
+    members: Optional[int] = typer.Option(
+        None, "--members", min=1, help="Members per variant, instead of the file's."),
+    seed: Optional[int] = typer.Option(None, "--seed", min=0, help="Seed, instead of the file's."),
+    chunk: Optional[int] = typer.Option(
+        None, "--chunk", min=1, help="Members per task (changes no number of the result)."),
+    workers: Optional[int] = typer.Option(
+        None, "--workers", min=0,
+        help="Worker processes on this machine (default one per core; 0: no dask, "
+             "everything in this process)."),
+    address: Optional[str] = typer.Option(
+        None, "--address", help="A running dask scheduler to use, e.g. tcp://host:8786."),
+    resume: bool = typer.Option(
+        False, "--resume", help="Continue an interrupted run from <output>.partial."),
+    force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
+    backend: Optional[str] = typer.Option(
+        None, "--backend", help="Integration backend: numpy or compiled."),
+) -> None:
+    """Run every variant of SCENARIO and write the result file."""
+    import logging
+    import shlex
+    import signal
+    import time
+    from datetime import datetime, timezone
+
+    import ensemble
+    from ensemble import api
+    from ensemble.output.store import (FingerprintMismatch, OutputError, ResultExists,
+                                       partial_path)
+    from ensemble.run.execute import RunFailed
+    from ensemble.scenario.errors import ScenarioError
+
+    logging.getLogger("distributed").setLevel(logging.ERROR)
+    signal.signal(signal.SIGTERM, _interrupt_on_sigterm)
+    began = time.monotonic()
+    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
+    loaded = None
+    try:
+        loaded = api.load_scenario(scenario, members=members, seed=seed)
+        path = api.run(loaded, output=output, chunk=chunk, workers=workers,
+                       address=address, resume=resume, force=force, backend=backend,
+                       history=history)
+    except ScenarioError as error:
+        _stop(str(error), 2)
+    except ResultExists as error:
+        _stop(f"{error}; use --force to replace it", 2)
+    except FingerprintMismatch as error:
+        _stop(str(error), 2)
+    except KeyboardInterrupt:
+        where = partial_path(output or loaded.output.path) if loaded else None
+        kept = f"; finished chunks are kept in {where}, continue with --resume" if where else ""
+        _stop(f"interrupted{kept}", 130)
+    except (RunFailed, OutputError, OSError) as error:
+        where = partial_path(output or loaded.output.path)
+        _stop(f"{error} (finished chunks are kept in {where}; continue with --resume)", 1)
+    counts = api.status_counts(path)
+    typer.echo(f"result: {path}")
+    typer.echo(f"{loaded.members} members x {len(loaded.variants)} variants "
+               f"in {time.monotonic() - began:.1f} s")
+    flagged = ", ".join(f"{word} {count}" for word, count in counts.items())
+    typer.echo(f"flagged members: {flagged}")
+    typer.echo(ensemble.CAUTION)
+
+
+def _stop(message: str, status: int) -> None:
+    """Print ``message`` as one line on standard error and exit with ``status``."""
+    typer.echo(f"error: {message}" if status != 130 else message, err=True)
+    raise typer.Exit(status)
 
 
 def main() -> None:

@@ -1,0 +1,318 @@
+"""The run engine: chunks of members computed by dask workers, saved as they finish.
+
+Each chunk is one task, :func:`compute_chunk`, a pure function of its arguments (the
+scenario, the variant's compiled model, the member range, the backend), so a task that
+is rerun (its worker died, the run was resumed) gives the same bits.  The driver keeps a
+bounded window of tasks in flight, hands every finished chunk to the
+:class:`~ensemble.output.store.WorkStore` at once and forgets it, so memory stays bounded
+whatever the number of members.
+"""
+
+from __future__ import annotations
+
+import copyreg
+import logging
+import os
+import sys
+import types
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ensemble.integrate.check import ChunkResult, integrate_chunk
+from ensemble.model.compile import CompiledModel, compile_model
+from ensemble.output.store import ChunkKey, ResultLayout, WorkStore
+from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
+from ensemble.sampling import make_design
+from ensemble.scenario.schema import Scenario
+
+DEFAULT_BACKEND = "numpy"
+"""Integration backend used when none is asked for."""
+
+IN_FLIGHT_PER_THREAD = 3
+"""Tasks queued or running per worker thread: enough to keep every worker busy while the
+driver saves a finished chunk, few enough that unsaved results stay bounded."""
+
+SINGLE_THREAD_ENV = {
+    "OMP_NUM_THREADS": "1",
+    "OPENBLAS_NUM_THREADS": "1",
+    "MKL_NUM_THREADS": "1",
+    "NUMBA_NUM_THREADS": "1",
+}
+"""Environment of local worker processes: one worker process per core, so BLAS and numba
+inside a worker use one thread each and the cores are not oversubscribed."""
+
+
+def read_only(items: dict) -> types.MappingProxyType:
+    """A read-only view of ``items`` (what a pickled read-only mapping becomes again)."""
+    return types.MappingProxyType(items)
+
+
+def _reduce_mappingproxy(proxy: types.MappingProxyType) -> tuple:
+    return read_only, (dict(proxy),)
+
+
+# The validated scenario keeps its tables in read-only mappings; let tasks carry it.
+copyreg.pickle(types.MappingProxyType, _reduce_mappingproxy)
+
+
+class RunFailed(RuntimeError):
+    """A chunk could not be computed (a worker error, or its worker kept dying).
+
+    The chunks finished before it stay in ``<PATH>.partial`` for ``--resume``.
+    """
+
+
+@dataclass(frozen=True)
+class ChunkOutput:
+    """What one task hands back to the driver."""
+
+    key: ChunkKey
+    result: ChunkResult
+    reported: Mapping[str, np.ndarray]
+
+
+def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
+                  backend: str = DEFAULT_BACKEND) -> ChunkOutput:
+    """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
+
+    A pure function of its arguments: the same key gives the same bits in any process
+    (:func:`~ensemble.sampling.make_design` depends on the member index alone, and
+    :func:`~ensemble.integrate.check.integrate_chunk` treats members independently).
+    """
+    variant, start, end = key
+    members = np.arange(start, end, dtype=np.int64)
+    design = make_design(scenario, scenario.variants[variant], model, members)
+    result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
+    return ChunkOutput(key, result, dict(design.reported))
+
+
+# --------------------------------------------------------------------------- executors
+
+
+def available_cores() -> int:
+    """Cores this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not Linux
+        return os.cpu_count() or 1
+
+
+@contextmanager
+def open_client(workers: int | None = None, address: str | None = None) -> Iterator:
+    """A dask.distributed client for the run, closed (with its cluster) on leaving.
+
+    Parameters
+    ----------
+    workers : worker processes of a local cluster (default: one per core), each with one
+        thread and single-threaded numerical libraries (:data:`SINGLE_THREAD_ENV`).
+    address : a running scheduler to connect to instead (``tcp://host:8786``); its
+        workers are used as they are.
+    """
+    from distributed import Client, LocalCluster
+
+    if address is not None:
+        client = Client(address)
+        try:
+            yield client
+        finally:
+            client.close()
+        return
+    cluster = LocalCluster(
+        n_workers=workers or available_cores(), threads_per_worker=1, processes=True,
+        dashboard_address=":0", silence_logs=logging.ERROR, env=dict(SINGLE_THREAD_ENV),
+    )
+    try:
+        with Client(cluster) as client:
+            yield client
+    finally:
+        cluster.close()
+
+
+def _in_process(task: Callable[[ChunkKey], ChunkOutput],
+                keys: Sequence[ChunkKey]) -> Iterator[ChunkOutput]:
+    """Compute the chunks one after another in this process, without dask.distributed."""
+    for key in keys:
+        yield task(key)
+
+
+def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
+                keys: Sequence[ChunkKey], backend: str) -> Iterator[ChunkOutput]:
+    """Compute the chunks on ``client``'s workers and yield them as they finish.
+
+    At most :data:`IN_FLIGHT_PER_THREAD` tasks per worker thread are submitted at a time
+    (re-counted as workers come and go).  A task whose worker dies is rerun elsewhere by
+    the scheduler; a task that raises, or that keeps killing its workers, stops the run
+    with :class:`RunFailed`.
+    """
+    from distributed import as_completed
+
+    queue = iter(keys)
+    running = as_completed()
+
+    def top_up() -> None:
+        threads = sum(client.nthreads().values())
+        window = max(2, IN_FLIGHT_PER_THREAD * threads)
+        while running.count() < window:
+            key = next(queue, None)
+            if key is None:
+                return
+            running.add(client.submit(compute_chunk, scenario, models[key[0]], key, backend,
+                                      key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False))
+
+    top_up()
+    try:
+        for future in running:
+            try:
+                output = future.result()
+            except Exception as error:  # the task's own error, or KilledWorker
+                raise RunFailed(f"chunk {future.key} failed: "
+                                f"{type(error).__name__}: {error}") from error
+            future.release()
+            top_up()
+            yield output
+    finally:
+        for future in running.futures:
+            future.cancel()
+
+
+# ---------------------------------------------------------------------------- progress
+
+
+class Progress:
+    """Reports a run's progress: a bar on a terminal, a few plain lines otherwise.
+
+    Parameters
+    ----------
+    bar : draw a progress bar (rich) on standard error; None decides by whether standard
+        error is a terminal.
+    stream : where plain lines go (default standard error).
+    """
+
+    def __init__(self, bar: bool | None = None, stream=None):
+        self.stream = stream if stream is not None else sys.stderr
+        self.bar = self.stream.isatty() if bar is None else bar
+        self._rich = None
+        self._task = None
+
+    def note(self, text: str) -> None:
+        """One plain line of information."""
+        print(f"ensemble: {text}", file=self.stream, flush=True)
+
+    def start(self, to_compute: int, already_done: int, members: int) -> None:
+        """The run is about to compute ``to_compute`` chunks (``members`` members in all);
+        ``already_done`` were found finished in the work in progress."""
+        if already_done:
+            self.note(f"resuming: {already_done} chunks already done, "
+                      f"{to_compute} to compute")
+        else:
+            self.note(f"{to_compute} chunks to compute")
+        if self.bar and to_compute:
+            from rich.console import Console
+            from rich.progress import (BarColumn, MofNCompleteColumn, Progress as Bar,
+                                       TextColumn, TimeElapsedColumn, TimeRemainingColumn)
+
+            self._rich = Bar(TextColumn("members"), BarColumn(), MofNCompleteColumn(),
+                             TimeElapsedColumn(), TimeRemainingColumn(),
+                             console=Console(file=self.stream), transient=True)
+            self._rich.start()
+            self._task = self._rich.add_task("run", total=members)
+
+    def advance(self, members: int) -> None:
+        """A chunk of ``members`` members is saved."""
+        if self._rich is not None:
+            self._rich.advance(self._task, members)
+
+    def close(self) -> None:
+        """Remove the bar."""
+        if self._rich is not None:
+            self._rich.stop()
+            self._rich = None
+
+
+# ------------------------------------------------------------------------------ engine
+
+
+def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BACKEND,
+                 chunk: int | None = None, workers: int | None = None,
+                 address: str | None = None, resume: bool = False, force: bool = False,
+                 progress: Progress | None = None) -> Path:
+    """Run every variant of ``scenario`` and write the result file.
+
+    Work in progress lives in ``<path>.partial`` (see
+    :class:`~ensemble.output.store.WorkStore`); each finished chunk is saved there as
+    it arrives, and the result appears under ``scenario.output.path`` by an atomic rename
+    when every chunk is in.
+
+    Parameters
+    ----------
+    scenario : the validated scenario, command-line overrides applied.
+    history : the result's ``history`` attribute (command and time).
+    backend : integration backend, ``"numpy"`` or ``"compiled"``.
+    chunk : members per task; default from the file's ``[compute] chunk``, else
+        :func:`~ensemble.run.plan.default_chunk`.
+    workers : worker processes of the local cluster (default one per core); ``0`` runs
+        every chunk in this process, without dask.distributed.
+    address : a running dask scheduler to use instead of a local cluster.
+    resume : continue from ``<path>.partial`` (afresh if there is none; nothing to do if
+        the result is already complete with the same fingerprint).
+    force : replace an existing result.
+    progress : where progress goes (default: :class:`Progress` deciding by terminal).
+
+    Returns
+    -------
+    The result's path.
+
+    Raises
+    ------
+    ensemble.output.store.ResultExists : the result exists and neither ``force`` nor a
+        matching ``resume`` was given (nothing is computed).
+    ensemble.output.store.FingerprintMismatch : ``resume`` of work from a different
+        scenario, member count, seed, version or backend.
+    RunFailed : a chunk failed; finished chunks are kept.
+    OSError : the work in progress or the result could not be written; finished chunks
+        are kept.
+    """
+    progress = progress if progress is not None else Progress()
+    path = Path(scenario.output.path)
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    run_fingerprint = fingerprint(scenario, backend)
+    if resume and not force and WorkStore.is_complete(path, run_fingerprint):
+        progress.note(f"{path} is already complete; nothing to do")
+        return path
+    layout = ResultLayout.from_scenario(scenario, models, run_fingerprint, history)
+    store = WorkStore.open(path, layout, resume=resume, force=force)
+
+    workers = workers if workers is not None else scenario.compute.workers
+    address = address if address is not None else scenario.compute.address
+    if chunk is None:
+        chunk = scenario.compute.chunk or default_chunk(
+            scenario, models[0].n_states, models[0].n_flow_elements,
+            workers or available_cores())
+    keys = store.pending(plan_chunks(scenario, chunk))
+    progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
+    try:
+        if keys:
+            if workers == 0 and address is None:
+                _save_all(store, _in_process(
+                    lambda key: compute_chunk(scenario, models[key[0]], key, backend), keys),
+                    progress)
+            else:
+                with open_client(workers, address) as client:
+                    if client.dashboard_link:
+                        progress.note(f"dask dashboard at {client.dashboard_link}")
+                    _save_all(store, _on_cluster(client, scenario, models, keys, backend),
+                              progress)
+    finally:
+        progress.close()
+    return store.finish()
+
+
+def _save_all(store: WorkStore, outputs: Iterable[ChunkOutput], progress: Progress) -> None:
+    """Save each finished chunk as it arrives."""
+    for output in outputs:
+        store.save(output.key, output.result, output.reported)
+        progress.advance(output.key[2] - output.key[1])

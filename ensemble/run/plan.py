@@ -1,0 +1,162 @@
+"""What a run computes: its fingerprint, and the members of each variant cut into chunks.
+
+A chunk is ``(variant index, first member, end member)`` with the end excluded.  Which
+draws a member gets depends only on the scenario and the member's index
+(:func:`ensemble.sampling.make_design`), so the cut changes no number of the result: it
+only sets the size of one task.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+from collections.abc import Mapping
+from datetime import date
+from fractions import Fraction
+from typing import Any
+
+import ensemble
+from ensemble.output.store import ChunkKey
+from ensemble.scenario.schema import Compute, Scenario, Source
+
+
+TARGET_WORK_PER_CHUNK = 4e7
+"""Aimed-for work of one task, in state-element steps (member x step x (states + flows) x
+runs of the step check): a second or two of the numpy backend on one core.  Common
+practice, no source: tasks of 0.1-10 s amortise the scheduler's per-task overhead of about a
+millisecond while keeping the load balanced."""
+
+MAX_CHUNK_BYTES = 64 * 2**20
+"""Largest trajectory block (states and flow counts of every member of a chunk) that one
+task hands back, so that a few chunks in flight per worker stay well inside memory."""
+
+TASKS_PER_WORKER = 4
+"""With the default chunk size, at least this many tasks per worker when there are enough
+members, so that a slow or lost worker does not hold up the end of the run."""
+
+
+def canonical(value: Any) -> Any:
+    """A JSON-ready form of a parsed scenario value that is the same in every process.
+
+    Dataclasses become ``[class name, {field: value}]``; mappings keep their order (it is
+    the file's order, and it sets the order of results); sets are sorted (their iteration
+    order changes with Python's string hashing); fractions, dates and floats become exact
+    text (``repr`` of a float round-trips).
+    """
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        fields = {f.name: canonical(getattr(value, f.name)) for f in dataclasses.fields(value)}
+        return [type(value).__name__, fields]
+    if isinstance(value, Mapping):
+        return [[str(key), canonical(item)] for key, item in value.items()]
+    if isinstance(value, (set, frozenset)):
+        return sorted(canonical(item) for item in value)
+    if isinstance(value, (list, tuple)):
+        return [canonical(item) for item in value]
+    if isinstance(value, bool) or value is None or isinstance(value, (int, str)):
+        return value
+    if isinstance(value, float):
+        return repr(value)
+    if isinstance(value, Fraction):
+        return f"{value.numerator}/{value.denominator}"
+    if isinstance(value, date):
+        return value.isoformat()
+    raise TypeError(f"no canonical form for {type(value).__name__}")
+
+
+def fingerprint(scenario: Scenario, backend: str = "numpy") -> str:
+    """SHA-256 of everything that changes the numbers of ``scenario``'s result.
+
+    That is the parsed scenario (members and seed included, after command-line
+    overrides), the program version and the integration backend; left out are how the
+    work is distributed (``[compute]``), where the result goes (``output.path``) and the
+    scenario file's path and text (comments and layout change no number).
+
+    Parameters
+    ----------
+    scenario : the validated scenario.
+    backend : the integration backend (``"numpy"`` or ``"compiled"``); the two agree to
+        round-off, not bit for bit, so a run cannot be resumed with the other.
+
+    Returns
+    -------
+    64 hexadecimal digits.
+    """
+    relevant = dataclasses.replace(
+        scenario,
+        output=dataclasses.replace(scenario.output, path=""),
+        compute=Compute(),
+        source=Source(path="", text=""),
+    )
+    text = json.dumps(
+        {"program": "ensemble", "version": ensemble.__version__, "backend": backend,
+         "scenario": canonical(relevant)},
+        separators=(",", ":"), ensure_ascii=True,
+    )
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
+                  workers: int = 1) -> int:
+    """A chunk size for ``scenario`` when neither the command line nor the file sets one.
+
+    Aims at :data:`TARGET_WORK_PER_CHUNK` per task, at most :data:`MAX_CHUNK_BYTES` of
+    trajectories per task, and at least :data:`TASKS_PER_WORKER` tasks per worker.
+
+    Parameters
+    ----------
+    scenario : the validated scenario.
+    n_states, n_flow_elements : rows of the state and of the flow counts (compartments and
+        flows times groups).
+    workers : number of worker processes the run uses.
+    """
+    check = scenario.solver.check
+    runs = 1
+    if check.enabled:
+        runs += check.refine + (check.refine ** 2 if check.levels == 3 else 0)
+    steps = int(scenario.days / scenario.solver.step)
+    work_per_member = steps * (n_states + n_flow_elements) * runs
+    bytes_per_member = (n_states + n_flow_elements) * scenario.n_reports * 8
+    chunk = min(TARGET_WORK_PER_CHUNK / work_per_member, MAX_CHUNK_BYTES / bytes_per_member)
+    chunk = min(chunk, math.ceil(scenario.members / (TASKS_PER_WORKER * max(workers, 1))))
+    return max(1, int(chunk))
+
+
+def split(start: int, end: int, chunk: int) -> list[tuple[int, int]]:
+    """Cut members ``start .. end-1`` into consecutive ranges of at most ``chunk``."""
+    if chunk < 1:
+        raise ValueError(f"chunk must be at least 1, not {chunk}")
+    return [(first, min(first + chunk, end)) for first in range(start, end, chunk)]
+
+
+def plan_chunks(scenario: Scenario, chunk: int, *,
+                members: tuple[int, int] | None = None) -> list[ChunkKey]:
+    """The chunks of a run: every variant's members cut into ranges of at most ``chunk``.
+
+    Parameters
+    ----------
+    scenario : the validated scenario (``scenario.members`` per variant).
+    chunk : members per chunk (>= 1).
+    members : ``(start, end)`` to plan only those members of every variant (a shard,
+        :func:`shard_range`); default all.
+
+    Returns
+    -------
+    Chunk keys, variant by variant, in member order.
+    """
+    start, end = members if members is not None else (0, scenario.members)
+    return [(variant, first, last)
+            for variant in range(len(scenario.variants))
+            for first, last in split(start, end, chunk)]
+
+
+def shard_range(index: int, count: int, members: int) -> tuple[int, int]:
+    """Members ``floor(I*M/N) .. floor((I+1)*M/N) - 1`` of shard I of N (SPEC section 2),
+    returned as ``(start, end)`` with the end excluded.
+
+    Every member falls in exactly one shard, and shard sizes differ by at most one.
+    """
+    if not 0 <= index < count:
+        raise ValueError(f"shard {index}/{count}: the index must be 0 .. {count - 1}")
+    return index * members // count, (index + 1) * members // count
