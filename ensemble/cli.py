@@ -7,6 +7,8 @@ interrupted.
 from __future__ import annotations
 
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Optional
 
@@ -94,6 +96,29 @@ def _stop(message: str, status: int) -> None:
     """Print ``message`` as one line on standard error and exit with ``status``."""
     typer.echo(f"error: {message}" if status != 130 else message, err=True)
     raise typer.Exit(status)
+
+
+@contextmanager
+def _fail_on_invalid() -> Iterator[None]:
+    """Report an invalid scenario as ``error: ...`` lines on standard error; exit 2."""
+    from ensemble.scenario.errors import ScenarioError
+
+    try:
+        yield
+    except ScenarioError as error:
+        typer.echo("\n".join(f"error: {line}" for line in str(error).splitlines()), err=True)
+        raise typer.Exit(2) from None
+
+
+@app.command()
+def check(scenario: Path = typer.Argument(..., help="Scenario file (TOML).")) -> None:
+    """Validate SCENARIO and print its model, parameters, variants, solver and warnings."""
+    from ensemble import api
+    from ensemble.scenario.describe import describe
+
+    with _fail_on_invalid():
+        loaded = api.load_scenario(scenario)
+    typer.echo(describe(loaded, api.scenario_warnings(loaded)), nl=False)
 
 
 def main() -> None:

@@ -499,7 +499,7 @@ class _Loader:
     def whole_days(self, days: Fraction, report_every: Fraction) -> None:
         if (days / report_every).denominator != 1:
             raise self.error("scenario.days", days, f"must be a whole multiple of "
-                             f"solver.report_every ({_fraction_text(report_every)})")
+                             f"solver.report_every ({time_text(report_every)})")
 
     # -- [solver] -------------------------------------------------------------------------
 
@@ -511,7 +511,7 @@ class _Loader:
         report_every = self.get(table, path, "report_every", self.positive_time, Fraction(1))
         if (report_every / step).denominator != 1:
             raise self.error("solver.report_every", report_every,
-                             f"must be a whole multiple of solver.step ({_fraction_text(step)})")
+                             f"must be a whole multiple of solver.step ({time_text(step)})")
         check_table = self.table(table.get("check", {}), "solver.check",
                                  ("refine", "levels", "rtol", "atol", "enabled"))
         cpath = "solver.check"
@@ -779,11 +779,11 @@ class _Loader:
             day = self.time(entry[0], kpath)
             if knots and day <= knots[-1][0]:
                 raise self.error(kpath, entry, "days must strictly increase "
-                                 f"(previous day {_fraction_text(knots[-1][0])})")
+                                 f"(previous day {time_text(knots[-1][0])})")
             if scope.step is not None and (day / scope.step).denominator != 1:
-                raise self.error(kpath, entry, f"day {_fraction_text(day)} is not on the step "
+                raise self.error(kpath, entry, f"day {time_text(day)} is not on the step "
                                  f"grid (a whole multiple of solver.step = "
-                                 f"{_fraction_text(scope.step)})")
+                                 f"{time_text(scope.step)})")
             raw = entry[1]
             value: float | tuple[float, ...] | _Text
             if isinstance(raw, str):
@@ -1157,7 +1157,7 @@ def _hint_for_keys(table: Mapping[str, Any], choices: Iterable[str]) -> str | No
     return None
 
 
-def _fraction_text(value: Fraction) -> str:
+def time_text(value: Fraction) -> str:
     """A time for messages: ``0.25``, ``7``, or ``1/3`` when no short decimal exists."""
     if value.denominator == 1:
         return str(value.numerator)
