@@ -7,6 +7,6 @@
 - :mod:`~ensemble.sampling.design`: :class:`Design` and :func:`make_design`.
 """
 
-from ensemble.sampling.design import Design, make_design, time_varying_parameters
+from ensemble.sampling.design import Design, make_design
 
-__all__ = ["Design", "make_design", "time_varying_parameters"]
+__all__ = ["Design", "make_design"]

@@ -16,7 +16,7 @@ from graphlib import TopologicalSorter
 
 import numpy as np
 
-from ensemble.model.compile import CompiledModel
+from ensemble.model.compile import CompiledModel, time_varying_parameters
 from ensemble.sampling.distributions import inverse_cdf, needs_draw
 from ensemble.sampling.evaluate import evaluate, ordered_sum
 from ensemble.sampling.uniform import ColumnKey, uniform_draws
@@ -84,22 +84,6 @@ def make_design(scenario: Scenario, variant: Variant, model: CompiledModel,
             reported={name: _full(values[name], members.size) for name in parameters
                       if name in values and values[name].ndim <= 2},
         )
-
-
-def time_varying_parameters(parameters: Mapping[str, Parameter]) -> frozenset[str]:
-    """Names of the parameters that change with time: schedules, and derived parameters
-    that use ``t`` or a time-varying parameter (directly or through others)."""
-    varying = {name for name, p in parameters.items() if isinstance(p.form, Schedule)}
-    derived = {name: p.form.expression.names for name, p in parameters.items()
-               if isinstance(p.form, Derived)}
-    changed = True
-    while changed:
-        changed = False
-        for name, uses in derived.items():
-            if name not in varying and ("t" in uses or uses & varying):
-                varying.add(name)
-                changed = True
-    return frozenset(varying)
 
 
 def constant_values(scenario: Scenario, variant: Variant,
