@@ -43,13 +43,16 @@ def _numbers_text(values: Iterable[float]) -> str:
     return "[" + ", ".join(number_text(v) for v in values) + "]"
 
 
-def _table(rows: Iterable[tuple[str, str]], indent: str = _INDENT) -> str:
+def _table(rows: Iterable[tuple[str, ...]], indent: str = _INDENT) -> str:
+    """Rows of cells, every column but the last padded to its widest cell."""
     rows = list(rows)
-    width = max((len(name) for name, _ in rows), default=0)
-    return "\n".join(f"{indent}{name.ljust(width)}  {text}".rstrip() for name, text in rows)
+    widths = [max(len(cell) for cell in column) for column in zip(*rows)]
+    return "\n".join(
+        (indent + "  ".join(cell.ljust(w) for cell, w in zip(row[:-1], widths))
+         + "  " + row[-1]).rstrip() for row in rows)
 
 
-def _section(title: str, rows: Iterable[tuple[str, str]]) -> str:
+def _section(title: str, rows: Iterable[tuple[str, ...]]) -> str:
     rows = list(rows)
     return f"{title}\n{_table(rows)}" if rows else ""
 
@@ -113,7 +116,7 @@ def _flows(scenario: Scenario) -> str:
     rows = []
     for flow in scenario.model.flows:
         route = f"{flow.source or '(outside)'} -> {flow.target or '(outside)'}"
-        rows.append((flow.name, f"{route}   rate {flow.rate.text}"))
+        rows.append((flow.name, route, flow.rate.text))
     return _section("flows (persons per day)", rows)
 
 
