@@ -9,6 +9,7 @@ Distributions, vol. 1 (1994) and vol. 2 (1995), written out independently of the
 from __future__ import annotations
 
 import math
+from types import MappingProxyType
 
 import numpy as np
 import pytest
@@ -17,18 +18,24 @@ from scipy import stats
 from ensemble.sampling.distributions import (beta_parameters, frozen_distribution,
                                              gamma_parameters, inverse_cdf,
                                              lognormal_parameters)
-from ensemble.sampling.uniform import uniform_draws
-from sampling_fixtures import dist, scenario
+from ensemble.scenario.schema import Distribution
 
 N = 4000
 KS_LEVEL = 1e-3
 """Significance level of the KS checks (common practice, no source)."""
 
 
-def draws(n: int = N, name: str = "x", seed: int = 2027) -> np.ndarray:
-    """n random-method uniform draws of one column."""
-    sc = scenario({}, members=n, seed=seed)
-    return uniform_draws(sc, [(name, 0)], np.arange(n))[(name, 0)]
+def draws(n: int = N, seed: int = 2027) -> np.ndarray:
+    """n uniform draws in (0, 1) from numpy's PCG64 generator."""
+    u = np.random.default_rng(seed).random(n)
+    assert np.all(u > 0)
+    return u
+
+
+def dist(family: str, truncation=(None, None), values=(), weights=(),
+         **arguments: float) -> Distribution:
+    return Distribution(family=family, arguments=MappingProxyType(arguments),
+                        truncation=truncation, values=tuple(values), weights=tuple(weights))
 
 
 # Reference distributions from the moment formulas (JKB 1994 vol. 1 ch. 14 lognormal:
