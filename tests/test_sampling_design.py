@@ -113,6 +113,7 @@ wave = "1 + 0.2 * sin(2 * pi * t / 365)"
 
 [sampling]
 method = "{method}"
+{variants}
 """
 
 
@@ -127,8 +128,8 @@ def seir(tmp_path, members=1000, method="random", extra=""):
     return load(tmp_path, SEIR, members, method, extra=extra)
 
 
-def age(tmp_path, members=1000, method="random", seed_high=20):
-    return load(tmp_path, AGE, members, method, seed_high=seed_high)
+def age(tmp_path, members=1000, method="random", seed_high=20, variants=""):
+    return load(tmp_path, AGE, members, method, seed_high=seed_high, variants=variants)
 
 
 def design(scenario, variant_index: int, members) -> Design:
@@ -305,3 +306,52 @@ def test_chunk_far_into_a_large_ensemble_allocates_per_chunk(tmp_path):
         tracemalloc.stop()
     assert d.parameters.shape[1] == d.initial.shape[1] == 1000
     assert peak < 1_000_000
+
+
+def test_variant_matrix_override_reaches_derived_values(tmp_path):
+    """A variant's matrix replaces the model's in derived parameters: with the identity,
+    pressure = susceptibility."""
+    sc = age(tmp_path, 64, variants="""
+[[variants]]
+name = "base"
+
+[[variants]]
+name = "no-mixing"
+matrices = { contact = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]] }
+""")
+    base, no_mixing = (design(sc, v, np.arange(64)).reported for v in range(2))
+    assert np.array_equal(no_mixing["pressure"], no_mixing["susceptibility"])
+    assert np.array_equal(base["susceptibility"], no_mixing["susceptibility"])
+    assert not np.array_equal(base["pressure"], no_mixing["pressure"])
+
+
+@pytest.mark.parametrize("initial, all_valid", [
+    ('{ S = "1000 - seed_infectious", I = "seed_infectious" }', True),
+    ('{ S = 990, I = "seed_infectious" }', False),
+])
+def test_start_without_rest_must_add_up_to_the_population(tmp_path, initial, all_valid):
+    """Without "rest" the starts must add up to the population (SPEC section 1, relative
+    tolerance 1e-9); a member whose drawn starts do not is an impossible start."""
+    path = tmp_path / "no-rest.toml"
+    path.write_text(textwrap.dedent(f"""
+        [scenario]
+        name = "no-rest"
+        days = 5
+        members = 50
+
+        [model]
+        compartments = ["S", "I"]
+        population = 1000
+        initial = {initial}
+
+        [[model.flows]]
+        from = "S"
+        to = "I"
+        rate = "0.3 * S * I / N"
+
+        [parameters]
+        seed_infectious = {{ dist = "uniform", low = 5, high = 15 }}
+    """))
+    d = design(load_scenario(path), 0, np.arange(50))
+    assert np.array_equal(d.invalid_start, np.full(50, not all_valid))
+    assert np.isnan(d.initial[:, d.invalid_start]).all()

@@ -109,12 +109,8 @@ def constant_values(scenario: Scenario, variant: Variant,
         form = parameter.form
         if isinstance(form, Fixed):
             values[name] = _fixed_value(form.value)
-        elif isinstance(form, Distribution) and name in drawn:
-            values[name] = (np.stack([inverse_cdf(form, uniforms[(name, g)])
-                                      for g in range(n_groups)])
-                            if form.per_group else inverse_cdf(form, uniforms[(name, 0)]))
         elif isinstance(form, Distribution):
-            values[name] = _fixed_value(form.arguments["value"])
+            values[name] = _distribution_value(name, form, uniforms, n_groups)
         elif isinstance(form, Derived) and name not in varying:
             derived[name] = form.expression
     order = TopologicalSorter({name: expression.names & derived.keys()
@@ -122,6 +118,18 @@ def constant_values(scenario: Scenario, variant: Variant,
     for name in order:
         values[name] = evaluate(derived[name].tree, values)
     return values
+
+
+def _distribution_value(name: str, form: Distribution,
+                        uniforms: Mapping[ColumnKey, np.ndarray], n_groups: int) -> np.ndarray:
+    """(M,) values of a drawn parameter, (G, M) with ``per_group``; (1,) or (G, 1) for
+    the ``fixed`` family."""
+    elements = range(n_groups if form.per_group else 1)
+    if needs_draw(form):
+        drawn = [inverse_cdf(form, uniforms[(name, g)]) for g in elements]
+    else:
+        drawn = [np.array([float(form.arguments["value"])]) for _ in elements]
+    return np.stack(drawn) if form.per_group else drawn[0]
 
 
 def initial_state(scenario: Scenario, values: Mapping[str, np.ndarray],
