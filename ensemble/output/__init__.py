@@ -5,13 +5,17 @@ from ensemble.output.store import (
     ChunkKey,
     FingerprintMismatch,
     IncompleteWork,
+    NotAResult,
     OutputError,
     ResultExists,
     StoreWriteError,
     WorkStore,
+    partial_path,
+    result_fingerprint,
 )
 
 __all__ = [
-    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "OutputError", "ParameterInfo",
-    "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
+    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
+    "ParameterInfo", "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
+    "partial_path", "result_fingerprint",
 ]

@@ -12,8 +12,8 @@ from typing import Literal
 import numpy as np
 
 import ensemble
-from ensemble.model.compile import CompiledModel
-from ensemble.scenario.schema import Schedule, Scenario
+from ensemble.model.compile import CompiledModel, time_varying_parameters
+from ensemble.scenario.schema import Scenario
 
 
 @dataclass(frozen=True)
@@ -45,8 +45,9 @@ class ResultLayout:
     members : members per variant.
     parameters : name -> :class:`ParameterInfo` for every parameter constant in time in
         every variant (reported as ``param_<name>``), in file order.
-    time_varying_parameters : names of the parameters that follow a schedule in some
-        variant (global attribute ``time_varying_parameters``).
+    time_varying_parameters : names of the parameters that change with time in some
+        variant: schedules and what is derived from them (global attribute
+        ``time_varying_parameters``).
     fingerprint : digest of everything that changes the numbers (checked on resume).
     history : the command and time that made the file (global attribute ``history``).
     source : program and version (global attribute ``source``).
@@ -109,12 +110,11 @@ class ResultLayout:
         names: list[str] = []
         for merged in per_variant:
             names.extend(n for n in merged if n not in names)
-        time_varying = tuple(n for n in names
-                             if any(isinstance(m[n].form, Schedule)
-                                    for m in per_variant if n in m))
+        varying = set().union(*(time_varying_parameters(m) for m in per_variant))
+        time_varying = tuple(n for n in names if n in varying)
         parameters: dict[str, ParameterInfo] = {}
         for name in names:
-            if name in time_varying:
+            if name in varying or any(name not in m for m in per_variant):
                 continue
             defined = [m[name] for m in per_variant if name in m]
             shapes = {p.shape for p in defined}

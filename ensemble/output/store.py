@@ -23,17 +23,28 @@ from __future__ import annotations
 import json
 import os
 import shutil
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
+from typing import BinaryIO
 
+import netCDF4
 import numpy as np
 
 from ensemble.integrate.check import ChunkResult
+from ensemble.output.dataset import (
+    STREAMED,
+    build_dataset,
+    create_streamed_variable,
+    encoding,
+    file_shape,
+)
 from ensemble.output.layout import ParameterInfo, ResultLayout
+from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
-    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "OutputError", "ParameterInfo",
-    "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
+    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
+    "ParameterInfo", "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
+    "partial_path", "result_fingerprint",
 ]
 
 ChunkKey = tuple[int, int, int]
@@ -42,6 +53,7 @@ ChunkKey = tuple[int, int, int]
 MANIFEST = "manifest.json"
 CHUNK_PREFIX = "chunk-"
 TEMP_PREFIX = ".tmp-"
+MEMBER_FILE = "members.npz"
 DEFAULT_BLOCK_BYTES = 128 * 2**20
 """Memory for one block of trajectories gathered over all members in :meth:`finish`."""
 
@@ -92,7 +104,10 @@ class WorkStore:
     def is_complete(path: str | os.PathLike[str], fingerprint: str) -> bool:
         """True when ``path`` is a complete result file with this ``fingerprint`` (a
         resumed run then has nothing to do)."""
-        raise NotImplementedError
+        try:
+            return result_fingerprint(path) == fingerprint
+        except NotAResult:
+            return False
 
     @classmethod
     def open(cls, path: str | os.PathLike[str], layout: ResultLayout, *, resume: bool,
@@ -102,11 +117,12 @@ class WorkStore:
         Parameters
         ----------
         path : the final result file; work in progress goes to ``<path>.partial``.
+            Missing parent directories are created.
         layout : the result's layout; its fingerprint is recorded in the manifest.
         resume : keep the chunks of an existing ``.partial`` (whose fingerprint must
-            equal ``layout.fingerprint``); without it, an existing ``.partial`` is
-            discarded.  A ``.partial`` without a manifest (killed while being created)
-            is started afresh either way.
+            equal ``layout.fingerprint``) and remove stray temporaries; without it, an
+            existing ``.partial`` is discarded.  A ``.partial`` without a readable
+            manifest is started afresh either way.
         force : allow replacing an existing ``path`` (only at :meth:`finish`, so the old
             file stays until the new one is complete).
         block_bytes : memory for one block of trajectories in :meth:`finish`.
@@ -118,13 +134,78 @@ class WorkStore:
         FingerprintMismatch : resume of work made with a different fingerprint.
         StoreWriteError : the directory cannot be created or written.
         """
-        raise NotImplementedError
+        path = Path(path)
+        if path.exists() and not force:
+            raise ResultExists(f"{path} already exists; it is replaced only when asked "
+                               "to (--force)")
+        store = cls(path, layout, block_bytes=block_bytes)
+        try:
+            store._prepare(resume)
+        except OSError as error:
+            raise StoreWriteError(_describe(error, store.work)) from error
+        return store
+
+    def _prepare(self, resume: bool) -> None:
+        """Adopt or create the work directory (see :meth:`open`)."""
+        if self.work.exists() and not self.work.is_dir():
+            raise StoreWriteError(f"{self.work} exists and is not a work directory")
+        manifest = self._read_manifest()
+        if resume and manifest is not None:
+            if manifest.get("fingerprint") != self.layout.fingerprint:
+                raise FingerprintMismatch(
+                    f"{self.work} holds work of a different scenario or settings "
+                    f"(fingerprint {str(manifest.get('fingerprint'))[:12]}..., this run "
+                    f"{self.layout.fingerprint[:12]}...); run without resuming to start "
+                    "afresh")
+            for stray in self.work.glob(f"{TEMP_PREFIX}*"):
+                shutil.rmtree(stray, ignore_errors=True)
+            return
+        if self.work.exists():
+            shutil.rmtree(self.work)
+        self.work.parent.mkdir(parents=True, exist_ok=True)
+        temporary = self.work.parent / f"{TEMP_PREFIX}{self.work.name}-{os.getpid()}"
+        shutil.rmtree(temporary, ignore_errors=True)
+        temporary.mkdir()
+        text = json.dumps(self._manifest(), indent=1).encode()
+        _write_durably(temporary / MANIFEST, lambda f: f.write(text))
+        _fsync_directory(temporary)
+        os.rename(temporary, self.work)
+        _fsync_directory(self.work.parent)
+
+    def _manifest(self) -> dict[str, object]:
+        layout = self.layout
+        return {"format": 1, "fingerprint": layout.fingerprint,
+                "variants": list(layout.variants), "members": layout.members,
+                "n_states": layout.n_states, "n_flow_elements": layout.n_flow_elements,
+                "n_reports": layout.n_reports, "parameters": list(layout.parameters)}
+
+    def _read_manifest(self) -> dict[str, object] | None:
+        try:
+            manifest = json.loads((self.work / MANIFEST).read_text())
+        except (OSError, ValueError):
+            return None
+        return manifest if isinstance(manifest, dict) else None
 
     # ------------------------------------------------------------------ chunks
 
+    def _chunk_directory(self, key: ChunkKey) -> Path:
+        variant, first, end = key
+        return self.work / f"{CHUNK_PREFIX}v{variant}-{first:010d}-{end:010d}"
+
     def saved(self) -> list[ChunkKey]:
         """Keys of the chunks on disk, sorted."""
-        raise NotImplementedError
+        keys = []
+        for entry in self.work.glob(f"{CHUNK_PREFIX}v*"):
+            variant, first, end = entry.name.removeprefix(f"{CHUNK_PREFIX}v").split("-")
+            keys.append((int(variant), int(first), int(end)))
+        return sorted(keys)
+
+    def _covered(self) -> dict[int, list[tuple[int, int]]]:
+        """Per variant, the merged member ranges already saved."""
+        ranges: dict[int, list[tuple[int, int]]] = {}
+        for variant, first, end in self.saved():
+            ranges.setdefault(variant, []).append((first, end))
+        return {variant: _merge(spans) for variant, spans in ranges.items()}
 
     def pending(self, chunks: Sequence[ChunkKey]) -> list[ChunkKey]:
         """The member ranges of ``chunks`` not yet saved.
@@ -134,11 +215,39 @@ class WorkStore:
         to the ranges still missing, so the keys returned may be sub-ranges of those
         asked for.  Order follows ``chunks``.
         """
-        raise NotImplementedError
+        covered = self._covered()
+        missing: list[ChunkKey] = []
+        for variant, first, end in chunks:
+            cursor = first
+            for start, stop in covered.get(variant, []):
+                if stop <= cursor:
+                    continue
+                if start >= end:
+                    break
+                if start > cursor:
+                    missing.append((variant, cursor, start))
+                cursor = max(cursor, stop)
+            if cursor < end:
+                missing.append((variant, cursor, end))
+        return missing
+
+    def _check_key(self, key: ChunkKey) -> int:
+        """Validate ``key`` against the layout and the saved chunks; its member count."""
+        variant, first, end = key
+        if not (0 <= variant < len(self.layout.variants) and 0 <= first < end
+                <= self.layout.members):
+            raise ValueError(f"chunk {key} is outside {len(self.layout.variants)} variants "
+                             f"x {self.layout.members} members")
+        for other in self.saved():
+            if other != key and other[0] == variant and other[1] < end and first < other[2]:
+                raise ValueError(f"chunk {key} overlaps the saved chunk {other}")
+        return end - first
 
     def save(self, key: ChunkKey, result: ChunkResult,
              reported: Mapping[str, np.ndarray]) -> None:
         """Store one finished chunk durably (temporary name, fsync, rename).
+
+        Saving the same key again replaces the chunk.
 
         Parameters
         ----------
@@ -149,32 +258,284 @@ class WorkStore:
 
         Raises
         ------
-        ValueError : shapes or members do not match the key and layout.
+        ValueError : shapes or members do not match the key and layout, or the key
+            overlaps a different saved chunk.
         StoreWriteError : the chunk could not be written (nothing half-written stays).
         """
-        raise NotImplementedError
+        layout = self.layout
+        count = self._check_key(key)
+        if not np.array_equal(result.members, np.arange(key[1], key[2])):
+            raise ValueError(f"chunk {key} holds members {result.members[:3]}...")
+        expected = {"state": (count, layout.n_states, layout.n_reports),
+                    "flow_count": (count, layout.n_flow_elements, layout.n_reports),
+                    "step_error": (count,), "observed_order": (count,), "status": (count,)}
+        for name, shape in expected.items():
+            if getattr(result, name).shape != shape:
+                raise ValueError(f"chunk {key}: {name} has shape "
+                                 f"{getattr(result, name).shape}, expected {shape}")
+        per_member = {"step_error": result.step_error, "observed_order": result.observed_order,
+                      "status": result.status.astype(np.uint8)}
+        for name in layout.parameters:
+            if name not in reported:
+                raise ValueError(f"chunk {key}: parameter {name!r} is not reported")
+            values = np.asarray(reported[name], dtype=np.float64)
+            per_member[f"param_{name}"] = values.T if values.ndim == 2 else values
+        per_member.update(member_metrics(result.state, result.flow_count, layout.times))
+        final = self._chunk_directory(key)
+        temporary = self.work / f"{TEMP_PREFIX}{final.name}-{os.getpid()}"
+        try:
+            shutil.rmtree(temporary, ignore_errors=True)
+            temporary.mkdir()
+            for name in STREAMED:
+                time_major = np.ascontiguousarray(getattr(result, name).transpose(2, 1, 0))
+                _write_durably(temporary / f"{name}.npy", lambda f: np.save(f, time_major))
+            _write_durably(temporary / MEMBER_FILE, lambda f: np.savez(f, **per_member))
+            _fsync_directory(temporary)
+            if final.exists():
+                shutil.rmtree(final)
+            os.rename(temporary, final)
+            _fsync_directory(self.work)
+        except OSError as error:
+            shutil.rmtree(temporary, ignore_errors=True)
+            raise StoreWriteError(_describe(error, self.work)) from error
 
     def load(self, key: ChunkKey) -> tuple[ChunkResult, dict[str, np.ndarray]]:
         """Read a saved chunk back as (result, reported), e.g. to copy it to another
         store."""
-        raise NotImplementedError
+        directory = self._chunk_directory(key)
+        if not directory.is_dir():
+            raise KeyError(f"chunk {key} is not saved in {self.work}")
+        trajectories = {name: np.load(directory / f"{name}.npy").transpose(2, 1, 0)
+                        for name in STREAMED}
+        with np.load(directory / MEMBER_FILE) as members:
+            result = ChunkResult(members=np.arange(key[1], key[2], dtype=np.int64),
+                                 step_error=members["step_error"],
+                                 observed_order=members["observed_order"],
+                                 status=members["status"], **trajectories)
+            reported = {name: members[f"param_{name}"].T for name in self.layout.parameters}
+        return result, reported
 
     # ------------------------------------------------------------------ finishing
+
+    def _check_complete(self) -> list[ChunkKey]:
+        """The saved keys, after checking that they cover every member of every variant."""
+        covered = self._covered()
+        gaps = []
+        for index, variant in enumerate(self.layout.variants):
+            holes = self.pending([(index, 0, self.layout.members)])
+            gaps.extend(f"members {first}-{end - 1} of variant {variant!r}"
+                        for _, first, end in holes)
+        if gaps:
+            raise IncompleteWork(f"{self.work} is not complete: " + "; ".join(gaps)
+                                 + f" are missing ({sum(map(len, covered.values()))} "
+                                 "saved ranges)")
+        return self.saved()
 
     def finish(self) -> Path:
         """Write the result file and remove the work in progress.
 
         Every member of every variant must be saved.  Per-member metrics come from the
         chunks; quantiles over members (numpy's default, linear, definition; members with
-        the non-finite or invalid-start bits left out) are computed in blocks of times of
-        at most ``block_bytes``.  The netCDF-4 file is written to a temporary name in the
-        destination directory, fsynced and renamed to ``path`` with :func:`os.replace`;
-        then ``<path>.partial`` is removed.  With ``output.members`` false the file leaves
-        out ``state`` and ``flow_count``.
+        the non-finite or invalid-start bits left out) are computed in blocks of at most
+        ``block_bytes``, reading each chunk's trajectories once.  The netCDF-4 file is
+        written to a temporary name in the destination directory, fsynced and renamed to
+        ``path`` with :func:`os.replace`; then ``<path>.partial`` is removed.  With
+        ``output.members`` false the file leaves out ``state`` and ``flow_count``.
 
         Raises
         ------
         IncompleteWork : members are missing (the message names the ranges).
         StoreWriteError : the file could not be written; the chunks are kept.
         """
-        raise NotImplementedError
+        keys = self._check_complete()
+        temporary = self.path.parent / f"{TEMP_PREFIX}{self.path.name}-{os.getpid()}"
+        try:
+            self._write_result(keys, temporary)
+            os.replace(temporary, self.path)
+            _fsync_directory(self.path.parent)
+            shutil.rmtree(self.work)
+        except OSError as error:
+            temporary.unlink(missing_ok=True)
+            raise StoreWriteError(_describe(error, self.path)) from error
+        except BaseException:
+            temporary.unlink(missing_ok=True)
+            raise
+        return self.path
+
+    def _write_result(self, keys: list[ChunkKey], target: Path) -> None:
+        """Write the complete result file to ``target`` and fsync it."""
+        layout = self.layout
+        variables = self._gather_members(keys)
+        status = variables["status"]
+        included = in_summary(status)
+        for name in STREAMED:
+            variables[f"{name}_quantile"] = self._trajectory_quantiles(name, keys, included)
+        variables.update(summary_quantiles(variables, status,
+                                           layout.scenario.output.quantiles,
+                                           _compare_index(layout)))
+        dataset = build_dataset(layout, variables)
+        del variables
+        dataset.to_netcdf(target, format="NETCDF4", engine="netcdf4",
+                          encoding=encoding(layout, dataset))
+        dataset.close()
+        if layout.scenario.output.members:
+            self._stream_trajectories(keys, target)
+        with open(target, "rb") as handle:
+            os.fsync(handle.fileno())
+
+    def _gather_members(self, keys: list[ChunkKey]) -> dict[str, np.ndarray]:
+        """Every per-member array of every chunk, as (variant, member, ...) arrays."""
+        layout = self.layout
+        gathered: dict[str, np.ndarray] = {}
+        for key in keys:
+            variant, first, end = key
+            with np.load(self._chunk_directory(key) / MEMBER_FILE) as members:
+                for name in members.files:
+                    values = members[name]
+                    if name not in gathered:
+                        gathered[name] = np.empty(
+                            (len(layout.variants), layout.members, *values.shape[1:]),
+                            dtype=values.dtype)
+                    gathered[name][variant, first:end] = values
+        return gathered
+
+    def _trajectory_quantiles(self, name: str, keys: list[ChunkKey],
+                              included: np.ndarray) -> np.ndarray:
+        """(variant, quantile, rows, time) quantiles over the included members of
+        trajectory ``name``, gathered in blocks of times (and rows) of at most
+        ``block_bytes``; each chunk file is read once."""
+        layout = self.layout
+        rows = layout.n_states if name == "state" else layout.n_flow_elements
+        probabilities = layout.scenario.output.quantiles
+        result = np.empty((len(layout.variants), len(probabilities), rows, layout.n_reports))
+        self.largest_block_bytes = getattr(self, "largest_block_bytes", 0)
+        self.block_count = getattr(self, "block_count", 0)
+        for variant in range(len(layout.variants)):
+            spans = [(first, end) for v, first, end in keys if v == variant]
+            count = int(included[variant].sum())
+            for times, row_range in block_plan(count, rows, layout.n_reports,
+                                               self.block_bytes):
+                block = np.empty((times.stop - times.start, row_range.stop - row_range.start,
+                                  count))
+                position = 0
+                for first, end in spans:
+                    chosen = included[variant, first:end]
+                    size = int(chosen.sum())
+                    stored = np.load(self._chunk_directory((variant, first, end))
+                                     / f"{name}.npy", mmap_mode="r")
+                    block[..., position:position + size] = stored[times, row_range][..., chosen]
+                    del stored
+                    position += size
+                self.largest_block_bytes = max(self.largest_block_bytes, block.nbytes)
+                self.block_count += 1
+                values = quantiles(block, probabilities, axis=-1, overwrite_input=True)
+                result[variant, :, row_range, times] = values.transpose(0, 2, 1)
+        return result
+
+    def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
+        """Append ``state`` and ``flow_count`` of every member to the file, chunk by
+        chunk."""
+        with netCDF4.Dataset(target, "a") as nc:
+            for name in STREAMED:
+                variable = create_streamed_variable(nc, self.layout, name)
+                for key in keys:
+                    variant, first, end = key
+                    stored = np.load(self._chunk_directory(key) / f"{name}.npy")
+                    member_major = stored.transpose(2, 1, 0)[np.newaxis]
+                    variable[variant, first:end] = file_shape(self.layout, name,
+                                                              member_major)[0]
+                    del stored, member_major
+
+
+def block_plan(members: int, rows: int, times: int, block_bytes: int
+               ) -> list[tuple[slice, slice]]:
+    """Blocks (times, rows) of a (times, rows, members) float64 array, each of at most
+    ``block_bytes`` (or a single row and time when even that is larger): whole row
+    ranges while they fit, else single times split by rows."""
+    per_row_time = max(members, 1) * 8
+    if rows * per_row_time <= block_bytes:
+        step = max(1, block_bytes // (rows * per_row_time))
+        return [(slice(t, min(t + step, times)), slice(0, rows))
+                for t in range(0, times, step)]
+    step = max(1, block_bytes // per_row_time)
+    return [(slice(t, t + 1), slice(r, min(r + step, rows)))
+            for t in range(times) for r in range(0, rows, step)]
+
+
+# ---------------------------------------------------------------------- result files
+
+class NotAResult(OutputError):
+    """The path is not a complete result file (CLI: exit 2)."""
+
+
+def result_fingerprint(path: str | os.PathLike[str]) -> str:
+    """The fingerprint of the complete result file at ``path``.
+
+    A complete result is a netCDF file with the global attribute ``fingerprint`` and the
+    variable ``members_in_summary`` (which only :meth:`WorkStore.finish` writes).
+
+    Raises
+    ------
+    NotAResult : missing, a work-in-progress directory, not netCDF, or not complete.
+    """
+    path = Path(path)
+    if path.is_dir() or path.name.endswith(".partial"):
+        raise NotAResult(f"{path} is the work in progress of an unfinished run, not a "
+                         "result; finish it by running again with --resume")
+    if not path.is_file():
+        raise NotAResult(f"{path} does not exist")
+    try:
+        with netCDF4.Dataset(path) as nc:
+            fingerprint = getattr(nc, "fingerprint", None)
+            complete = "members_in_summary" in nc.variables
+    except OSError as error:
+        raise NotAResult(f"{path} is not a netCDF file ({error})") from error
+    if fingerprint is None or not complete:
+        raise NotAResult(f"{path} is not a complete ensemble result (a part file, or "
+                         "another netCDF file)")
+    return str(fingerprint)
+
+
+# ---------------------------------------------------------------------- helpers
+
+def _compare_index(layout: ResultLayout) -> int | None:
+    """Index of the ``output.compare_to`` variant (None when not set)."""
+    other = layout.scenario.output.compare_to
+    return layout.variants.index(other) if other else None
+
+
+def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted, merged half-open ranges."""
+    merged: list[tuple[int, int]] = []
+    for start, stop in sorted(spans):
+        if merged and start <= merged[-1][1]:
+            merged[-1] = (merged[-1][0], max(merged[-1][1], stop))
+        else:
+            merged.append((start, stop))
+    return merged
+
+
+def _write_durably(path: Path, write: Callable[[BinaryIO], object]) -> None:
+    """Create ``path`` with ``write(handle)`` and fsync it."""
+    with open(path, "wb") as handle:
+        write(handle)
+        handle.flush()
+        os.fsync(handle.fileno())
+
+
+def _fsync_directory(path: Path) -> None:
+    """Make a rename or new entry in directory ``path`` durable."""
+    descriptor = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(descriptor)
+    finally:
+        os.close(descriptor)
+
+
+def _describe(error: OSError, where: Path) -> str:
+    """One clear line for a failed write."""
+    reason = error.strerror or str(error)
+    name = error.filename or where
+    return (f"cannot write {name}: {reason} (finished chunks are kept in "
+            f"{where if where.name.endswith('.partial') else partial_path(where)} "
+            "for --resume)")
