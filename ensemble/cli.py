@@ -9,6 +9,7 @@ from __future__ import annotations
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
+from enum import Enum
 from pathlib import Path
 from typing import Optional
 
@@ -16,6 +17,13 @@ import typer
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Run sampled ensembles of epidemic compartment models.")
+
+
+class Backend(str, Enum):
+    """Integration backends of ``ensemble run --backend``."""
+
+    numpy = "numpy"
+    compiled = "compiled"
 
 
 def _interrupt_on_sigterm(signum: int, frame: object) -> None:
@@ -42,8 +50,8 @@ def run(
     resume: bool = typer.Option(
         False, "--resume", help="Continue an interrupted run from <output>.partial."),
     force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
-    backend: Optional[str] = typer.Option(
-        None, "--backend", help="Integration backend: numpy or compiled."),
+    backend: Optional[Backend] = typer.Option(
+        None, "--backend", help="Integration backend (changes numbers at round-off level)."),
 ) -> None:
     """Run every variant of SCENARIO and write the result file."""
     import logging
@@ -57,32 +65,29 @@ def run(
     from ensemble.output.store import (FingerprintMismatch, OutputError, ResultExists,
                                        partial_path)
     from ensemble.run.execute import RunFailed
-    from ensemble.scenario.errors import ScenarioError
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
     signal.signal(signal.SIGTERM, _interrupt_on_sigterm)
     began = time.monotonic()
     now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
     history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
-    loaded = None
-    try:
+    with _fail_on_invalid():
         loaded = api.load_scenario(scenario, members=members, seed=seed)
+    for warning in api.scenario_warnings(loaded):
+        typer.echo(f"warning: {warning}", err=True)
+    work = partial_path(output or loaded.output.path)
+    try:
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
-                       address=address, resume=resume, force=force, backend=backend,
-                       history=history)
-    except ScenarioError as error:
-        _stop(str(error), 2)
+                       address=address, resume=resume, force=force,
+                       backend=backend.value if backend else None, history=history)
     except ResultExists as error:
-        _stop(f"{error}; use --force to replace it", 2)
+        _stop(f"error: {error}; use --force to replace it", 2)
     except FingerprintMismatch as error:
-        _stop(str(error), 2)
+        _stop(f"error: {error}", 2)
     except KeyboardInterrupt:
-        where = partial_path(output or loaded.output.path) if loaded else None
-        kept = f"; finished chunks are kept in {where}, continue with --resume" if where else ""
-        _stop(f"interrupted{kept}", 130)
+        _stop(f"interrupted; finished chunks are kept in {work}; continue with --resume", 130)
     except (RunFailed, OutputError, OSError) as error:
-        where = partial_path(output or loaded.output.path)
-        _stop(f"{error} (finished chunks are kept in {where}; continue with --resume)", 1)
+        _stop(f"error: {error} (finished chunks are kept in {work}; continue with --resume)", 1)
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
     typer.echo(f"{loaded.members} members x {len(loaded.variants)} variants "
@@ -94,7 +99,7 @@ def run(
 
 def _stop(message: str, status: int) -> None:
     """Print ``message`` as one line on standard error and exit with ``status``."""
-    typer.echo(f"error: {message}" if status != 130 else message, err=True)
+    typer.echo(message, err=True)
     raise typer.Exit(status)
 
 
