@@ -204,6 +204,11 @@ def test_rate_functions_survive_pickling(tmp_path):
     y, p, s = random_inputs(model, 4)
     np.testing.assert_array_equal(copy.rates(1.0, y, p, s), functions.rates(1.0, y, p, s))
     assert copy.source == functions.source
+    rate = model.rates[0]
+    hash(rate)
+    # a string's hash differs between processes: a cached hash must not travel
+    assert "_hash" not in pickle.loads(pickle.dumps(rate)).__dict__
+    assert pickle.loads(pickle.dumps(rate)) == rate
 
 
 def test_parameters_are_rows_of_the_slot_array(tmp_path):

@@ -15,7 +15,7 @@ import numpy as np
 
 from ensemble.model.derivatives import partial_derivatives
 from ensemble.model.ir import (Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef,
-                               apply, state_indices)
+                               apply)
 from ensemble.scenario.expressions import Call, Name, Negate, Node, Number
 from ensemble.scenario.schema import Derived, Parameter, Scenario, Schedule, Variant
 
@@ -112,7 +112,7 @@ def compile_model(scenario: Scenario, variant: Variant) -> CompiledModel:
         flows=tuple(flow.name for flow in model.flows),
         state_labels=tuple(_element_labels(model.compartments, model.groups)),
         rates=tuple(rates),
-        rate_derivatives=tuple(partial_derivatives(rate, state_indices(rate)) for rate in rates),
+        rate_derivatives=tuple(partial_derivatives(rate) for rate in rates),
         stoichiometry=_read_only(stoichiometry),
         parameter_slots=lowering.parameter_slots,
         schedule_slots=lowering.schedule_slots,

@@ -15,7 +15,7 @@ built and the Jacobian's sparsity pattern is exact.
 
 from __future__ import annotations
 
-from ensemble.model.ir import ONE, Apply, Const, ScalarNode, StateRef, apply
+from ensemble.model.ir import ONE, Apply, Const, ScalarNode, StateRef, apply, walk
 
 Derivative = ScalarNode | None
 
@@ -41,16 +41,23 @@ def _scale(factor: ScalarNode, d: Derivative) -> Derivative:
 
 
 class Differentiator:
-    """Partial derivatives with respect to one state row, memoised per subtree."""
+    """Partial derivatives with respect to one state row, memoised per subtree.
 
-    def __init__(self, state_index: int):
+    ``reads`` maps (at least) every Apply node of the trees to be differentiated to the
+    state rows it reads (see :func:`states_read`); subtrees that do not read the state
+    are not visited.
+    """
+
+    def __init__(self, state_index: int, reads: dict[ScalarNode, frozenset[int]]):
+        self._index = state_index
         self._target = StateRef(state_index)
+        self._reads = reads
         self._memo: dict[ScalarNode, Derivative] = {}
 
     def __call__(self, node: ScalarNode) -> Derivative:
         if node == self._target:
             return ONE
-        if not isinstance(node, Apply):
+        if not isinstance(node, Apply) or self._index not in self._reads[node]:
             return None
         if node not in self._memo:
             self._memo[node] = self._rule(node)
@@ -109,14 +116,30 @@ class Differentiator:
         return apply("mul", node, apply("add", via_exponent, via_base))
 
 
-def partial_derivatives(node: ScalarNode, states: tuple[int, ...]) -> tuple[tuple[int, ScalarNode], ...]:
-    """``(state, d node / d state)`` for each of ``states`` with a non-zero derivative.
+def states_read(node: ScalarNode) -> dict[ScalarNode, frozenset[int]]:
+    """The state rows each Apply node of ``node``'s tree reads."""
+    reads: dict[ScalarNode, frozenset[int]] = {}
+    for current in walk(node):
+        if isinstance(current, Apply):
+            rows: set[int] = set()
+            for arg in current.args:
+                if isinstance(arg, StateRef):
+                    rows.add(arg.index)
+                elif isinstance(arg, Apply):
+                    rows.update(reads[arg])
+            reads[current] = frozenset(rows)
+    return reads
 
-    A derivative that folds to the constant 0 is left out as well as a structural zero.
-    """
+
+def partial_derivatives(node: ScalarNode) -> tuple[tuple[int, ScalarNode], ...]:
+    """``(state, d node / d state)`` for each state row ``node`` reads, ascending, leaving
+    out structural zeros and derivatives that fold to the constant 0."""
+    reads = states_read(node)
+    states = sorted(reads[node]) if isinstance(node, Apply) else (
+        [node.index] if isinstance(node, StateRef) else [])
     result = []
     for index in states:
-        derivative = Differentiator(index)(node)
+        derivative = Differentiator(index, reads)(node)
         if derivative is not None and derivative != Const(0.0):
             result.append((index, derivative))
     return tuple(result)

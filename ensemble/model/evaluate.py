@@ -37,6 +37,10 @@ _NUMPY_NAMES = {
 ``select_le``, which is :func:`ensemble.model.ir.select_le`."""
 
 
+_ASSEMBLY_BLOCK_BYTES = 8 * 2**20
+"""Size of the temporary that :meth:`RateFunctions.state_jacobian` assembles at a time."""
+
+
 class RateFunctions:
     """Flow rates and their state derivatives for a chunk of members, in numpy.
 
@@ -105,10 +109,13 @@ class RateFunctions:
         partials of :meth:`rate_jacobian`: ``stoichiometry @ d rates / d y`` per member,
         laid out for a batched ``numpy.linalg.solve``."""
         n, members = self.model.n_states, partials.shape[1]
-        dense = self._assembly @ partials
         if out is None:
             out = np.empty((members, n, n))
-        out[...] = dense.T.reshape(members, n, n)
+        block = max(1, _ASSEMBLY_BLOCK_BYTES // (8 * n * n))
+        for start in range(0, members, block):
+            stop = min(start + block, members)
+            dense = self._assembly @ partials[:, start:stop]
+            out[start:stop] = dense.T.reshape(stop - start, n, n)
         return out
 
     def _call(self, name: str, t: float, y: np.ndarray, p: np.ndarray, s: np.ndarray,

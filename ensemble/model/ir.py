@@ -116,10 +116,31 @@ class TimeRef:
 
 @dataclass(frozen=True)
 class Apply:
-    """Operation ``op`` of :data:`OPERATIONS` on ``args``."""
+    """Operation ``op`` of :data:`OPERATIONS` on ``args``.
+
+    The hash is computed once and kept (trees are hashed often and can be deep); it is
+    left out of the pickled state because string hashes differ between processes.
+    """
 
     op: str
     args: tuple["ScalarNode", ...]
+
+    def __hash__(self) -> int:
+        cached = self.__dict__.get("_hash")
+        if cached is None:
+            cached = hash((self.op, self.args))
+            object.__setattr__(self, "_hash", cached)
+        return cached
+
+    def __eq__(self, other: object) -> bool:
+        if self is other:
+            return True
+        if not isinstance(other, Apply):
+            return NotImplemented
+        return hash(self) == hash(other) and self.op == other.op and self.args == other.args
+
+    def __getstate__(self) -> dict[str, object]:
+        return {"op": self.op, "args": self.args}
 
 
 ScalarNode = Union[Const, StateRef, ParamRef, ScheduleRef, TimeRef, Apply]
@@ -189,8 +210,3 @@ def walk(*roots: ScalarNode) -> Iterator[ScalarNode]:
                 continue
             stack.append((current, True))
             stack.extend((arg, False) for arg in reversed(current.args))
-
-
-def state_indices(node: ScalarNode) -> tuple[int, ...]:
-    """The state rows ``node`` reads, sorted."""
-    return tuple(sorted({n.index for n in walk(node) if isinstance(n, StateRef)}))
