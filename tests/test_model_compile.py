@@ -216,3 +216,26 @@ def test_parameters_are_rows_of_the_slot_array(tmp_path):
     assert model.rates[1] == Apply("div", (StateRef(1), ParamRef(0)))
     with pytest.raises(ValueError):
         apply("add", StateRef(0))
+
+
+def test_constant_time_only_leaf_and_repeated_rates(tmp_path):
+    """Rates that need no work array (a constant, a function of t alone, a bare state,
+    the same tree twice) still fill every member's row."""
+    body = VITAL.replace('rate = "birth_rate * N"', 'rate = "25"').replace(
+        'rate = "death_rate * S"', 'rate = "1 + sin(t)"').replace(
+        'rate = "death_rate * E"', 'rate = "E"').replace(
+        'rate = "death_rate * R"', 'rate = "(death_rate + disease_death) * I"')
+    model = compiled(tmp_path, body)
+    functions = RateFunctions(model)
+    for members in (0, 1, 3):
+        y, p, s = random_inputs(model, members)
+        rates = functions.rates(2.0, y, p, s)
+        flows = {name: rates[k] for k, name in enumerate(model.flows)}
+        np.testing.assert_array_equal(flows["births"], np.full(members, 25.0))
+        np.testing.assert_array_equal(flows["deaths_S"], np.full(members, 1 + np.sin(2.0)))
+        np.testing.assert_array_equal(flows["deaths_E"], y[1])
+        np.testing.assert_array_equal(flows["deaths_R"], flows["deaths_I"])
+        partials = functions.rate_jacobian(2.0, y, p, s)
+        assert partials.shape == (functions.nnz, members)
+    assert model.rate_derivatives[model.flows.index("births")] == ()
+    assert model.rate_derivatives[model.flows.index("deaths_E")] == ((1, Const(1.0)),)
