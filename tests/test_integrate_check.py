@@ -1,0 +1,193 @@
+"""integrate_chunk: member independence, status bits, and the step check's edge cases."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+
+from ensemble.integrate.check import integrate_chunk, observed_order
+from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START, NON_FINITE,
+                                       STEP_CHECK_FAILED)
+from integrate_fixtures import load_case, subset
+
+ALL_METHODS = ["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
+
+SEASONAL = """
+[scenario]
+name = "seasonal"
+days = 20
+members = 7
+seed = 21
+
+[model]
+compartments = ["S", "I", "R"]
+population = 20000
+initial = { S = "rest", I = 30 }
+
+[[model.flows]]
+from = "S"
+to = "I"
+rate = "beta * S * I / N * (1 + 0.3 * sin(2 * pi * t / 7)) * exp(-t / 50)"
+
+[[model.flows]]
+from = "I"
+to = "R"
+rate = "gamma * I + 0.1 * sqrt(I)"
+
+[[model.flows]]
+from = "R"
+to = "S"
+rate = "min(0.02 * R, max(5, 0.001 * R))"
+
+[parameters]
+beta = { dist = "uniform", low = 0.3, high = 0.9 }
+gamma = { dist = "gamma", mean = 0.25, sd = 0.05 }
+
+[solver]
+step = 0.5
+report_every = 1
+check = { levels = 3 }
+"""
+
+
+def _results_equal(a, b) -> None:
+    for field in ("state", "flow_count", "step_error", "observed_order", "status"):
+        np.testing.assert_array_equal(getattr(a, field), getattr(b, field), err_msg=field)
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+def test_member_bits_do_not_depend_on_the_chunk(tmp_path, method):
+    """The same member gives the same bits alone, in a reversed chunk and in any split,
+    even next to a member that blows up (SPEC section 1: fixed order of evaluation, no
+    reduction across members)."""
+    case = load_case(tmp_path, SEASONAL)
+    beta = case.design.parameters[case.row("beta", "parameter")].copy()
+    beta[3] = 1e6
+    case = case.with_parameter("beta", beta)
+    solver = dataclasses.replace(case.scenario.solver, method=method)
+
+    def run(members):
+        return integrate_chunk(case.model, subset(case.design, members), solver,
+                               case.scenario.n_reports)
+
+    whole = run(np.arange(7))
+    order = np.array([6, 5, 4, 3, 2, 1, 0])
+    reversed_chunk = run(order)
+    _results_equal(dataclasses.replace(reversed_chunk, **{
+        f: getattr(reversed_chunk, f)[np.argsort(order)]
+        for f in ("members", "state", "flow_count", "step_error", "observed_order", "status")
+    }), whole)
+    for part in (np.array([0, 1, 2]), np.array([3]), np.array([4, 5, 6])):
+        piece = run(part)
+        _results_equal(piece, dataclasses.replace(whole, **{
+            f: getattr(whole, f)[part]
+            for f in ("members", "state", "flow_count", "step_error", "observed_order",
+                      "status")}))
+
+
+def test_blown_up_member_is_flagged_and_holds_nan(tmp_path):
+    """A member whose state overflows gets NON_FINITE and is NaN from then on; the others
+    are finite and unflagged (issue 3, item 4)."""
+    case = load_case(tmp_path, SEASONAL)
+    beta = case.design.parameters[case.row("beta", "parameter")].copy()
+    beta[3] = 1e6
+    case = case.with_parameter("beta", beta)
+    trajectory = case.run("forward-euler")
+    assert trajectory.status[3] & NON_FINITE
+    gone = np.isnan(trajectory.state[3]).all(axis=0)
+    first = int(np.argmax(gone))
+    assert 0 < first and gone[first:].all() and np.isfinite(trajectory.state[3, :, :first]).all()
+    assert np.isnan(trajectory.flow_count[3, :, first:]).all()
+    others = np.delete(np.arange(7), 3)
+    assert np.isfinite(trajectory.state[others]).all()
+    assert not (trajectory.status[others] & NON_FINITE).any()
+
+
+def test_invalid_start_is_nan_and_only_flagged_as_such(tmp_path):
+    """A member whose drawn start is impossible is not integrated: NaN everywhere, only
+    the INVALID_START bit (SPEC section 1, [model] initial)."""
+    case = load_case(tmp_path, SEASONAL)
+    initial = case.design.initial.copy()
+    initial[:, 2] = np.nan
+    invalid = np.zeros(7, bool)
+    invalid[2] = True
+    case = dataclasses.replace(case, design=dataclasses.replace(
+        case.design, initial=initial, invalid_start=invalid))
+    result = case.chunk("trapezoid")
+    assert result.status[2] == INVALID_START
+    assert np.isnan(result.state[2]).all() and np.isnan(result.flow_count[2]).all()
+    assert np.isnan(result.step_error[2])
+    assert not (result.status[np.arange(7) != 2] & (INVALID_START | NON_FINITE)).any()
+
+
+def test_check_off_and_two_levels_leave_nan(tmp_path):
+    """``enabled = false``: step_error NaN and never STEP_CHECK_FAILED; ``levels = 2``:
+    observed_order NaN (SPEC section 3)."""
+    case = load_case(tmp_path, SEASONAL)
+    off = case.chunk("forward-euler", enabled=False)
+    assert np.isnan(off.step_error).all() and np.isnan(off.observed_order).all()
+    assert not (off.status & STEP_CHECK_FAILED).any()
+    two = case.chunk("rk4", levels=2)
+    assert np.isfinite(two.step_error).all() and np.isnan(two.observed_order).all()
+
+
+LINEAR_GROWTH = """
+[scenario]
+name = "constant-inflow"
+days = 5
+members = 2
+
+[model]
+compartments = ["X", "P"]
+population = 100
+initial = {{ P = "rest" }}
+
+[[model.flows]]
+to = "X"
+rate = "3.5"
+
+[solver]
+method = "{method}"
+step = 0.25
+check = {{ levels = 3 }}
+"""
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+def test_observed_order_nan_when_differences_are_round_off(tmp_path, method):
+    """X' = 3.5 is integrated exactly by every method (each is consistent: sum b_i = 1,
+    HNW I sec. II.1), so d2 is round-off and observed_order is NaN, not a number made of
+    noise; step_error is ~0 and the member passes."""
+    case = load_case(tmp_path, LINEAR_GROWTH.format(method=method))
+    result = case.chunk(method)
+    np.testing.assert_allclose(result.state[:, case.row("X"), -1], 17.5, rtol=1e-14)
+    assert np.isnan(result.observed_order).all()
+    assert (result.step_error < 1e-10).all() and (result.status == 0).all()
+
+
+def test_observed_order_formula():
+    """log(d1 / d2) / log(r) on hand-made runs whose differences shrink by r^p."""
+    exact = np.full((1, 2, 3), 100.0)
+    runs = [exact + 0.5 * (0.5 ** 3) ** level for level in range(3)]
+    np.testing.assert_allclose(observed_order(*runs, refine=2, noise_floor=0.0), 3.0)
+    assert np.isnan(observed_order(*runs, refine=2, noise_floor=1.0))
+
+
+def test_unknown_backend_is_a_clear_error(tmp_path):
+    case = load_case(tmp_path, SEASONAL)
+    with pytest.raises(ValueError, match="backend"):
+        integrate_chunk(case.model, case.design, case.scenario.solver,
+                        case.scenario.n_reports, backend="fortran")
+
+
+def test_negative_state_flag(tmp_path):
+    """A reported state below -atol sets BELOW_NEGATIVE_ATOL (SPEC section 3)."""
+    case = load_case(tmp_path, SEASONAL)
+    beta = case.design.parameters[case.row("beta", "parameter")].copy()
+    beta[0] = 40.0
+    trajectory = case.with_parameter("beta", beta).run("forward-euler")
+    assert (trajectory.state[0] < -case.scenario.solver.check.atol).any()
+    assert trajectory.status[0] & BELOW_NEGATIVE_ATOL
+    assert not (trajectory.status[1:] & BELOW_NEGATIVE_ATOL).any()
