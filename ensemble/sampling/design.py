@@ -180,8 +180,7 @@ def _as_vector(value: np.ndarray, n_groups: int) -> np.ndarray:
 
 def _full(value: np.ndarray, n_members: int) -> np.ndarray:
     """A value with member axis of length 1 or M -> a fresh array with length M."""
-    return np.ascontiguousarray(np.broadcast_to(value, value.shape[:-1] + (n_members,)),
-                                dtype=np.float64).copy()
+    return np.array(np.broadcast_to(value, value.shape[:-1] + (n_members,)), dtype=np.float64)
 
 
 def _element(value: np.ndarray, element: int, n_members: int) -> np.ndarray:

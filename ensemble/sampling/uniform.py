@@ -32,8 +32,8 @@ from collections.abc import Iterator, Mapping, Sequence
 import numpy as np
 from scipy.stats import qmc
 
-from ensemble.scenario.schema import Distribution, Scenario
 from ensemble.sampling.distributions import needs_draw
+from ensemble.scenario.schema import Distribution, Scenario
 
 ColumnKey = tuple[str, int]
 """(parameter name, element): element g of a per-group parameter, 0 for a scalar."""
