@@ -9,17 +9,30 @@
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
+from typing import TYPE_CHECKING
+from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from ensemble.scenario.load import load_scenario, scenario_warnings
 from ensemble.scenario.schema import Scenario
+
+if TYPE_CHECKING:
+    from ensemble.run.clusters import ClusterProfile
+    from ensemble.run.shards import Shard
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 
 def run(scenario: Scenario | str | os.PathLike[str], *,
         output: str | os.PathLike[str] | None = None,
         chunk: int | None = None, workers: int | None = None, address: str | None = None,
         resume: bool = False, force: bool = False, progress: bool | None = None,
-        backend: str | None = None, history: str | None = None) -> Path:
+        backend: str | None = None, history: str | None = None,
+        cluster: ClusterProfile | str | None = None, shard: Shard | str | None = None
+        ) -> Path:
     """Run every variant of a scenario and write its result file.
 
     Parameters
@@ -39,10 +52,15 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     backend : ``"numpy"`` or ``"compiled"`` integration (default
         :data:`ensemble.run.execute.DEFAULT_BACKEND`).
     history : the result's ``history`` attribute (default: this call and the time).
+    cluster : a cluster profile (name or path, :mod:`ensemble.run.clusters`; default the
+        file's ``[compute] cluster``) whose batch-system worker jobs do the work;
+        ``"local"`` is this machine.
+    shard : ``"I/N"``: compute only shard I of N and write a part file to ``output``
+        (default ``<result stem>.shard-I-of-N.nc``) for :func:`merge`.
 
     Returns
     -------
-    The result's path.
+    The result's (or part's) path.
 
     Raises
     ------
@@ -55,18 +73,30 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     from datetime import datetime, timezone
 
     from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
+    from ensemble.run.plan import fingerprint
+    from ensemble.run.shards import engine_options, part_is_complete
 
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)
+    backend = backend or DEFAULT_BACKEND
+    profile = cluster if isinstance(cluster, ClusterProfile) else cluster_profile(
+        cluster if cluster is not None else scenario.compute.cluster)
+    part = Shard.parse(shard) if isinstance(shard, str) else shard
+    if part is not None and output is None:
+        output = default_part_path(scenario, part)
     if output is not None:
         scenario = dataclasses.replace(
             scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if history is None:
         now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
         history = f"{now} ensemble.api.run({scenario.source.path!r})"
-    return run_scenario(scenario, history=history, backend=backend or DEFAULT_BACKEND,
-                        chunk=chunk, workers=workers, address=address, resume=resume,
-                        force=force, progress=Progress(bar=progress))
+    if part is not None and resume and not force and part_is_complete(
+            output, fingerprint(scenario, backend), part):
+        return Path(output)
+    return run_scenario(scenario, history=history, backend=backend,
+                        chunk=chunk, workers=workers, address=address, cluster=profile,
+                        resume=resume, force=force, progress=Progress(bar=progress),
+                        **(engine_options(scenario, part, backend) if part else {}))
 
 
 def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
@@ -84,3 +114,188 @@ def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
     with xr.open_dataset(path, decode_times=False) as dataset:
         status = dataset["status"].values
     return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}
+
+
+def open_result(path: str | os.PathLike[str]) -> xr.Dataset:
+    """Open a complete result file, with its labels as indexes.
+
+    ``ds.sel(compartment="I", variant="distancing")`` then works; times are dates when
+    the scenario has a ``start`` (float days otherwise), and differences of times
+    (``difference_quantile_peak_time``) stay float days.
+
+    Raises
+    ------
+    ensemble.output.NotAResult : ``path`` is missing, not netCDF, work in progress or a
+        part file.
+    """
+    import xarray as xr
+
+    from ensemble.output.dataset import with_label_indexes
+    from ensemble.output.store import result_fingerprint
+
+    result_fingerprint(path)
+    return with_label_indexes(xr.open_dataset(path, decode_timedelta=False))
+
+
+def simulate(scenario: Scenario | str | os.PathLike[str], *,
+             variants: Sequence[str] | None = None, backend: str = "numpy") -> xr.Dataset:
+    """Run every member of a scenario in this process and return the result dataset.
+
+    Nothing is written and dask is not used: meant for notebooks and ensembles that fit
+    in memory.  The dataset is the one :func:`open_result` returns for the file that
+    ``ensemble run`` writes for the same scenario (same variables, numbers and
+    attributes, apart from ``history``).
+
+    Parameters
+    ----------
+    scenario : a validated scenario or the path of a scenario file.
+    variants : names of the variants to run (default all); ``output.compare_to`` is
+        dropped when its variant is not among them.
+    backend : ``"numpy"`` or ``"compiled"`` integration.
+
+    Raises
+    ------
+    ValueError : an unknown variant name.
+    """
+    import dataclasses
+
+    import numpy as np
+
+    from ensemble.integrate.check import integrate_chunk
+    from ensemble.model.compile import compile_model
+    from ensemble.output.dataset import dataset_from_results, decode
+    from ensemble.output.layout import ResultLayout
+    from ensemble.run.plan import fingerprint
+    from ensemble.sampling import make_design
+    from ensemble.scenario.errors import did_you_mean
+
+    if not isinstance(scenario, Scenario):
+        scenario = load_scenario(scenario)
+    if variants is not None:
+        known = {variant.name: variant for variant in scenario.variants}
+        for name in variants:
+            if name not in known:
+                hint = did_you_mean(name, known)
+                raise ValueError(f"no variant {name!r} in {scenario.source.path}"
+                                 + (f"; {hint}" if hint else ""))
+        compare_to = scenario.output.compare_to
+        scenario = dataclasses.replace(
+            scenario, variants=tuple(known[name] for name in variants),
+            output=dataclasses.replace(
+                scenario.output, compare_to=compare_to if compare_to in variants else None))
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    layout = ResultLayout.from_scenario(scenario, models, fingerprint(scenario, backend),
+                                        history="ensemble.api.simulate (in memory)")
+    members = np.arange(scenario.members)
+    results = []
+    for variant, model in zip(scenario.variants, models):
+        design = make_design(scenario, variant, model, members)
+        results.append((integrate_chunk(model, design, scenario.solver, scenario.n_reports,
+                                        backend), design.reported))
+    return decode(dataset_from_results(layout, results))
+
+
+def summarize(path: str | os.PathLike[str]) -> str:
+    """A readable summary of a complete result file: per variant, quantiles of each
+    compartment's peak size and peak time and of each flow's total and peak, and the
+    members behind each status bit.
+
+    Raises
+    ------
+    ensemble.output.NotAResult : ``path`` is not a complete result file.
+    """
+    from ensemble.output.report import summary_text
+
+    with open_result(path) as dataset:
+        return summary_text(dataset)
+
+
+def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | None:
+    """The cluster profile ``name`` (a path, or ``NAME.toml`` in ``./configs/`` then
+    ``$XDG_CONFIG_HOME/ensemble/clusters/``), validated; None for no name or ``"local"``.
+
+    Raises
+    ------
+    ensemble.scenario.errors.ScenarioError : no such profile, or an invalid one (file, key
+        and value named; the command line exits with 2).
+    """
+    from ensemble.run.clusters import resolve_profile
+
+    return resolve_profile(None if name is None else os.fspath(name))
+
+
+def default_part_path(scenario: Scenario, shard: Shard | str) -> Path:
+    """Where ``run(..., shard=shard)`` writes its part when no output is given:
+    ``<result stem>.shard-I-of-N.nc`` beside the result."""
+    from ensemble.run.shards import Shard, default_part_path as part_path
+
+    return part_path(scenario, Shard.parse(shard) if isinstance(shard, str) else shard)
+
+
+def merge(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLike[str], *,
+          force: bool = False, history: str | None = None) -> Path:
+    """Join the part files of a sharded run into its result file.
+
+    The result is identical in every number to the file a single run of the same scenario
+    writes (see :mod:`ensemble.run.shards`).
+
+    Parameters
+    ----------
+    parts : the part file of every shard, in any order.
+    output : the result file.
+    force : replace an existing result.
+    history : the line this merge adds to the result's ``history`` (default: this call).
+
+    Raises
+    ------
+    ensemble.run.shards.PartError : not part files, parts of different runs (different
+        fingerprints), a shard given twice, or missing shards (named); nothing is written.
+    ensemble.output.ResultExists : ``output`` exists and ``force`` is false.
+    """
+    from datetime import datetime, timezone
+
+    from ensemble.run.shards import merge_parts
+
+    if history is None:
+        now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+        history = f"{now} ensemble.api.merge({len(parts)} parts, {os.fspath(output)!r})"
+    return merge_parts(parts, output, force=force, history=history)
+
+
+def array_script(scenario: Scenario | str | os.PathLike[str], cluster: ClusterProfile | str,
+                 shards: int, *, output: str | os.PathLike[str] | None = None,
+                 run_options: Sequence[str] = ()) -> str:
+    """A bash driver script that submits a sharded run as a job array plus a merge job.
+
+    Parameters
+    ----------
+    scenario : a validated scenario, or the path of a scenario file.
+    cluster : a batch-system cluster profile (not ``"local"``).
+    shards : number of array tasks, 1 .. members.
+    output : the result file (default the scenario's ``output.path``); made absolute.
+    run_options : options carried into every shard's ``ensemble run`` (``--members``,
+        ``--seed``, ``--chunk``, ``--backend``, as on the command line).
+
+    Raises
+    ------
+    ensemble.scenario.errors.ScenarioError : invalid scenario or profile, ``local``, or a
+        shard count outside 1 .. members (the command line exits with 2).
+    """
+    import dataclasses
+
+    from ensemble.run.shards import array_script as driver
+    from ensemble.scenario.errors import ScenarioError
+
+    if not isinstance(scenario, Scenario):
+        scenario = load_scenario(scenario)
+    profile = cluster if not isinstance(cluster, str) else cluster_profile(cluster)
+    if profile is None:
+        raise ScenarioError("--cluster", "", "local",
+                            "a job array needs a batch-system profile (slurm or pbs)")
+    if not 1 <= shards <= scenario.members:
+        raise ScenarioError("--shards", "", shards,
+                            f"expected 1 .. {scenario.members} (the members per variant)")
+    if output is not None:
+        scenario = dataclasses.replace(
+            scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))
+    return driver(scenario, profile, shards, run_options=run_options, cwd=Path.cwd())

@@ -31,6 +31,18 @@ def _interrupt_on_sigterm(signum: int, frame: object) -> None:
     raise KeyboardInterrupt
 
 
+def _shard_option(text: Optional[str]):
+    """``--shard I/N`` read into a :class:`~ensemble.run.shards.Shard` (usage error: exit 2)."""
+    from ensemble.run.shards import Shard
+
+    if text is None:
+        return None
+    try:
+        return Shard.parse(text)
+    except ValueError as error:
+        raise typer.BadParameter(str(error)) from None
+
+
 @app.command()
 def run(
     scenario: Path = typer.Argument(..., help="Scenario file (TOML)."),
@@ -52,6 +64,13 @@ def run(
     force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
     backend: Optional[Backend] = typer.Option(
         None, "--backend", help="Integration backend (changes numbers at round-off level)."),
+    cluster: Optional[str] = typer.Option(
+        None, "--cluster",
+        help="Cluster profile (NAME in ./configs or ~/.config/ensemble/clusters, or a path) "
+             "whose batch jobs run the workers; 'local' is this machine."),
+    shard: Optional[str] = typer.Option(
+        None, "--shard", metavar="I/N", callback=_shard_option,
+        help="Run only shard I of N (0-based) into a part file for `ensemble merge`."),
 ) -> None:
     """Run every variant of SCENARIO and write the result file."""
     import logging
@@ -73,20 +92,27 @@ def run(
     history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
     with _fail_on_invalid():
         loaded = api.load_scenario(scenario, members=members, seed=seed)
+        profile = api.cluster_profile(cluster if cluster is not None
+                                      else loaded.compute.cluster)
+    if shard is not None and output is None:
+        output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
         typer.echo(f"warning: {warning}", err=True)
     work = partial_path(output or loaded.output.path)
     try:
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
                        address=address, resume=resume, force=force,
-                       backend=backend.value if backend else None, history=history)
+                       backend=backend.value if backend else None, history=history,
+                       cluster=profile or "local", shard=shard)
     except ResultExists as error:
         _stop(f"error: {error}; use --force to replace it", 2)
     except FingerprintMismatch as error:
         _stop(f"error: {error}", 2)
     except KeyboardInterrupt:
         _stop(f"interrupted; finished chunks are kept in {work}; continue with --resume", 130)
-    except (RunFailed, OutputError, OSError) as error:
+    except OutputError as error:  # the store's message says what is kept
+        _stop(f"error: {error}", 1)
+    except (RunFailed, OSError) as error:
         _stop(f"error: {error} (finished chunks are kept in {work}; continue with --resume)", 1)
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
@@ -124,6 +150,78 @@ def check(scenario: Path = typer.Argument(..., help="Scenario file (TOML).")) ->
     with _fail_on_invalid():
         loaded = api.load_scenario(scenario)
     typer.echo(describe(loaded, api.scenario_warnings(loaded)), nl=False)
+
+
+@app.command()
+def summary(result: Path = typer.Argument(..., help="Result file written by ensemble run.")
+            ) -> None:
+    """Print, per variant, quantiles over members of each compartment's peak size and
+    time and of each flow's total and peak, and the members behind each status bit."""
+    from ensemble import api
+    from ensemble.output.store import NotAResult
+
+    try:
+        text = api.summarize(result)
+    except NotAResult as error:
+        _stop(f"error: {error}", 2)
+    typer.echo(text, nl=False)
+
+
+@app.command()
+def merge(
+    parts: list[Path] = typer.Argument(..., help="The part file of every shard."),
+    output: Path = typer.Option(..., "--output", "-o", help="Result file to write."),
+    force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
+) -> None:
+    """Join the part files of a sharded run (`run --shard I/N`) into the result file."""
+    import shlex
+    from datetime import datetime, timezone
+
+    from ensemble import api
+    from ensemble.output.store import OutputError, ResultExists
+    from ensemble.run.shards import PartError
+
+    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
+    try:
+        with _fail_on_invalid():
+            path = api.merge(parts, output, force=force, history=history)
+    except PartError as error:
+        _stop(f"error: {error}", 2)
+    except ResultExists as error:
+        _stop(f"error: {error}; use --force to replace it", 2)
+    except (OutputError, OSError) as error:
+        _stop(f"error: {error}", 1)
+    typer.echo(f"result: {path} (from {len(parts)} parts)")
+
+
+@app.command("array-script")
+def array_script(
+    scenario: Path = typer.Argument(..., help="Scenario file (TOML)."),
+    cluster: str = typer.Option(..., "--cluster", help="Cluster profile (slurm or pbs)."),
+    shards: int = typer.Option(..., "--shards", min=1, help="Number of array tasks."),
+    output: Optional[Path] = typer.Option(
+        None, "--output", "-o", help="Result file (default: the file's output.path)."),
+    members: Optional[int] = typer.Option(
+        None, "--members", min=1, help="Members per variant, instead of the file's."),
+    seed: Optional[int] = typer.Option(None, "--seed", min=0, help="Seed, instead of the file's."),
+    chunk: Optional[int] = typer.Option(
+        None, "--chunk", min=1, help="Members per task inside each shard."),
+    backend: Optional[Backend] = typer.Option(None, "--backend", help="Integration backend."),
+) -> None:
+    """Print a bash script that submits SCENARIO as a job array of shards plus a merge job
+    that runs only if every shard succeeded. Run it with bash on the login node."""
+    from ensemble import api
+
+    carried = {"--members": members, "--seed": seed, "--chunk": chunk,
+               "--backend": backend.value if backend else None}
+    run_options = [str(item) for option, value in carried.items() if value is not None
+                   for item in (option, value)]
+    with _fail_on_invalid():
+        loaded = api.load_scenario(scenario, members=members, seed=seed)
+        text = api.array_script(loaded, cluster, shards, output=output,
+                                run_options=run_options)
+    typer.echo(text, nl=False)
 
 
 def main() -> None:

@@ -19,7 +19,7 @@ version 1.10: section 3.1 (units "1" for counts), 4.4 (time coordinate), 6.1.1
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import netCDF4
@@ -29,7 +29,16 @@ import xarray as xr
 import ensemble
 from ensemble.integrate.check import STATUS_FLAGS
 from ensemble.output.layout import ResultLayout
-from ensemble.output.summary import FLOW_METRICS, METRICS, STATE_METRICS
+from ensemble.integrate.check import ChunkResult
+from ensemble.output.summary import (
+    FLOW_METRICS,
+    METRICS,
+    STATE_METRICS,
+    in_summary,
+    member_metrics,
+    member_quantiles,
+    summary_quantiles,
+)
 
 STREAMED = ("state", "flow_count")
 """Variables with every member's trajectories, written chunk by chunk."""
@@ -240,13 +249,54 @@ def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> 
     xarray.Dataset with the coordinates, label variables and global attributes of
     SPEC section 3, the time coordinate as float days (CF-encoded).
     """
+    unknown = set(variables) - set(result_variables(layout))
+    if unknown:
+        raise KeyError(f"not variables of this result file: {sorted(unknown)}")
     data_vars = {}
-    for name, array in variables.items():
+    for name in (n for n in result_variables(layout) if n in variables):
+        array = variables[name]
         spec = variable_spec(layout, name)
         values = file_shape(layout, name, array) if array.ndim > 1 else np.asarray(array)
         data_vars[name] = xr.Variable(spec.dims, values.astype(spec.dtype, copy=False),
                                       dict(spec.attrs))
     return xr.Dataset(data_vars, coords=coordinates(layout), attrs=global_attributes(layout))
+
+
+def dataset_from_results(layout: ResultLayout,
+                         results: Sequence[tuple[ChunkResult, Mapping[str, np.ndarray]]]
+                         ) -> xr.Dataset:
+    """The result dataset (not yet decoded) from every member of every variant in memory.
+
+    Parameters
+    ----------
+    layout : the result's layout.
+    results : per variant, in ``layout.variants`` order, (result, reported): the
+        :class:`ChunkResult` of members 0 .. members-1 and ``Design.reported``.
+
+    Returns
+    -------
+    The same variables, values and attributes as the file the streaming store writes
+    (without ``state`` and ``flow_count`` when ``output.members`` is false).
+    """
+    variables = {name: np.stack([getattr(result, name) for result, _ in results])
+                 for name in (*STREAMED, "step_error", "observed_order", "status")}
+    for name in layout.parameters:
+        values = np.stack([np.asarray(reported[name], dtype=np.float64)
+                           for _, reported in results])
+        variables[f"param_{name}"] = values.transpose(0, 2, 1) if values.ndim == 3 else values
+    variables.update(member_metrics(variables["state"], variables["flow_count"], layout.times))
+    included = in_summary(variables["status"])
+    probabilities = layout.scenario.output.quantiles
+    for name in STREAMED:
+        variables[f"{name}_quantile"] = np.stack(
+            [member_quantiles(variables[name][v], probabilities, included[v])
+             for v in range(len(layout.variants))])
+    variables.update(summary_quantiles(variables, variables["status"], probabilities,
+                                       layout.compare_index))
+    if not layout.scenario.output.members:
+        for name in STREAMED:
+            del variables[name]
+    return build_dataset(layout, variables)
 
 
 def _chunking(layout: ResultLayout, dims: tuple[str, ...], shape: tuple[int, ...]

@@ -86,6 +86,12 @@ class ResultLayout:
         """Number of reported times, including t = 0."""
         return len(self.times)
 
+    @property
+    def compare_index(self) -> int | None:
+        """Index of the ``output.compare_to`` variant (None when not set)."""
+        other = self.scenario.output.compare_to
+        return self.variants.index(other) if other else None
+
     @classmethod
     def from_scenario(cls, scenario: Scenario, models: Sequence[CompiledModel],
                       fingerprint: str, history: str) -> ResultLayout:

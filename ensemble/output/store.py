@@ -372,7 +372,7 @@ class WorkStore:
             variables[f"{name}_quantile"] = self._trajectory_quantiles(name, keys, included)
         variables.update(summary_quantiles(variables, status,
                                            layout.scenario.output.quantiles,
-                                           _compare_index(layout)))
+                                           layout.compare_index))
         dataset = build_dataset(layout, variables)
         del variables
         dataset.to_netcdf(target, format="NETCDF4", engine="netcdf4",
@@ -497,12 +497,6 @@ def result_fingerprint(path: str | os.PathLike[str]) -> str:
 
 
 # ---------------------------------------------------------------------- helpers
-
-def _compare_index(layout: ResultLayout) -> int | None:
-    """Index of the ``output.compare_to`` variant (None when not set)."""
-    other = layout.scenario.output.compare_to
-    return layout.variants.index(other) if other else None
-
 
 def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
     """Sorted, merged half-open ranges."""

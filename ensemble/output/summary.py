@@ -65,7 +65,8 @@ def member_metrics(state: np.ndarray, flow_count: np.ndarray,
     """
     times = np.asarray(times, dtype=np.float64)
     peak_value, peak_time = _peaks(state, times)
-    intervals = flow_count[..., 1:]
+    # contiguous rows, so the sum adds in the same order however the members arrived
+    intervals = np.ascontiguousarray(flow_count[..., 1:])
     flow_peak_value, flow_peak_time = _peaks(intervals, times[1:])
     total_flow = intervals.sum(axis=-1)
     return {"peak_value": peak_value, "peak_time": peak_time,

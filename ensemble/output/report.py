@@ -1,0 +1,94 @@
+"""A readable text summary of a result dataset (``ensemble summary``)."""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+
+from ensemble.integrate.check import STATUS_FLAGS
+
+_ROWS = (
+    ("peak size", "peak_value_quantile", "compartment"),
+    ("peak time", "peak_time_quantile", "compartment"),
+    ("flow total", "total_flow_quantile", "flow"),
+    ("flow peak", "flow_peak_value_quantile", "flow"),
+    ("flow peak time", "flow_peak_time_quantile", "flow"),
+)
+"""(row title, quantile variable, labelled dimension) of each block of the table."""
+
+
+def _number(value: float) -> str:
+    """A count of persons: whole persons from 100 up, three significant digits below."""
+    if not np.isfinite(value):
+        return "-"
+    return f"{value:,.0f}" if abs(value) >= 100 else f"{value:.3g}"
+
+
+def _time(value: object, whole_days: bool) -> str:
+    """A time as a date (to the nearest day when reports are whole days apart, else to
+    the minute) or, without a start date, as ``day x``."""
+    if isinstance(value, np.datetime64):
+        if np.isnat(value):
+            return "-"
+        if whole_days:
+            return str(np.datetime64(value + np.timedelta64(12, "h"), "D"))
+        return np.datetime_as_string(value, unit="m").replace("T", " ")
+    number = float(value)  # type: ignore[arg-type]
+    if not np.isfinite(number):
+        return "-"
+    return f"day {number:.0f}" if whole_days else f"day {number:.2f}"
+
+
+def _whole_days(times: np.ndarray) -> bool:
+    """Whether the reported times are whole days apart."""
+    steps = np.diff(times)
+    if np.issubdtype(steps.dtype, np.timedelta64):
+        steps = steps / np.timedelta64(1, "D")
+    return bool(np.all(np.isclose(steps, np.round(steps))))
+
+
+def _align(rows: list[list[str]], left: int) -> list[str]:
+    """Lines of ``rows`` with the first ``left`` columns left-aligned, the rest right."""
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    return ["  ".join(cell.ljust(w) if i < left else cell.rjust(w)
+                      for i, (cell, w) in enumerate(zip(row, widths))).rstrip()
+            for row in rows]
+
+
+def _labels(dataset: xr.Dataset, dim: str) -> list[str]:
+    """Labels of ``dim``, with ``[group]`` per element when the model has groups."""
+    names = [str(v) for v in dataset[dim].values]
+    if "group" not in dataset.dims:
+        return names
+    return [f"{name}[{group}]" for name in names for group in dataset["group"].values]
+
+
+def summary_text(dataset: xr.Dataset) -> str:
+    """The summary of a result opened by :func:`ensemble.open_result`: per variant, the
+    quantiles over members of each compartment's peak size and time and of each flow's
+    total and peak, and the members behind each status bit."""
+    probabilities = dataset["quantile"].values
+    whole_days = _whole_days(dataset["time"].values)
+    header = ["", "", *(f"q{p:g}" for p in probabilities)]
+    lines = [str(dataset.attrs.get("title", "")),
+             f"{dataset.attrs.get('members')} members per variant; quantiles over members "
+             "without the non-finite or impossible-start bits", ""]
+    for variant in dataset["variant"].values:
+        part = dataset.sel(variant=variant)
+        lines.append(f"variant {variant}: {int(part['members_in_summary'])} members in "
+                     "the quantiles")
+        rows = [header]
+        for title, name, dim in _ROWS:
+            values = part[name].transpose("quantile", dim, ...).values
+            values = values.reshape(len(probabilities), -1)
+            for index, label in enumerate(_labels(dataset, dim)):
+                cells = [_time(v, whole_days) if "time" in name else _number(v)
+                         for v in values[:, index]]
+                rows.append([title, label, *cells])
+        lines.extend("  " + line for line in _align(rows, left=2))
+        status = part["status"].values
+        counts = ", ".join(f"{word} {int(np.count_nonzero(status & bit))}"
+                           for bit, word in STATUS_FLAGS)
+        lines.extend([f"  members by status bit: {counts}", ""])
+    lines.append(str(dataset.attrs.get("caution", "")))
+    return "\n".join(lines) + "\n"
