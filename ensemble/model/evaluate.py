@@ -139,6 +139,10 @@ class RateFunctions:
         return scipy.sparse.csr_array((values, (rows, columns)), shape=(n * n, self.nnz))
 
 
+_ROW_ARRAY = {StateRef: "y", ParamRef: "p", ScheduleRef: "s"}
+"""The argument of the generated functions that holds each kind of input row."""
+
+
 class _Program:
     """Source of one generated function ``name(t, y, p, s, out, w)`` that writes the value
     of ``roots[k]`` into ``out[k]`` using rows of the work array ``w`` for intermediates.
@@ -152,50 +156,57 @@ class _Program:
     def __init__(self, name: str, roots: Sequence[ScalarNode]):
         self._expression: dict[ScalarNode, str] = {}
         self._array: dict[ScalarNode, bool] = {}
+        self._buffer_of: dict[ScalarNode, int] = {}
+        self._free: list[int] = []
+        self.n_buffers = 0
         order = list(walk(*roots))
-        remaining: dict[ScalarNode, int] = {}
+        self._remaining: dict[ScalarNode, int] = {}
         for node in order:
             if isinstance(node, Apply):
                 for arg in node.args:
-                    remaining[arg] = remaining.get(arg, 0) + 1
+                    self._remaining[arg] = self._remaining.get(arg, 0) + 1
         destination: dict[ScalarNode, str] = {}
         for k, root in enumerate(roots):
             if isinstance(root, Apply) and root not in destination:
                 destination[root] = f"out[{k}]"
         body: list[str] = []
-        free: list[int] = []
-        self.n_buffers = 0
         for node in order:
-            if not isinstance(node, Apply):
-                self._leaf(node)
-                continue
-            args = [self._expression[a] for a in node.args]
-            for arg in node.args:
-                remaining[arg] -= 1
-                held = self._expression[arg]
-                if remaining[arg] == 0 and held.startswith("w") and held[1:].isdigit():
-                    free.append(int(held[1:]))
-            self._array[node] = any(self._array[a] for a in node.args)
-            if not self._array[node]:
-                target = f"v{len(body)}"
-                body.append(f"{target} = {_call(node.op, args)}")
+            if isinstance(node, Apply):
+                body.append(self._instruction(node, destination.get(node), f"v{len(body)}"))
             else:
-                target = destination.get(node) or self._buffer(free)
-                if node.op == "select_le":
-                    body.append(f"{target}[...] = {_call(node.op, args)}")
-                else:
-                    body.append(f"{_call(node.op, args + ['out=' + target])}")
-            self._expression[node] = target
+                self._leaf(node)
         for k, root in enumerate(roots):
             if self._expression[root] != f"out[{k}]":
                 body.append(f"out[{k}] = {self._expression[root]}")
-        bindings = self._bindings(order)
         lines = [f"def {name}(t, y, p, s, out, w):"]
         if self.n_buffers:
             lines.append("    " + ", ".join(f"w{i}" for i in range(self.n_buffers)) + ", = w")
-        lines.extend("    " + line for line in bindings + body)
+        lines.extend(f"    {_ROW_ARRAY[type(node)]}{node.index} = "
+                     f"{_ROW_ARRAY[type(node)]}[{node.index}]"
+                     for node in order if type(node) in _ROW_ARRAY)
+        lines.extend("    " + line for line in body)
         lines.append("    return out")
         self.source = "\n".join(lines) + "\n"
+
+    def _instruction(self, node: Apply, destination: str | None, scalar_name: str) -> str:
+        """The line computing ``node``: into ``destination`` (a row of ``out``) or a work
+        row when it varies by member, else into the local ``scalar_name``."""
+        args = [self._expression[a] for a in node.args]
+        for arg in node.args:
+            self._remaining[arg] -= 1
+            if self._remaining[arg] == 0 and arg in self._buffer_of:
+                self._free.append(self._buffer_of.pop(arg))
+        self._array[node] = any(self._array[a] for a in node.args)
+        if not self._array[node]:
+            self._expression[node] = scalar_name
+            return f"{scalar_name} = {_call(node.op, args)}"
+        if destination is None:
+            self._buffer_of[node] = self._take_buffer()
+            destination = f"w{self._buffer_of[node]}"
+        self._expression[node] = destination
+        if node.op == "select_le":
+            return f"{destination}[...] = {_call(node.op, args)}"
+        return _call(node.op, args + [f"out={destination}"])
 
     def _leaf(self, node: ScalarNode) -> None:
         if isinstance(node, Const):
@@ -203,25 +214,16 @@ class _Program:
         elif isinstance(node, TimeRef):
             self._expression[node], self._array[node] = "t", False
         else:
-            row = {StateRef: "y", ParamRef: "p", ScheduleRef: "s"}[type(node)]
-            self._expression[node], self._array[node] = f"{row}{node.index}", True
+            self._expression[node] = f"{_ROW_ARRAY[type(node)]}{node.index}"
+            self._array[node] = True
 
-    def _buffer(self, free: list[int]) -> str:
-        if free:
-            free.sort()
-            return f"w{free.pop(0)}"
+    def _take_buffer(self) -> int:
+        """The lowest free work row, or a new one."""
+        if self._free:
+            self._free.sort()
+            return self._free.pop(0)
         self.n_buffers += 1
-        return f"w{self.n_buffers - 1}"
-
-    @staticmethod
-    def _bindings(order: list[ScalarNode]) -> list[str]:
-        """``y3 = y[3]`` for every input row read."""
-        lines = []
-        for node in order:
-            if isinstance(node, (StateRef, ParamRef, ScheduleRef)):
-                row = {StateRef: "y", ParamRef: "p", ScheduleRef: "s"}[type(node)]
-                lines.append(f"{row}{node.index} = {row}[{node.index}]")
-        return lines
+        return self.n_buffers - 1
 
 
 def _call(op: str, args: list[str]) -> str:
