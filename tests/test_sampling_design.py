@@ -7,6 +7,7 @@ section 1) against the scenario file's contract.
 
 from __future__ import annotations
 
+import math
 import textwrap
 import tracemalloc
 
@@ -110,6 +111,7 @@ scale = "0.05 / sum(pressure)"
 gamma_rate = "1 / infectious_days"
 infectious_days = {{ dist = "normal", mean = 5, sd = 1, low = 2 }}
 wave = "1 + 0.2 * sin(2 * pi * t / 365)"
+elementwise = "exp(-infectious_days) + log(infectious_days) * sqrt(infectious_days) + sin(infectious_days) * cos(pi * infectious_days) + infectious_days ** 1.3 + max(infectious_days, 5) - min(infectious_days, 5) / abs(infectious_days - 5)"
 
 [sampling]
 method = "{method}"
@@ -355,3 +357,13 @@ def test_start_without_rest_must_add_up_to_the_population(tmp_path, initial, all
     d = design(load_scenario(path), 0, np.arange(50))
     assert np.array_equal(d.invalid_start, np.full(50, not all_valid))
     assert np.isnan(d.initial[:, d.invalid_start]).all()
+
+
+def test_elementwise_functions_against_the_math_module(tmp_path):
+    """Each function of the expression language, member by member, against Python's math
+    module (C library functions): exp, log, sqrt, sin, cos, pow, max, min, abs, pi."""
+    d = design(age(tmp_path, 200), 0, np.arange(200)).reported
+    for x, value in zip(d["infectious_days"], d["elementwise"]):
+        expected = (math.exp(-x) + math.log(x) * math.sqrt(x) + math.sin(x) * math.cos(math.pi * x)
+                    + x ** 1.3 + max(x, 5.0) - min(x, 5.0) / abs(x - 5.0))
+        assert value == pytest.approx(expected, rel=1e-13)
