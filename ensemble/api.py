@@ -79,7 +79,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)
     backend = backend or DEFAULT_BACKEND
-    profile = cluster if isinstance(cluster, ClusterProfile) else cluster_profile(
+    profile = cluster if not isinstance(cluster, (str, type(None))) else cluster_profile(
         cluster if cluster is not None else scenario.compute.cluster)
     part = Shard.parse(shard) if isinstance(shard, str) else shard
     if part is not None and output is None:

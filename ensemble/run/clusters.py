@@ -84,6 +84,11 @@ class ClusterProfile:
     setup: tuple[str, ...]
 
     @property
+    def max_workers(self) -> int:
+        """Most dask worker processes the profile runs at once."""
+        return self.processes * (self.adapt[1] if self.adapt else self.jobs)
+
+    @property
     def walltime_seconds(self) -> int:
         """The walltime in seconds."""
         return _seconds(self.walltime)

@@ -25,6 +25,7 @@ import numpy as np
 from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.model.compile import CompiledModel, compile_model
 from ensemble.output.store import ChunkKey, ResultLayout, WorkStore
+from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
 from ensemble.scenario.schema import Scenario
@@ -102,7 +103,8 @@ def available_cores() -> int:
 
 
 @contextmanager
-def open_client(workers: int | None = None, address: str | None = None) -> Iterator:
+def open_client(workers: int | None = None, address: str | None = None,
+                cluster: ClusterProfile | None = None) -> Iterator:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
@@ -111,9 +113,15 @@ def open_client(workers: int | None = None, address: str | None = None) -> Itera
         thread and single-threaded numerical libraries (:data:`SINGLE_THREAD_ENV`).
     address : a running scheduler to connect to instead (``tcp://host:8786``); its
         workers are used as they are.
+    cluster : a batch-system profile: worker jobs started by dask-jobqueue, kept at the
+        profile's size and cancelled on leaving (:mod:`ensemble.run.clusters`).
     """
     from distributed import Client, LocalCluster
 
+    if cluster is not None:
+        with jobqueue_cluster(cluster) as batch, Client(batch) as client:
+            yield client
+        return
     if address is not None:
         client = Client(address)
         try:
@@ -238,8 +246,10 @@ class Progress:
 
 def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BACKEND,
                  chunk: int | None = None, workers: int | None = None,
-                 address: str | None = None, resume: bool = False, force: bool = False,
-                 progress: Progress | None = None) -> Path:
+                 address: str | None = None, cluster: ClusterProfile | None = None,
+                 resume: bool = False, force: bool = False,
+                 progress: Progress | None = None, members: tuple[int, int] | None = None,
+                 finish: Callable[[WorkStore], Path] | None = None) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
@@ -257,10 +267,16 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     workers : worker processes of the local cluster (default one per core); ``0`` runs
         every chunk in this process, without dask.distributed.
     address : a running dask scheduler to use instead of a local cluster.
+    cluster : a batch-system profile whose worker jobs do the work instead of a local
+        cluster (:mod:`ensemble.run.clusters`).
     resume : continue from ``<path>.partial`` (afresh if there is none; nothing to do if
         the result is already complete with the same fingerprint).
     force : replace an existing result.
     progress : where progress goes (default: :class:`Progress` deciding by terminal).
+    members : ``(start, end)``: compute only those members of every variant (a shard,
+        :mod:`ensemble.run.shards`); default all.
+    finish : what to make of the store once every planned chunk is saved (default
+        :meth:`WorkStore.finish`, the result file; a shard writes its part file).
 
     Returns
     -------
@@ -291,24 +307,24 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     if chunk is None:
         chunk = scenario.compute.chunk or default_chunk(
             scenario, models[0].n_states, models[0].n_flow_elements,
-            workers or available_cores())
-    keys = store.pending(plan_chunks(scenario, chunk))
+            cluster.max_workers if cluster else workers or available_cores())
+    keys = store.pending(plan_chunks(scenario, chunk, members=members))
     progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
     try:
         if keys:
-            if workers == 0 and address is None:
+            if workers == 0 and address is None and cluster is None:
                 _save_all(store, _in_process(
                     lambda key: compute_chunk(scenario, models[key[0]], key, backend), keys),
                     progress)
             else:
-                with open_client(workers, address) as client:
+                with open_client(workers, address, cluster) as client:
                     if client.dashboard_link:
                         progress.note(f"dask dashboard at {client.dashboard_link}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend),
                               progress)
     finally:
         progress.close()
-    return store.finish()
+    return finish(store) if finish is not None else store.finish()
 
 
 def _save_all(store: WorkStore, outputs: Iterable[ChunkOutput], progress: Progress) -> None:

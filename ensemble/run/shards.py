@@ -1,0 +1,438 @@
+"""Shards: one run cut into N independent jobs, each writing a part file, merged afterwards.
+
+Shard I of N holds members ``floor(I*M/N) .. floor((I+1)*M/N) - 1`` of every variant
+(:func:`ensemble.run.plan.shard_range`).  A part file is a netCDF-4 file holding those
+members' trajectories, step errors, status and reported parameters exactly as computed
+(float64, lossless compression), plus the run's fingerprint, the shard's index and count,
+and what is needed to rebuild the scenario (its text, member count, seed, backend).
+
+:func:`merge_parts` feeds every part's members into one
+:class:`~ensemble.output.store.WorkStore` and finishes it, so the result is the file a
+single run would have written, identical in every number: chunks are pure functions of the
+member indices, and the store's summaries do not depend on how members were chunked.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import os
+import shlex
+import shutil
+import sys
+import tempfile
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import netCDF4
+import numpy as np
+
+from ensemble.integrate.check import ChunkResult
+from ensemble.model.compile import compile_model
+from ensemble.output.store import ResultLayout, WorkStore, partial_path
+from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
+from ensemble.run.plan import fingerprint, plan_chunks, shard_range
+from ensemble.scenario.load import load_scenario
+from ensemble.scenario.schema import Scenario, Source
+
+PART_FORMAT = "ensemble shard part 1"
+"""Value of a part file's ``ensemble_part`` attribute: marks the file and its layout."""
+
+BLOCK_BYTES = 64 * 2**20
+"""Trajectory bytes moved at once when a part is written or merged (bounded memory)."""
+
+CHUNK_BYTES = 2**20
+"""Target size of one netCDF chunk of a part's trajectories."""
+
+
+class PartError(Exception):
+    """Parts that cannot be merged, or a file that is not a part (command line: exit 2)."""
+
+
+@dataclass(frozen=True)
+class Shard:
+    """Shard ``index`` (0-based) of ``count``."""
+
+    index: int
+    count: int
+
+    def __post_init__(self) -> None:
+        if self.count < 1 or not 0 <= self.index < self.count:
+            raise ValueError(f"shard {self.index}/{self.count}: expected 0 <= I < N")
+
+    @classmethod
+    def parse(cls, text: str) -> Shard:
+        """Read ``"I/N"`` as written on the command line.
+
+        Raises
+        ------
+        ValueError : not of the form I/N with whole numbers 0 <= I < N.
+        """
+        index, slash, count = text.partition("/")
+        if not slash or not index.strip().isdigit() or not count.strip().isdigit():
+            raise ValueError(f"expected I/N, e.g. 0/8, not {text!r}")
+        return cls(int(index), int(count))
+
+    def members(self, total: int) -> tuple[int, int]:
+        """``(start, end)`` of this shard's members out of ``total`` (end excluded)."""
+        return shard_range(self.index, self.count, total)
+
+    def __str__(self) -> str:
+        return f"{self.index}/{self.count}"
+
+
+def default_part_path(scenario: Scenario, shard: Shard) -> Path:
+    """``<result stem>.shard-I-of-N.nc`` beside the scenario's result path."""
+    result = Path(scenario.output.path)
+    return result.with_name(f"{result.stem}.shard-{shard.index}-of-{shard.count}.nc")
+
+
+def engine_options(scenario: Scenario, shard: Shard, backend: str) -> dict[str, Any]:
+    """Arguments of :func:`ensemble.run.execute.run_scenario` that make it run ``shard``
+    only and end with its part file instead of a result."""
+    return {"members": shard.members(scenario.members),
+            "finish": functools.partial(write_part, shard=shard, backend=backend)}
+
+
+def part_is_complete(path: str | os.PathLike[str], fingerprint: str, shard: Shard) -> bool:
+    """True when ``path`` is already the part file of ``shard`` of this run (a resumed
+    shard then has nothing to do)."""
+    try:
+        info = read_part_info(path)
+    except PartError:
+        return False
+    return info.fingerprint == fingerprint and info.shard == shard
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def write_part(store: WorkStore, shard: Shard, backend: str) -> Path:
+    """Write the part file of ``shard`` from the chunks saved in ``store``, atomically.
+
+    ``store`` is the work in progress of the part (opened at the part's path); every member
+    of the shard in every variant must be saved in it.  The file goes to a temporary name in
+    the destination directory, is fsynced and renamed to ``store.path``; then the work in
+    progress is removed.
+
+    Returns
+    -------
+    The part's path.
+    """
+    layout = store.layout
+    scenario = layout.scenario
+    start, end = shard.members(layout.members)
+    missing = store.pending(plan_chunks(scenario, max(end - start, 1), members=(start, end)))
+    if missing:
+        raise RuntimeError(f"shard {shard}: members {missing} were never saved")
+    path = Path(store.path)
+    temporary = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    try:
+        with netCDF4.Dataset(temporary, "w", format="NETCDF4") as part:
+            _define_part(part, layout, shard, backend, start, end)
+            for key in store.saved():
+                result, reported = store.load(key)
+                variant, first, last = key
+                rows = slice(first - start, last - start)
+                part["state"][variant, rows] = result.state
+                part["flow_count"][variant, rows] = result.flow_count
+                for name in ("step_error", "observed_order", "status"):
+                    part[name][variant, rows] = getattr(result, name)
+                for name in layout.parameters:
+                    part[f"param_{name}"][variant, ..., rows] = reported[name]
+        with open(temporary, "rb+") as handle:
+            os.fsync(handle.fileno())
+        os.replace(temporary, path)
+    finally:
+        temporary.unlink(missing_ok=True)
+    shutil.rmtree(partial_path(path), ignore_errors=True)
+    return path
+
+
+def _define_part(part: netCDF4.Dataset, layout: ResultLayout, shard: Shard, backend: str,
+                 start: int, end: int) -> None:
+    """Dimensions, variables and attributes of an empty part file."""
+    scenario = layout.scenario
+    part.setncatts({
+        "ensemble_part": PART_FORMAT,
+        "title": f"shard {shard} of an ensemble run (merge the parts with `ensemble merge`)",
+        "source": layout.source,
+        "history": layout.history,
+        "fingerprint": layout.fingerprint,
+        "shard_index": np.int32(shard.index),
+        "shard_count": np.int32(shard.count),
+        "member_start": np.int64(start),
+        "member_end": np.int64(end),
+        "members": np.int64(scenario.members),
+        "seed": np.int64(scenario.seed),
+        "backend": backend,
+        "scenario_path": os.path.abspath(scenario.source.path),
+        "scenario": scenario.source.text,
+    })
+    rows = {"state": layout.n_states, "flow_count": layout.n_flow_elements}
+    part.createDimension("variant", len(layout.variants))
+    part.createDimension("member", end - start)
+    part.createDimension("group", layout.n_groups)
+    part.createDimension("time", layout.n_reports)
+    part.createVariable("member", "i8", ("member",))[:] = np.arange(start, end)
+    for name, n_rows in rows.items():
+        part.createDimension(f"{name}_row", n_rows)
+        per_member = max(1, CHUNK_BYTES // (8 * n_rows * layout.n_reports))
+        part.createVariable(
+            name, "f8", ("variant", "member", f"{name}_row", "time"), zlib=True, complevel=1,
+            shuffle=True, chunksizes=(1, max(1, min(per_member, end - start)), n_rows,
+                                      layout.n_reports))
+    for name in ("step_error", "observed_order"):
+        part.createVariable(name, "f8", ("variant", "member"))
+    part.createVariable("status", "u1", ("variant", "member"))
+    for name, info in layout.parameters.items():
+        dimensions = ("variant", "group", "member") if info.shape == "vector" else (
+            "variant", "member")
+        part.createVariable(f"param_{name}", "f8", dimensions)
+
+
+# ----------------------------------------------------------------------------- merging
+
+
+@dataclass(frozen=True)
+class PartInfo:
+    """What a part file says about itself."""
+
+    path: Path
+    fingerprint: str
+    shard: Shard
+    members: tuple[int, int]
+    history: str
+
+
+def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
+    """The header of a part file.
+
+    Raises
+    ------
+    PartError : the file is missing, not netCDF, or not a part file.
+    """
+    path = Path(path)
+    try:
+        with netCDF4.Dataset(path) as part:
+            attributes = part.__dict__
+    except (OSError, RuntimeError) as error:
+        raise PartError(f"{path}: cannot be read as a part file ({error})") from None
+    if attributes.get("ensemble_part") != PART_FORMAT:
+        raise PartError(f"{path}: not a shard part file (made by `ensemble run --shard I/N`)")
+    return PartInfo(path=path, fingerprint=str(attributes["fingerprint"]),
+                    shard=Shard(int(attributes["shard_index"]), int(attributes["shard_count"])),
+                    members=(int(attributes["member_start"]), int(attributes["member_end"])),
+                    history=str(attributes["history"]))
+
+
+def check_parts(parts: Sequence[PartInfo]) -> None:
+    """Refuse parts of different runs, repeated shards and missing shards.
+
+    Raises
+    ------
+    PartError : naming the files of each fingerprint, the repeated shard, or the missing
+        shard indices.
+    """
+    if not parts:
+        raise PartError("no part files given")
+    by_fingerprint: dict[str, list[str]] = {}
+    for part in parts:
+        by_fingerprint.setdefault(part.fingerprint, []).append(str(part.path))
+    if len(by_fingerprint) > 1:
+        groups = "; ".join(f"{digest[:12]}: {', '.join(files)}"
+                           for digest, files in by_fingerprint.items())
+        raise PartError(f"the parts come from different runs (fingerprints {groups})")
+    counts = {part.shard.count for part in parts}
+    if len(counts) > 1:
+        raise PartError(f"the parts disagree on the number of shards ({sorted(counts)})")
+    count = counts.pop()
+    seen: dict[int, Path] = {}
+    for part in parts:
+        if part.shard.index in seen:
+            raise PartError(f"shard {part.shard} given twice: {seen[part.shard.index]} and "
+                            f"{part.path}")
+        seen[part.shard.index] = part.path
+    missing = sorted(set(range(count)) - set(seen))
+    if missing:
+        listed = ", ".join(str(index) for index in missing)
+        raise PartError(f"missing shard{'s' if len(missing) > 1 else ''} {listed} of {count} "
+                        f"(each shard I is made by `ensemble run --shard I/{count}`)")
+
+
+def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLike[str], *,
+                force: bool = False, history: str) -> Path:
+    """Join the part files of one run into its result file.
+
+    Parameters
+    ----------
+    parts : every shard's part file, in any order.
+    output : the result file to write.
+    force : replace an existing result.
+    history : the line this merge adds to the result's ``history`` attribute.
+
+    Returns
+    -------
+    The result's path.
+
+    Raises
+    ------
+    PartError : parts of different runs, repeated or missing shards, or not part files
+        (nothing is written).
+    ensemble.output.store.ResultExists : ``output`` exists and ``force`` is false.
+    """
+    infos = [read_part_info(path) for path in parts]
+    check_parts(infos)
+    infos.sort(key=lambda info: info.shard.index)
+    scenario, backend = _scenario_of(infos[0], output)
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    layout = ResultLayout.from_scenario(scenario, models, infos[0].fingerprint,
+                                        f"{infos[0].history}\n{history}")
+    store = WorkStore.open(output, layout, resume=False, force=force)
+    for info in infos:
+        for key, result, reported in _read_chunks(info, layout):
+            store.save(key, result, reported)
+    return store.finish()
+
+
+def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenario, str]:
+    """The scenario a part was made from (its recorded text and overrides), writing to
+    ``output``, checked against the part's fingerprint."""
+    with netCDF4.Dataset(info.path) as part:
+        text, original = str(part.scenario), str(part.scenario_path)
+        members, seed, backend = int(part.members), int(part.seed), str(part.backend)
+    with tempfile.TemporaryDirectory(prefix="ensemble-merge-") as directory:
+        copy = Path(directory) / Path(original).name
+        copy.write_text(text, encoding="utf-8")
+        scenario = load_scenario(copy, members=members, seed=seed)
+    scenario = dataclasses.replace(
+        scenario, source=Source(path=original, text=text),
+        output=dataclasses.replace(scenario.output, path=os.fspath(output)))
+    if fingerprint(scenario, backend) != info.fingerprint:
+        raise PartError(f"{info.path}: made by a different version of ensemble (its "
+                        "fingerprint does not match its scenario here); merge with the "
+                        "version that made the parts")
+    return scenario, backend
+
+
+def _read_chunks(info: PartInfo, layout: ResultLayout
+                 ) -> Iterator[tuple[tuple[int, int, int], ChunkResult, dict[str, np.ndarray]]]:
+    """A part's members as (key, result, reported), variant by variant, in blocks of at most
+    :data:`BLOCK_BYTES` of trajectories."""
+    start, end = info.members
+    per_member = 8 * (layout.n_states + layout.n_flow_elements) * layout.n_reports
+    block = max(1, BLOCK_BYTES // per_member)
+    with netCDF4.Dataset(info.path) as part:
+        part.set_auto_mask(False)
+        for variant in range(len(layout.variants)):
+            for first in range(start, end, block):
+                last = min(first + block, end)
+                rows = slice(first - start, last - start)
+                result = ChunkResult(
+                    members=np.arange(first, last, dtype=np.int64),
+                    state=part["state"][variant, rows],
+                    flow_count=part["flow_count"][variant, rows],
+                    step_error=part["step_error"][variant, rows],
+                    observed_order=part["observed_order"][variant, rows],
+                    status=part["status"][variant, rows])
+                reported = {name: part[f"param_{name}"][variant, ..., rows]
+                            for name in layout.parameters}
+                yield (variant, first, last), result, reported
+
+
+# ----------------------------------------------------------------------------- job arrays
+
+_ARRAY = {
+    # system: (submit, array directive, index variable, log directives, dependency option)
+    "slurm": ("sbatch --parsable", "--array=0-{last}", "SLURM_ARRAY_TASK_ID",
+              ("-o {logs}/%x-%A_%a.log",), "--kill-on-invalid-dep=yes --dependency=afterok:"),
+    "pbs": ("qsub", "-J 0-{last}", "PBS_ARRAY_INDEX",
+            ("-j oe", "-o {logs}/"), "-W depend=afterok:"),
+}
+"""How each batch system submits a job array and a job that waits for all of it: SLURM
+(sbatch(1): ``--array``, ``SLURM_ARRAY_TASK_ID``, ``--dependency=afterok:<array job>`` waits
+for every task) and PBS Pro (qsub(1B): ``-J``, ``PBS_ARRAY_INDEX``, ``-W depend=afterok:``
+on the array's ``<id>[]`` waits for every subjob)."""
+
+_JOB_END = "ENSEMBLE_JOB_SCRIPT"
+
+
+def array_script(scenario: Scenario, profile: ClusterProfile, shards: int, *,
+                 run_options: Sequence[str], cwd: Path) -> str:
+    """A bash driver that submits ``shards`` shards as one job array and a merge job.
+
+    The merge job starts only if every array task succeeded, and writes the result to
+    ``scenario.output.path``; the parts go to the directory ``<result stem>.parts`` beside
+    it, with one log per task.  Each array task runs ``ensemble run --shard I/N --resume``
+    on the job's own cores, so resubmitting the driver after a failure recomputes only the
+    shards whose part is missing.
+
+    Parameters
+    ----------
+    scenario : the validated scenario (overrides applied), whose file the jobs read.
+    profile : the batch-system profile (header, walltime, setup lines).
+    shards : number of array tasks, 1 .. members.
+    run_options : command-line options carried into every shard's ``ensemble run``
+        (e.g. ``["--members", "5000", "--seed", "7"]``).
+    cwd : the directory the jobs work in.
+
+    Returns
+    -------
+    The script's text.
+    """
+    submit, directive, index, log_lines, depend = _ARRAY[profile.system]
+    prefix = header_prefix(profile)
+    result = (cwd / scenario.output.path).resolve()
+    parts = result.with_name(f"{result.stem}.parts")
+    scenario_path = (cwd / scenario.source.path).resolve()
+    command = [sys.executable, "-m", "ensemble"]
+    last = shards - 1
+    shard_run = shlex.join([*command, "run", str(scenario_path), *run_options,
+                            "--workers", str(profile.processes), "--resume"])
+    part = f"{shlex.quote(str(parts))}/shard-${{{index}}}-of-{shards}.nc"
+    shard_job = [
+        job_header(profile, f"ensemble-{scenario.name}"),
+        f"{prefix} {directive.format(last=last)}",
+        *(f"{prefix} {line.format(logs=parts)}" for line in log_lines),
+        *environment_lines(profile),
+        f"cd {shlex.quote(str(cwd))}",
+        f'exec {shard_run} --shard "${{{index}}}/{shards}" --output {part}',
+    ]
+    merge_run = shlex.join([*command, "merge"])
+    merge_job = [
+        job_header(profile, f"ensemble-{scenario.name}-merge"),
+        *(f"{prefix} {line.format(logs=parts).replace('%a', 'merge')}"
+          for line in log_lines),
+        *environment_lines(profile),
+        f"cd {shlex.quote(str(cwd))}",
+        f"exec {merge_run} {shlex.quote(str(parts))}/shard-{{0..{last}}}-of-{shards}.nc "
+        f"--output {shlex.quote(str(result))}",
+    ]
+    lines = [
+        "#!/usr/bin/env bash",
+        f"# Submits {scenario.name!r} as a {profile.system.upper()} job array of {shards} "
+        f"shards and a merge job that",
+        "# runs only if every shard succeeds. Made by `ensemble array-script`; run it with "
+        "bash on the login node.",
+        f"# Result: {result}",
+        f"# Parts and logs: {parts}/",
+        "set -euo pipefail",
+        f"mkdir -p {shlex.quote(str(parts))}",
+        f"shards=$({submit} <<'{_JOB_END}'",
+        "#!/usr/bin/env bash",
+        *shard_job,
+        _JOB_END,
+        ")",
+        'shards=${shards%%;*}',
+        f"merge=$({submit} {depend}\"$shards\" <<'{_JOB_END}'",
+        "#!/usr/bin/env bash",
+        *merge_job,
+        _JOB_END,
+        ")",
+        'merge=${merge%%;*}',
+        'echo "submitted the shards as job array $shards and the merge as job $merge"',
+        f'echo "result, when job $merge has ended: "{shlex.quote(str(result))}',
+    ]
+    return "\n".join(lines) + "\n"
