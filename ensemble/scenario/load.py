@@ -173,6 +173,10 @@ def _shown(value: object) -> object:
     """``value`` as the modeller wrote it, for error messages (decimals as floats)."""
     if isinstance(value, Decimal):
         return float(value) if value.is_finite() else str(value)
+    if isinstance(value, Fraction):
+        return int(value) if value.denominator == 1 else float(value)
+    if isinstance(value, date):
+        return value.isoformat()
     if isinstance(value, list):
         return [_shown(v) for v in value]
     if isinstance(value, dict):
