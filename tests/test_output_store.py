@@ -1,0 +1,244 @@
+"""The streaming store: durable chunks, resume, atomic finish, bounded memory.
+
+The expected values are the store's own contract (ensemble/output/store.py, SPEC section
+2 on ``--resume`` and ``--force``); quantiles are compared with ``numpy.quantile`` over
+all members held in memory (Hyndman and Fan 1996, definition 7).
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+
+import netCDF4
+import numpy as np
+import pytest
+import xarray as xr
+
+from ensemble.output import store as store_module
+from ensemble.output.store import (
+    FingerprintMismatch,
+    IncompleteWork,
+    ResultExists,
+    StoreWriteError,
+    WorkStore,
+    block_plan,
+    partial_path,
+    result_fingerprint,
+)
+from output_support import fill, grouped_scenario, layout_of, made_up_members
+
+
+@pytest.fixture
+def layout(tmp_path):
+    return layout_of(grouped_scenario(tmp_path, members=10))
+
+
+def _open(path, layout, **options):
+    return WorkStore.open(path, layout, **{"resume": False, "force": False, **options})
+
+
+def _numbers(path) -> dict[str, np.ndarray]:
+    with xr.open_dataset(path, decode_times=False) as dataset:
+        return {name: dataset[name].values for name in dataset.data_vars}
+
+
+def _assert_same_numbers(first, second):
+    a, b = _numbers(first), _numbers(second)
+    assert a.keys() == b.keys()
+    for name in a:
+        np.testing.assert_array_equal(a[name], b[name], err_msg=name)
+
+
+def test_pending_cuts_partly_saved_chunks_to_what_is_missing(tmp_path, layout):
+    store = _open(tmp_path / "r.nc", layout)
+    store.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
+    store.save((0, 8, 10), *made_up_members(layout, 0, 8, 10))
+    asked = [(0, 0, 6), (0, 6, 10), (1, 0, 10)]
+    assert store.pending(asked) == [(0, 4, 6), (0, 6, 8), (1, 0, 10)]
+    assert store.saved() == [(0, 0, 4), (0, 8, 10)]
+
+
+def test_save_checks_keys_members_and_shapes(tmp_path, layout):
+    store = _open(tmp_path / "r.nc", layout)
+    store.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
+    with pytest.raises(ValueError, match="overlaps"):
+        store.save((0, 2, 6), *made_up_members(layout, 0, 2, 6))
+    with pytest.raises(ValueError, match="holds members"):
+        store.save((0, 5, 9), *made_up_members(layout, 0, 4, 8))
+    with pytest.raises(ValueError, match="outside"):
+        store.save((0, 8, 11), *made_up_members(layout, 0, 8, 11))
+    result, reported = made_up_members(layout, 1, 0, 3)
+    del reported["infectious_days"]
+    with pytest.raises(ValueError, match="infectious_days"):
+        store.save((1, 0, 3), result, reported)
+
+
+def test_load_returns_what_was_saved(tmp_path, layout):
+    store = _open(tmp_path / "r.nc", layout)
+    result, reported = made_up_members(layout, 1, 3, 7)
+    store.save((1, 3, 7), result, reported)
+    loaded, loaded_reported = store.load((1, 3, 7))
+    for name in ("members", "state", "flow_count", "step_error", "observed_order", "status"):
+        np.testing.assert_array_equal(getattr(loaded, name), getattr(result, name))
+    for name in reported:
+        np.testing.assert_array_equal(loaded_reported[name], reported[name])
+
+
+def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
+    """A run killed after one chunk, mid-way through writing another (a stray temporary
+    left behind), resumed with another chunk size, gives the uninterrupted run's file."""
+    reference = _open(tmp_path / "reference.nc", layout)
+    fill(reference, layout, chunk=10)
+    reference.finish()
+
+    path = tmp_path / "r.nc"
+    killed = _open(path, layout)
+    killed.save((0, 0, 3), *made_up_members(layout, 0, 0, 3))
+    stray = partial_path(path) / ".tmp-chunk-v0-0000000003-0000000006-99999"
+    stray.mkdir()
+    (stray / "state.npy").write_bytes(b"half a chunk")
+    del killed
+
+    resumed = _open(path, layout, resume=True)
+    assert not stray.exists()
+    missing = resumed.pending([(v, first, min(first + 4, 10)) for v in range(2)
+                               for first in range(0, 10, 4)])
+    assert missing[0] == (0, 3, 4)
+    assert sum(end - first for _, first, end in missing) == 2 * 10 - 3
+    for key in missing:
+        resumed.save(key, *made_up_members(layout, *key))
+    assert resumed.finish() == path
+    assert not partial_path(path).exists()
+    _assert_same_numbers(path, tmp_path / "reference.nc")
+
+
+def test_without_resume_old_work_is_discarded(tmp_path, layout):
+    path = tmp_path / "r.nc"
+    _open(path, layout).save((0, 0, 3), *made_up_members(layout, 0, 0, 3))
+    assert _open(path, layout).saved() == []
+
+
+def test_resume_of_a_different_scenario_is_refused(tmp_path, layout):
+    path = tmp_path / "r.nc"
+    _open(path, layout).save((0, 0, 3), *made_up_members(layout, 0, 0, 3))
+    other = layout_of(layout.scenario, fingerprint="0" * 64)
+    with pytest.raises(FingerprintMismatch):
+        _open(path, other, resume=True)
+    assert _open(path, layout, resume=True).saved() == [(0, 0, 3)]
+
+
+def test_an_existing_result_is_replaced_only_when_forced(tmp_path, layout):
+    path = tmp_path / "r.nc"
+    path.write_bytes(b"an older result")
+    with pytest.raises(ResultExists):
+        _open(path, layout)
+    store = _open(path, layout, force=True)
+    fill(store, layout, chunk=5)
+    assert path.read_bytes() == b"an older result"      # untouched until finish
+    store.finish()
+    assert result_fingerprint(path) == layout.fingerprint
+    assert WorkStore.is_complete(path, layout.fingerprint)
+    assert not WorkStore.is_complete(path, "0" * 64)
+
+
+def test_finish_names_missing_members(tmp_path, layout):
+    store = _open(tmp_path / "r.nc", layout)
+    fill(store, layout, chunk=5)
+    chunk = store._chunk_directory((1, 5, 10))
+    for entry in chunk.iterdir():
+        entry.unlink()
+    chunk.rmdir()
+    with pytest.raises(IncompleteWork, match="members 5-9 of variant 'fewer-contacts'"):
+        store.finish()
+    assert not (tmp_path / "r.nc").exists()
+
+
+def test_the_final_name_appears_only_complete(tmp_path, layout, monkeypatch):
+    """At the rename, the final name is still absent and the temporary is a complete
+    result in the same directory (so the rename is atomic)."""
+    path = tmp_path / "r.nc"
+    store = _open(path, layout)
+    fill(store, layout, chunk=5)
+    seen = []
+    real_replace = os.replace
+
+    def checking_replace(source, target):
+        assert not os.path.exists(target)
+        assert os.path.dirname(os.fspath(source)) == os.fspath(tmp_path)
+        seen.append(result_fingerprint(source))
+        with netCDF4.Dataset(source) as nc:
+            assert "state" in nc.variables and "flow_count" in nc.variables
+        real_replace(source, target)
+
+    monkeypatch.setattr(store_module.os, "replace", checking_replace)
+    store.finish()
+    assert seen == [layout.fingerprint]
+
+
+def test_a_full_disk_keeps_the_chunks_for_resume(tmp_path, layout, monkeypatch):
+    path = tmp_path / "r.nc"
+    store = _open(path, layout)
+    fill(store, layout, chunk=5)
+
+    def disk_full(*args, **kwargs):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
+    monkeypatch.setattr(WorkStore, "_stream_trajectories", disk_full)
+    with pytest.raises(StoreWriteError, match="No space left on device.*--resume"):
+        store.finish()
+    assert not path.exists()
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".tmp-")] == []
+    monkeypatch.undo()
+    resumed = _open(path, layout, resume=True)
+    assert len(resumed.saved()) == 4
+    resumed.finish()
+    assert result_fingerprint(path) == layout.fingerprint
+
+
+def test_an_unwritable_destination_is_a_store_error(tmp_path, layout):
+    blocker = tmp_path / "not-a-directory"
+    blocker.write_text("a file where a directory should be")
+    with pytest.raises(StoreWriteError, match="cannot write"):
+        _open(blocker / "r.nc", layout)
+
+
+def test_without_members_the_file_keeps_summaries_only(tmp_path):
+    layout = layout_of(grouped_scenario(tmp_path, members=10, keep_members=False))
+    store = _open(tmp_path / "r.nc", layout)
+    fill(store, layout, chunk=4)
+    loaded, _ = store.load((0, 0, 4))
+    assert loaded.state.shape[0] == 4           # the work in progress keeps trajectories
+    store.finish()
+    with netCDF4.Dataset(tmp_path / "r.nc") as nc:
+        assert "state" not in nc.variables and "flow_count" not in nc.variables
+        assert {"state_quantile", "peak_value", "status"} <= set(nc.variables)
+
+
+def test_block_plan_covers_every_cell_once_within_budget():
+    members, rows, times, budget = 3000, 7, 50, 100_000
+    seen = np.zeros((times, rows), dtype=int)
+    for time_range, row_range in block_plan(members, rows, times, budget):
+        size = (time_range.stop - time_range.start) * (row_range.stop - row_range.start)
+        assert size * members * 8 <= budget
+        seen[time_range, row_range] += 1
+    assert (seen == 1).all()
+    assert len(block_plan(10, 3, 20, 10**9)) == 1
+
+
+def test_finish_gathers_thousands_of_members_in_small_blocks(tmp_path):
+    """3000 members per variant, a budget of 100 kB per block (one time of one state row
+    for all members is 24 kB): finish uses many blocks, none over the budget, and its
+    quantiles equal numpy.quantile over all members in memory."""
+    layout = layout_of(grouped_scenario(tmp_path, members=3000))
+    store = _open(tmp_path / "r.nc", layout, block_bytes=100_000)
+    fill(store, layout, chunk=700)
+    store.finish()
+    assert store.largest_block_bytes <= 100_000
+    assert store.block_count >= 2 * 2 * layout.n_reports
+    with xr.open_dataset(tmp_path / "r.nc", decode_times=False) as dataset:
+        keep = (dataset.status.values & 12) == 0
+        for v in range(2):
+            expected = np.quantile(dataset.state.values[v][keep[v]],
+                                   dataset["quantile"].values, axis=0)
+            np.testing.assert_array_equal(dataset.state_quantile.values[v], expected)
