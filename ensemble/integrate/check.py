@@ -71,7 +71,7 @@ def step_error(coarse: np.ndarray, fine: np.ndarray, refine: int, order: int,
     """
     scale = atol + rtol * np.abs(fine)
     error = np.abs(coarse - fine) / (1.0 - float(refine) ** -order) / scale
-    return error.reshape(len(error), -1).max(axis=1)
+    return error.max(axis=(1, 2))
 
 
 def observed_order(coarse: np.ndarray, fine: np.ndarray, finest: np.ndarray, refine: int,
@@ -84,10 +84,9 @@ def observed_order(coarse: np.ndarray, fine: np.ndarray, finest: np.ndarray, ref
     method's error (``noise_floor`` is ``NEWTON_TOL_FACTOR * newton.tol`` for the
     implicit methods, 0 for the explicit ones).
     """
-    members = len(coarse)
-    d1 = np.abs(coarse - fine).reshape(members, -1).max(axis=1)
-    d2 = np.abs(fine - finest).reshape(members, -1).max(axis=1)
-    size = np.abs(fine).reshape(members, -1).max(axis=1)
+    d1 = np.abs(coarse - fine).max(axis=(1, 2))
+    d2 = np.abs(fine - finest).max(axis=(1, 2))
+    size = np.abs(fine).max(axis=(1, 2))
     floor = ROUND_OFF_FACTOR * np.finfo(np.float64).eps * size + noise_floor
     with np.errstate(all="ignore"):
         order = np.log(d1 / d2) / np.log(refine)

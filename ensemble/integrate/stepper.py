@@ -211,8 +211,10 @@ class _ChunkStepper:
         self.newton = newton
         self.functions = RateFunctions(model)
         self.stoichiometry = _Stoichiometry(model.stoichiometry, n_members)
-        self.schedules = _Schedules(model.schedule_slots, design.schedule_values, step)
-        self.parameters = design.parameters
+        self.schedules = _Schedules(model.schedule_slots,
+                                    tuple(np.ascontiguousarray(v, dtype=np.float64)
+                                          for v in design.schedule_values), step)
+        self.parameters = np.ascontiguousarray(design.parameters, dtype=np.float64)
         n_flows = model.n_flow_elements
         self.schedule_now = np.empty((len(model.schedule_slots), n_members))
         self.stage_rates = np.empty((method.n_stages, n_flows, n_members))
@@ -343,7 +345,7 @@ def integrate_fixed(model: CompiledModel, design: Design, method: Method, step: 
     dead = np.array(design.invalid_start, dtype=bool)
     status[dead] |= INVALID_START
 
-    y = np.array(design.initial, dtype=np.float64)
+    y = np.array(design.initial, dtype=np.float64, order="C")
     y[:, dead] = np.nan
     interval_flows = np.empty((model.n_flow_elements, n_members))
     with np.errstate(all="ignore"):
