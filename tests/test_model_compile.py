@@ -239,3 +239,15 @@ def test_constant_time_only_leaf_and_repeated_rates(tmp_path):
         assert partials.shape == (functions.nnz, members)
     assert model.rate_derivatives[model.flows.index("births")] == ()
     assert model.rate_derivatives[model.flows.index("deaths_E")] == ((1, Const(1.0)),)
+
+
+def test_signed_zeros_are_not_shared(tmp_path):
+    """IEEE 754: 1 / +0 = +inf and 1 / -0 = -inf, so the constants 0.0 and -0.0 (here
+    from folding ``0 * -1``) must stay distinct when equal subtrees are shared."""
+    body = SEIR.replace('rate = "I / infectious_days"', 'rate = "I / (0 * -1) - E / 0"')
+    model = compiled(tmp_path, body)
+    functions = RateFunctions(model)
+    y = np.array([[1.0], [2.0], [3.0], [4.0]])
+    p = np.ones((len(model.parameter_slots), 1))
+    assert functions.rates(0.0, y, p, np.empty((0, 1)))[2, 0] == -np.inf
+    assert Const(0.0) != Const(-0.0) and Const(np.nan) == Const(np.nan)

@@ -30,6 +30,7 @@ Build trees with :func:`apply` rather than :class:`Apply` directly: it folds con
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Union
@@ -83,9 +84,25 @@ def select_le(a, b, x, y):
 
 @dataclass(frozen=True)
 class Const:
-    """A float64 number."""
+    """A float64 number.
+
+    Constants are equal when their bits are: 0.0 and -0.0 stay apart (1 / -0.0 is -inf),
+    and a NaN equals itself, so sharing equal subtrees never changes a result.
+    """
 
     value: float
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Const):
+            return NotImplemented
+        return _bits(self.value) == _bits(other.value)
+
+    def __hash__(self) -> int:
+        return hash(_bits(self.value))
+
+
+def _bits(value: float) -> bytes:
+    return struct.pack("<d", value)
 
 
 @dataclass(frozen=True)
