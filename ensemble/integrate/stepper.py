@@ -40,9 +40,11 @@ Theta method (theta = 1 backward Euler, 1/2 trapezoid) for step k, from ``y0``:
   ``inc(y1) = h * ((1 - theta) * R0 + theta * R(t_{k+1}, y1))`` and the residual
   ``F(y1) = y1 - (y0 (+) S inc(y1))``;
 - Newton update ``d`` solves ``(I - (h * theta) * J) d = -F`` with ``J = S dR/dy`` at
-  ``y1`` (see :class:`_NewtonMatrix`), one LAPACK ``gesv`` per
-  member through numpy.linalg.solve; ``y1 <- y1 + d``; a member converges when
-  ``max_i |d_i| <= newton.tol`` and is then frozen (no further iterations).  A member
+  ``y1`` and the rates at ``t_{k+1}`` (see :class:`_NewtonMatrix`; the matrix entries
+  are ``(-(h * theta)) * J_ij``, plus 1.0 on the diagonal), by LU with partial pivoting
+  (LAPACK ``gesv``) per member through numpy.linalg.solve; ``y1 <- y1 + d``; a member
+  converges when ``max_i |d_i| <= newton.tol`` and is then frozen (no further
+  iterations; the others carry on with compacted copies of their columns).  A member
   whose residual or Jacobian is not finite leaves the iteration (it will be flagged
   non-finite); one whose matrix is singular, or still unconverged after
   ``newton.max_iter`` iterations, gets NEWTON_NOT_CONVERGED and keeps its last iterate;
