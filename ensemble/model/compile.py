@@ -51,7 +51,8 @@ class CompiledModel:
     state_labels : one per state row, ``"S"`` or ``"S[child]"``; index c * n_groups + g.
     rates : one scalar tree per flow element, index f * n_groups + g (persons per day).
     rate_derivatives : per flow element, the non-zero partial derivatives
-        ``(state index, tree)`` of that rate with respect to the state.
+        ``(state index, tree)`` of that rate with respect to the state, states ascending
+        (:mod:`ensemble.model.derivatives`).
     stoichiometry : (n_states, n_flow_elements) float64 of -1, 0, +1.
     parameter_slots : names of the rows of the per-member constant parameter array,
         ``"beta"`` or ``"susceptibility[child]"``.
@@ -89,7 +90,9 @@ def compile_model(scenario: Scenario, variant: Variant) -> CompiledModel:
     become state rows, parameters constant in time become per-member slots (only those a
     rate uses, in file order), schedules become schedule slots, and derived parameters
     that vary in time (or are matrices) are substituted into the rates.  Matrices are
-    constants; their zero entries are dropped from ``@`` products.
+    constants; their zero entries are dropped from ``@`` products and stay zero under
+    ``scalar * matrix`` (even for an infinite scalar: a zero contact is no contact).
+    Constants are folded in float64 (:func:`ensemble.model.ir.apply`).
     """
     lowering = _Lowering(scenario, variant)
     model = scenario.model
