@@ -251,3 +251,13 @@ def test_signed_zeros_are_not_shared(tmp_path):
     p = np.ones((len(model.parameter_slots), 1))
     assert functions.rates(0.0, y, p, np.empty((0, 1)))[2, 0] == -np.inf
     assert Const(0.0) != Const(-0.0) and Const(np.nan) == Const(np.nan)
+
+
+def test_every_operation_is_documented_and_evaluable():
+    """A backend implements the ops of OPERATIONS as OPERATION_MEANINGS says; the numpy
+    evaluator has a function for each."""
+    from ensemble.model.ir import NUMPY_FUNCTIONS, OPERATION_MEANINGS, OPERATIONS
+    assert set(OPERATION_MEANINGS) == set(OPERATIONS)
+    assert set(NUMPY_FUNCTIONS) | {"select_le"} == set(OPERATIONS)
+    assert apply("select_le", Const(1.0), Const(np.nan), Const(2.0), Const(3.0)) == Const(3.0)
+    assert apply("sign", Const(-0.0)) == Const(0.0) and apply("sign", Const(-4.0)) == Const(-1.0)

@@ -24,17 +24,11 @@ import numpy as np
 import scipy.sparse
 
 from ensemble.model.compile import CompiledModel
-from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
-                               TimeRef, select_le, walk)
+from ensemble.model.ir import (NUMPY_FUNCTIONS, Apply, Const, ParamRef, ScalarNode, ScheduleRef,
+                               StateRef, TimeRef, select_le, walk)
 
-_NUMPY_NAMES = {
-    "add": "np.add", "sub": "np.subtract", "mul": "np.multiply", "div": "np.divide",
-    "pow": "np.power", "neg": "np.negative", "exp": "np.exp", "log": "np.log",
-    "sqrt": "np.sqrt", "abs": "np.absolute", "sin": "np.sin", "cos": "np.cos",
-    "min": "np.minimum", "max": "np.maximum", "sign": "np.sign",
-}
-"""numpy spelling of each operation of :data:`ensemble.model.ir.OPERATIONS` but
-``select_le``, which is :func:`ensemble.model.ir.select_le`."""
+_NUMPY_NAMES = {op: f"np.{function.__name__}" for op, function in NUMPY_FUNCTIONS.items()}
+"""numpy spelling of each operation but ``select_le`` (:func:`ensemble.model.ir.select_le`)."""
 
 
 _ASSEMBLY_BLOCK_BYTES = 8 * 2**20
