@@ -160,6 +160,7 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
 
     queue = iter(keys)
     running = as_completed()
+    submitted = set()
 
     def top_up() -> None:
         threads = sum(client.nthreads().values())
@@ -168,8 +169,10 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
             key = next(queue, None)
             if key is None:
                 return
-            running.add(client.submit(compute_chunk, scenario, models[key[0]], key, backend,
-                                      key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False))
+            future = client.submit(compute_chunk, scenario, models[key[0]], key, backend,
+                                   key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False)
+            submitted.add(future)
+            running.add(future)
 
     top_up()
     try:
@@ -179,12 +182,12 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
             except Exception as error:  # the task's own error, or KilledWorker
                 raise RunFailed(f"chunk {future.key} failed: "
                                 f"{type(error).__name__}: {error}") from error
+            submitted.discard(future)
             future.release()
             top_up()
             yield output
     finally:
-        for future in running.futures:
-            future.cancel()
+        client.cancel(list(submitted))
 
 
 # ---------------------------------------------------------------------------- progress
