@@ -360,7 +360,7 @@ def create_streamed_variable(nc: netCDF4.Dataset, layout: ResultLayout,
 def with_label_indexes(dataset: xr.Dataset) -> xr.Dataset:
     """``dataset`` with each ``<dim>_name`` label variable as the index of ``<dim>``, so
     ``ds.sel(compartment="I", variant="distancing")`` works."""
-    labels = {dim: dataset[f"{dim}_name"].values.astype(str) for dim in LABELLED_DIMS
+    labels = {dim: dataset[f"{dim}_name"] for dim in LABELLED_DIMS
               if f"{dim}_name" in dataset.variables}
     return dataset.assign_coords(labels)
 
