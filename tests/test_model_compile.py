@@ -129,7 +129,8 @@ def test_schedule_slots_and_variant_overrides(tmp_path):
 
 
 def test_vector_schedule_has_one_slot_per_group(tmp_path):
-    body = AGE_SEIR.replace('susceptibility = [0.6, 1.0, 1.0, 0.9]', """susceptibility = [0.6, 1.0, 1.0, 0.9]
+    body = AGE_SEIR.replace('susceptibility = [0.6, 1.0, 1.0, 0.9]', """
+susceptibility = [0.6, 1.0, 1.0, 0.9]
 term = { schedule = [[0, [1.0, 1.0, 1.0, 1.0]], [4, [0.5, 1.0, 1.0, 1.0]]] }
 """).replace("beta * susceptibility * S", "beta * term * susceptibility * S")
     model = compiled(tmp_path, body)
@@ -168,7 +169,8 @@ def test_exact_identities_only(tmp_path):
 def test_constant_folding_in_float64_without_overflow(tmp_path):
     """``9 ** 9 ** 9`` folds to inf in IEEE float64 (no OverflowError, no hang), and the
     rate evaluates silently to 0 (I / inf)."""
-    body = SEIR.replace('rate = "I / infectious_days"', 'rate = "I / 9 ** 9 ** 9 + I * (2 - 1) / infectious_days"')
+    body = SEIR.replace('rate = "I / infectious_days"',
+                        'rate = "I / 9 ** 9 ** 9 + I * (2 - 1) / infectious_days"')
     model = compiled(tmp_path, body)
     assert model.rates[2].args[0] == Apply("div", (StateRef(2), Const(np.inf)))
     assert np.isnan(apply("pow", Const(-8.0), Const(1 / 3)).value)

@@ -67,7 +67,8 @@ def reference(node: Node, values: dict[str, np.ndarray | float]) -> np.ndarray |
     return _NUMPY[node.op](reference(node.left, values), reference(node.right, values))
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=150, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(text=EXPRESSIONS)
 @example(text="(0) * (S)")  # NaN for S = inf: must not become 0
 @example(text="(S) / ((0) * (-(1)))")  # division by -0.0

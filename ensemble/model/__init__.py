@@ -2,7 +2,8 @@
 (:mod:`.compile`), symbolic state derivatives (:mod:`.derivatives`) and the numpy
 reference evaluator (:mod:`.evaluate`)."""
 
-from ensemble.model.compile import CompiledModel, ScheduleSlot, compile_model, time_varying_parameters
+from ensemble.model.compile import (CompiledModel, ScheduleSlot, compile_model,
+                                    time_varying_parameters)
 from ensemble.model.evaluate import RateFunctions
 
 __all__ = ["CompiledModel", "RateFunctions", "ScheduleSlot", "compile_model",

@@ -60,8 +60,8 @@ OPERATION_MEANINGS: dict[str, str] = {
     "cos": "cosine of a (radians)",
     "min": "numpy.minimum: the smaller of a and b, NaN if either is NaN",
     "max": "numpy.maximum: the larger of a and b, NaN if either is NaN",
-    "sign": "numpy.sign: -1 for a < 0, +0.0 for a == 0 (either sign), +1 for a > 0, NaN for NaN; used as "
-            "the derivative of abs (so d|a|/da is taken as 0 at a == 0)",
+    "sign": "numpy.sign: -1 for a < 0, +0.0 for a == 0 (either sign), +1 for a > 0, NaN "
+            "for NaN; used as the derivative of abs (so d|a|/da is taken as 0 at a == 0)",
     "select_le": "select_le(a, b, x, y) is x where a <= b, else y (also y when a or b is "
                  "NaN); used for the derivatives of min and max, which follow the first "
                  "argument on a tie",
