@@ -74,7 +74,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
 
     from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
     from ensemble.run.plan import fingerprint
-    from ensemble.run.shards import engine_options, part_is_complete
+    from ensemble.run.shards import Shard, engine_options, part_is_complete
 
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)

@@ -367,7 +367,8 @@ def job_header(profile: ClusterProfile, job_name: str) -> str:
 
 def make_jobqueue_cluster(profile: ClusterProfile):
     """A started (but not yet scaled) dask-jobqueue cluster for the profile."""
-    return _cluster_class(profile)(**jobqueue_arguments(profile))
+    return _cluster_class(profile)(**jobqueue_arguments(profile),
+                                   scheduler_options={"dashboard_address": ":0"})
 
 
 def scale(cluster, profile: ClusterProfile) -> None:
