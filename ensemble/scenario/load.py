@@ -108,13 +108,23 @@ def load_scenario(path: str | Path, *, members: int | None = None,
         data = tomllib.loads(text, parse_float=Decimal)
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioError(file, "", None, f"TOML syntax error: {exc}") from None
-    scenario = _Loader(file).scenario(data, text)
+    scenario = validate(data, file, text)
     overrides: dict[str, int] = {}
     if members is not None:
         overrides["members"] = _override(file, "members", members, minimum=1)
     if seed is not None:
         overrides["seed"] = _override(file, "seed", seed, minimum=0)
     return dataclasses.replace(scenario, **overrides) if overrides else scenario
+
+
+def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
+    """Check and complete a scenario already read from TOML into ``data``.
+
+    ``data`` is what :func:`tomllib.loads` gives with ``parse_float=decimal.Decimal``
+    (plain floats are accepted, but times are then only as exact as the float).
+    ``file`` names the source in errors; ``text`` is kept as the scenario's full text.
+    """
+    return _Loader(file).scenario(data, text)
 
 
 def scenario_warnings(scenario: Scenario) -> list[str]:
@@ -185,7 +195,11 @@ def _shown(value: object) -> object:
 
 
 def _is_number(value: object) -> bool:
-    return isinstance(value, (int, Decimal)) and not isinstance(value, bool)
+    return isinstance(value, (int, float, Decimal)) and not isinstance(value, bool)
+
+
+def _is_finite(value: int | float | Decimal) -> bool:
+    return value.is_finite() if isinstance(value, Decimal) else math.isfinite(value)
 
 
 def _key(path: str, key: str) -> str:
@@ -335,10 +349,9 @@ class _Loader:
     def number(self, value: object, path: str) -> float:
         if not _is_number(value):
             raise self.error(path, value, "must be a number")
-        result = float(value)  # type: ignore[arg-type]
-        if not math.isfinite(result):
+        if not _is_finite(value) or not math.isfinite(float(value)):  # type: ignore[arg-type]
             raise self.error(path, value, "must be a finite number")
-        return result
+        return float(value)  # type: ignore[arg-type]
 
     def positive(self, value: object, path: str) -> float:
         result = self.number(value, path)
@@ -348,7 +361,7 @@ class _Loader:
 
     def time(self, value: object, path: str) -> Fraction:
         """A time in days, exactly as written."""
-        if not _is_number(value) or (isinstance(value, Decimal) and not value.is_finite()):
+        if not _is_number(value) or not _is_finite(value):  # type: ignore[arg-type]
             raise self.error(path, value, "must be a finite number of days")
         return Fraction(value)  # type: ignore[arg-type]
 
