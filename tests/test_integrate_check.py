@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 import dataclasses
+import sys
+import types
 
 import numpy as np
 import pytest
 
 from ensemble.integrate.check import integrate_chunk, observed_order
+from ensemble.integrate.stepper import integrate_fixed
 from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START, NON_FINITE,
                                        STEP_CHECK_FAILED)
 from integrate_fixtures import load_case, subset
@@ -175,11 +178,24 @@ def test_observed_order_formula():
     assert np.isnan(observed_order(*runs, refine=2, noise_floor=1.0))
 
 
-def test_unknown_backend_is_a_clear_error(tmp_path):
+def test_backend_dispatch(tmp_path, monkeypatch):
+    """"compiled" calls ensemble.integrate.compiled.integrate_fixed_compiled with
+    integrate_fixed's arguments; a missing compiled module or an unknown backend is a
+    clear error."""
     case = load_case(tmp_path, SEASONAL)
+
+    def chunk(backend):
+        return integrate_chunk(case.model, case.design, case.scenario.solver,
+                               case.scenario.n_reports, backend=backend)
+
+    monkeypatch.setitem(sys.modules, "ensemble.integrate.compiled",
+                        types.SimpleNamespace(integrate_fixed_compiled=integrate_fixed))
+    _results_equal(chunk("compiled"), chunk("numpy"))
+    monkeypatch.setitem(sys.modules, "ensemble.integrate.compiled", None)
+    with pytest.raises(RuntimeError, match="compiled integration backend is not available"):
+        chunk("compiled")
     with pytest.raises(ValueError, match="backend"):
-        integrate_chunk(case.model, case.design, case.scenario.solver,
-                        case.scenario.n_reports, backend="fortran")
+        chunk("fortran")
 
 
 def test_negative_state_flag(tmp_path):
