@@ -31,7 +31,7 @@ from ensemble.scenario.expressions import (
 )
 
 FRAGMENTS = ["__", ".", "import", "__import__", "(", ")", "'os'", "system", "lambda",
-             ":", "[", "]", "for", " in ", "**", "9" * 40, "1e308", "1e999", "-", "+", "*",
+             ":", "[", "]", "for", " in ", "**", "9" * 40, "9" * 400, "1e308", "1e999", "-", "+", "*",
              "/", "@", ",", "x", "S", "exp", "sum", "eval", "open", "getattr", "class",
              "__class__", "__subclasses__", "if", "else", "not", "==", "<", "{", "}", "\"",
              "\\", "\n", ";", "=", ":=", "yield", "await", "f'{x}'", "b''", "...", "0x1F",
@@ -145,7 +145,8 @@ def test_deep_nesting_is_refused_quickly(depth: int, opener: str) -> None:
 
 
 @pytest.mark.parametrize("text", ["9 ** 9 ** 9 ** 9", "x ** 1e300", "x ** -1e300",
-                                  "2 ** 99999999999", "1e999", "(" * 200 + "1" + ")" * 200,
+                                  "2 ** 99999999999", "1e999", "9" * 400,
+                                  "0x" + "f" * 300, "(" * 200 + "1" + ")" * 200,
                                   "x" * (MAX_LENGTH + 1), "-" * 1990 + "1"])
 def test_pathological_texts_finish(text: str) -> None:
     _parse_within_bounds(text)

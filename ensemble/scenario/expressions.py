@@ -120,9 +120,14 @@ def _convert(node: ast.AST, depth: int) -> Node:
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, (int, float)):
             raise ExpressionError(f"only numbers are allowed as literals, not {node.value!r}")
-        value = float(node.value)
+        try:
+            value = float(node.value)
+        except OverflowError:
+            value = math.inf
         if not math.isfinite(value):
-            raise ExpressionError(f"literal {node.value!r} is not a finite number")
+            written = repr(node.value)
+            written = written if len(written) <= 24 else written[:20] + "..."
+            raise ExpressionError(f"literal {written} is not a finite number")
         return Number(value)
     if isinstance(node, ast.Name):
         if node.id.startswith("__"):
