@@ -335,6 +335,17 @@ def test_independent_errors_are_reported_together(load) -> None:
     assert str(caught.value).count("\n") == 3
 
 
+def test_rates_are_checked_beside_a_broken_parameter(load) -> None:
+    """A rate using the broken parameter is not checked again; the others are."""
+    text = edit(MINIMAL, "gamma = 0.1", 'gamma = { dist = "normal", mean = 1, sd = 0 }',
+                '"beta * S * I / N"', '"bta * S * I / N"')
+    with pytest.raises(ScenarioErrors) as caught:
+        load(text)
+    errors = caught.value.errors
+    assert [e.key for e in errors] == ["parameters.gamma.sd", "model.flows[0].rate"]
+    assert errors[1].hint == "did you mean 'beta'?"
+
+
 def test_toml_syntax_error_gives_line_and_column(load) -> None:
     error = error_of(load, MINIMAL.replace("days = 10", "days = = 10"))
     assert error.key == "" and "line 4, column" in error.message

@@ -253,6 +253,8 @@ class _Loader:
     def __init__(self, file: str):
         self.file = file
         self.errors: list[ScenarioError] = []
+        self.unusable: frozenset[str] = frozenset()
+        """Parameters whose definitions failed: expressions using them are not checked."""
 
     # -- errors ---------------------------------------------------------------------------
 
@@ -411,6 +413,8 @@ class _Loader:
         ``forbidden`` maps names that exist but may not be used here to the reason.
         """
         forbidden = forbidden or {}
+        if text.names & self.unusable:
+            raise _Abandoned
         for name in sorted(text.names):
             if name in shapes:
                 continue
@@ -420,7 +424,7 @@ class _Loader:
                 raise self.error(text.path, text.text, f"{name!r} is a function; call it "
                                  f"with {expressions.FUNCTIONS[name]} argument(s)")
             raise self.error(text.path, text.text, f"unknown name {name!r}",
-                             did_you_mean(name, shapes))
+                             did_you_mean(name, [*shapes, *self.unusable]))
         try:
             shape = expressions.infer_shape(text.tree, shapes)
         except ExpressionError as exc:
@@ -459,8 +463,9 @@ class _Loader:
             initial = self.attempt(self.initial, model_table.get("initial", {}), scope,
                                    structure["population"], resolved)
             flows = self.attempt(self.flows, model_table.get("flows", []), scope, resolved)
-            variants = self.attempt(self.variants, data.get("variants", []), scope, drafts,
-                                    resolved, initial)
+            if not self.unusable:
+                variants = self.attempt(self.variants, data.get("variants", []), scope,
+                                        drafts, resolved, initial)
         output = self.attempt(self.output, data.get("output", {}),
                               head["name"] if head else "scenario",
                               [v.name for v in variants] if variants else None)
@@ -662,7 +667,9 @@ class _Loader:
             else:
                 drafts[name] = draft
         resolved = self.resolve(drafts, scope, failed)
-        self.abandon_if_failed(mark)
+        self.unusable = frozenset(failed) | resolved.broken
+        if len(self.errors) > mark and not self.unusable:
+            raise _Abandoned
         return drafts, resolved
 
     def draft(self, name: str, value: object, path: str, scope: "_Scope") -> _Draft:
@@ -843,7 +850,7 @@ class _Loader:
             else:
                 done[name] = parameter
         in_file_order = {name: done[name] for name in drafts if name in done}
-        return _Resolved(in_file_order, frozenset(time_varying))
+        return _Resolved(in_file_order, frozenset(time_varying), frozenset(broken))
 
     def complete(self, draft: _Draft, scope: "_Scope", done: Mapping[str, Parameter],
                  time_varying: set[str]) -> Parameter:
@@ -1022,7 +1029,10 @@ class _Loader:
             if variant is not None:
                 variants.append(variant)
         self.abandon_if_failed(mark)
-        self.unique([v.name for v in variants], "variants", "variant name")
+        names = [v.name for v in variants]
+        for i, name in enumerate(names):
+            if name in names[:i]:
+                raise self.error(f"variants[{i}].name", name, f"duplicate variant name {name!r}")
         return tuple(variants)
 
     def variant(self, value: object, path: str, scope: "_Scope", drafts: dict[str, _Draft],
@@ -1113,10 +1123,12 @@ class _Loader:
 
 @dataclass(frozen=True)
 class _Resolved:
-    """A checked parameter set: the parameters in file order, and those varying in time."""
+    """A checked parameter set: the parameters in file order, those varying in time, and
+    those that failed their checks (or depend on one that did)."""
 
     parameters: dict[str, Parameter]
     time_varying: frozenset[str]
+    broken: frozenset[str]
 
 
 @dataclass(frozen=True)
