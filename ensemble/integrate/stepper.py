@@ -236,10 +236,6 @@ class _ChunkStepper:
             return self._advance_theta(k, y, skip, status)
         return self._advance_explicit(k, y)
 
-    def _rates(self, t: float, y: np.ndarray, s: np.ndarray, out: np.ndarray) -> np.ndarray:
-        self.functions.rates(t, y, self.parameters, s, out)
-        return out
-
     def _advance_explicit(self, k: int, y: np.ndarray) -> np.ndarray:
         method, h = self.method, self.step
         t_k = k * h
@@ -251,7 +247,8 @@ class _ChunkStepper:
                 stage_y = self.stoichiometry.apply(y, self.increment, self.stage_state)
             t = t_k + method.c[i] * h
             self.schedules.fill(k, t, self.schedule_now)
-            self._rates(t, stage_y, self.schedule_now, self.stage_rates[i])
+            self.functions.rates(t, stage_y, self.parameters, self.schedule_now,
+                                 self.stage_rates[i])
         _weighted_sum(method.b, self.stage_rates, self.increment, self.scratch)
         np.multiply(self.increment, h, out=self.increment)
         self.stoichiometry.apply(y, self.increment, y)
@@ -273,7 +270,7 @@ class _ChunkStepper:
         t_start, t_end = k * h, (k + 1) * h
         start_rates, end_rates = self.stage_rates[0], self.stage_rates[1]
         self.schedules.fill(k, t_start, self.schedule_now)
-        self._rates(t_start, y, self.schedule_now, start_rates)
+        self.functions.rates(t_start, y, self.parameters, self.schedule_now, start_rates)
         self.schedules.fill(k, t_end, self.schedule_end)
 
         y_end = self.stage_state
@@ -281,7 +278,7 @@ class _ChunkStepper:
         self.stoichiometry.apply(y, self.increment, y_end)
         self._newton(t_end, y, y_end, np.flatnonzero(~skip), status)
 
-        self._rates(t_end, y_end, self.schedule_end, end_rates)
+        self.functions.rates(t_end, y_end, self.parameters, self.schedule_end, end_rates)
         self._theta_increment(start_rates, end_rates, self.increment, self.scratch)
         self.stoichiometry.apply(y, self.increment, y)
         return self.increment
