@@ -11,7 +11,8 @@ import pytest
 
 from ensemble.integrate.check import integrate_chunk, observed_order
 from ensemble.integrate.stepper import integrate_fixed
-from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START, NON_FINITE,
+from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
+                                       NEWTON_NOT_CONVERGED, NON_FINITE,
                                        STEP_CHECK_FAILED)
 from integrate_fixtures import load_case, subset
 
@@ -207,3 +208,41 @@ def test_negative_state_flag(tmp_path):
     assert (trajectory.state[0] < -case.scenario.solver.check.atol).any()
     assert trajectory.status[0] & BELOW_NEGATIVE_ATOL
     assert not (trajectory.status[1:] & BELOW_NEGATIVE_ATOL).any()
+
+
+SINGULAR = """
+[scenario]
+name = "singular"
+days = 2
+members = 2
+
+[model]
+compartments = ["X"]
+population = 1000
+initial = { X = "rest" }
+
+[[model.flows]]
+from = "X"
+rate = "k * X"
+
+[parameters]
+k = 1.0
+
+[solver]
+method = "backward-euler"
+step = 0.25
+"""
+
+
+def test_singular_newton_matrix_is_flagged_and_others_untouched(tmp_path):
+    """k = -4 with h = 0.25 makes backward Euler's Newton matrix 1 + h k exactly 0: that
+    member gets NEWTON_NOT_CONVERGED and the run goes on; the other member's numbers are
+    those it has alone, where it converges to the exact step y / (1 + h k)."""
+    case = load_case(tmp_path, SINGULAR).with_parameter("k", [-4.0, 1.0])
+    both = case.run("backward-euler")
+    alone = dataclasses.replace(case, design=subset(case.design, [1])).run("backward-euler")
+    assert both.status[0] & NEWTON_NOT_CONVERGED
+    assert both.status[1] == 0
+    np.testing.assert_array_equal(both.state[1], alone.state[0])
+    np.testing.assert_allclose(alone.state[0, 0], 1000 / 1.25 ** (4 * np.arange(3)),
+                               rtol=1e-12)
