@@ -94,6 +94,8 @@ def run(
         loaded = api.load_scenario(scenario, members=members, seed=seed)
         profile = api.cluster_profile(cluster if cluster is not None
                                       else loaded.compute.cluster)
+    if profile is not None and address is not None:
+        _stop("error: --cluster and --address both name where the workers are; give one", 2)
     if shard is not None and output is None:
         output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
