@@ -20,9 +20,10 @@ import os
 import shlex
 import shutil
 import sys
-import tempfile
+import tomllib
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
+from decimal import Decimal
 from pathlib import Path
 from typing import Any
 
@@ -34,8 +35,8 @@ from ensemble.model.compile import compile_model
 from ensemble.output.store import ResultLayout, WorkStore, partial_path
 from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
 from ensemble.run.plan import fingerprint, plan_chunks, shard_range
-from ensemble.scenario.load import load_scenario
-from ensemble.scenario.schema import Scenario, Source
+from ensemble.scenario.load import validate
+from ensemble.scenario.schema import Scenario
 
 PART_FORMAT = "ensemble shard part 1"
 """Value of a part file's ``ensemble_part`` attribute: marks the file and its layout."""
@@ -303,12 +304,9 @@ def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenar
     with netCDF4.Dataset(info.path) as part:
         text, original = str(part.scenario), str(part.scenario_path)
         members, seed, backend = int(part.members), int(part.seed), str(part.backend)
-    with tempfile.TemporaryDirectory(prefix="ensemble-merge-") as directory:
-        copy = Path(directory) / Path(original).name
-        copy.write_text(text, encoding="utf-8")
-        scenario = load_scenario(copy, members=members, seed=seed)
+    scenario = validate(tomllib.loads(text, parse_float=Decimal), original, text)
     scenario = dataclasses.replace(
-        scenario, source=Source(path=original, text=text),
+        scenario, members=members, seed=seed,
         output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if fingerprint(scenario, backend) != info.fingerprint:
         raise PartError(f"{info.path}: made by a different version of ensemble (its "
