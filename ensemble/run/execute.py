@@ -77,13 +77,21 @@ class ChunkOutput:
 
 
 def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
-                  backend: str = DEFAULT_BACKEND) -> ChunkOutput:
+                  backend: str = DEFAULT_BACKEND,
+                  kernel_threads: int | None = None) -> ChunkOutput:
     """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
 
     A pure function of its arguments: the same key gives the same bits in any process
     (:func:`~ensemble.sampling.make_design` depends on the member index alone, and
     :func:`~ensemble.integrate.check.integrate_chunk` treats members independently).
+    ``kernel_threads`` sets the threads of the compiled backend's kernels in the calling
+    thread (1 in a dask worker, whose siblings already use the other cores); None leaves
+    numba's default.
     """
+    if kernel_threads is not None and backend == "compiled":
+        from ensemble.integrate.compiled import set_kernel_threads
+
+        set_kernel_threads(kernel_threads)
     variant, start, end = key
     members = np.arange(start, end, dtype=np.int64)
     design = make_design(scenario, scenario.variants[variant], model, members)
@@ -169,7 +177,7 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
             key = next(queue, None)
             if key is None:
                 return
-            future = client.submit(compute_chunk, scenario, models[key[0]], key, backend,
+            future = client.submit(compute_chunk, scenario, models[key[0]], key, backend, 1,
                                    key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False)
             submitted.add(future)
             running.add(future)
