@@ -366,6 +366,18 @@ def test_warnings(load) -> None:
     assert len(few) == 1 and "20 member" in few[0]
 
 
+def test_warnings_on_initial_values_and_late_schedule_days(load) -> None:
+    text = edit(MINIMAL, "days = 10", "days = 10\nmembers = 128",
+                'S = "rest", I = 5', 'S = "susceptible", I = 5',
+                "gamma = 0.1", 'gamma = { dist = "uniform", low = 0.05, high = 0.2 }\n'
+                'susceptible = { dist = "uniform", low = 990, high = 996 }\n'
+                'beta_scale = { schedule = [[0, 1.0], [8, 0.5], [12, 0.2], [20, 0.1]] }')
+    warnings = scenario_warnings(load(text))
+    assert len(warnings) == 2
+    assert "no \"rest\"" in warnings[0]
+    assert warnings[1].startswith("parameters.beta_scale: schedule day(s) 12, 20 fall after")
+
+
 @pytest.mark.parametrize("name", ["seir-demo", "age-seir", "seirs-seasonal"])
 def test_demo_scenarios_pass_check(name: str) -> None:
     path = SCENARIOS / f"{name}.toml"

@@ -200,9 +200,9 @@ def _solver(scenario: Scenario) -> str:
                    f"{number_text(check.rtol)}, atol {number_text(check.atol)} persons")
          if check.enabled else "off"),
     ]
-    if solver.method in IMPLICIT_METHODS:
-        rows.append(("newton", f"tol {number_text(solver.newton.tol)} persons, max_iter "
-                               f"{solver.newton.max_iter}"))
+    used = "" if solver.method in IMPLICIT_METHODS else " (used by implicit methods only)"
+    rows.append(("newton", f"tol {number_text(solver.newton.tol)} persons, max_iter "
+                           f"{solver.newton.max_iter}{used}"))
     return _section("solver", rows)
 
 

@@ -143,12 +143,32 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
     if scenario.output.compare_to is not None and len(scenario.variants) == 1:
         warnings.append(f"output.compare_to names the only variant "
                         f"{scenario.output.compare_to!r}: every difference is zero")
+    initial = scenario.model.initial.values()
+    if not any(isinstance(v, Rest) for v in initial) and any(
+            isinstance(v, Expression) for v in initial):
+        warnings.append("model.initial has no \"rest\" and uses drawn values: a member "
+                        "whose starts do not add up to the population is flagged and holds "
+                        "NaN")
+    for where, parameters in _parameter_sets(scenario):
+        for parameter in parameters.values():
+            form = parameter.form
+            if isinstance(form, Schedule) and form.days[-1] > scenario.days:
+                late = [time_text(d) for d in form.days if d > scenario.days]
+                warnings.append(f"{where}{parameter.name}: schedule day(s) {', '.join(late)} "
+                                f"fall after the horizon of {time_text(scenario.days)} days "
+                                "and have no effect")
     uncertain = [p for p in scenario.parameters.values() if isinstance(p.form, Distribution)
                  and p.form.family != "fixed"]
     if not uncertain and members > 1 and not any(v.parameters for v in scenario.variants):
         warnings.append(f"no parameter is drawn from a distribution: all {members} members "
                         "of a variant are identical")
     return warnings
+
+
+def _parameter_sets(scenario: Scenario) -> list[tuple[str, Mapping[str, Parameter]]]:
+    """The base parameters and each variant's overrides, with their key-path prefixes."""
+    return [("parameters.", scenario.parameters)] + [
+        (f"variant {v.name!r}: parameters.", v.parameters) for v in scenario.variants]
 
 
 def _next_power_of_two(n: int) -> int:
