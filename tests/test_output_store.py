@@ -176,16 +176,24 @@ def test_the_final_name_appears_only_complete(tmp_path, layout, monkeypatch):
     assert seen == [layout.fingerprint]
 
 
-def test_a_full_disk_keeps_the_chunks_for_resume(tmp_path, layout, monkeypatch):
+@pytest.mark.parametrize("failure, message", [
+    (OSError(errno.ENOSPC, os.strerror(errno.ENOSPC)), "No space left on device.*--resume"),
+    (RuntimeError("NetCDF: HDF error"), "HDF error.*MiB free.*--resume"),
+])
+def test_a_full_disk_keeps_the_chunks_for_resume(tmp_path, layout, monkeypatch, failure,
+                                                 message):
+    """A write error while finishing (as Python's OSError, or as the netCDF library's
+    RuntimeError, which is how a full disk shows up inside HDF5) is a StoreWriteError;
+    no temporary stays behind and the chunks are there for a resume."""
     path = tmp_path / "r.nc"
     store = _open(path, layout)
     fill(store, layout, chunk=5)
 
     def disk_full(*args, **kwargs):
-        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+        raise failure
 
     monkeypatch.setattr(WorkStore, "_stream_trajectories", disk_full)
-    with pytest.raises(StoreWriteError, match="No space left on device.*--resume"):
+    with pytest.raises(StoreWriteError, match=message):
         store.finish()
     assert not path.exists()
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".tmp-")] == []

@@ -357,6 +357,13 @@ class WorkStore:
         except OSError as error:
             temporary.unlink(missing_ok=True)
             raise StoreWriteError(_describe(error, self.path)) from error
+        except RuntimeError as error:       # the netCDF library's write errors
+            temporary.unlink(missing_ok=True)
+            free = shutil.disk_usage(self.path.parent).free / 2**20
+            raise StoreWriteError(
+                f"cannot write {self.path}: {error} ({free:.0f} MiB free in "
+                f"{self.path.parent}; finished chunks are kept in {self.work} for "
+                "--resume)") from error
         except BaseException:
             temporary.unlink(missing_ok=True)
             raise
