@@ -77,6 +77,7 @@ def test_run_writes_result_and_reports(tmp_path: Path) -> None:
     assert lines[2].startswith("flagged members: step_check_failed ")
     assert lines[-1] == ensemble.CAUTION
     assert "dask dashboard at http" in done.stderr
+    assert len(done.stderr.splitlines()) <= 5, "noisy output when not on a terminal"
     assert "Traceback" not in done.stderr
 
 

@@ -148,11 +148,23 @@ def open_client(workers: int | None = None, address: str | None = None,
         cluster.close()
 
 
-def _in_process(task: Callable[[ChunkKey], ChunkOutput],
-                keys: Sequence[ChunkKey]) -> Iterator[ChunkOutput]:
+def _chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> RunFailed:
+    """The one-line account of a chunk that could not be computed."""
+    variant, start, end = key
+    return RunFailed(f"members {start}..{end - 1} of variant "
+                     f"{scenario.variants[variant].name!r} failed: "
+                     f"{type(error).__name__}: {error}")
+
+
+def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
+                keys: Sequence[ChunkKey], backend: str) -> Iterator[ChunkOutput]:
     """Compute the chunks one after another in this process, without dask.distributed."""
     for key in keys:
-        yield task(key)
+        try:
+            output = compute_chunk(scenario, models[key[0]], key, backend)
+        except Exception as error:
+            raise _chunk_failed(scenario, key, error) from error
+        yield output
 
 
 def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
@@ -168,7 +180,7 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
 
     queue = iter(keys)
     running = as_completed()
-    submitted = set()
+    submitted: dict = {}
 
     def top_up() -> None:
         threads = sum(client.nthreads().values())
@@ -179,7 +191,7 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
                 return
             future = client.submit(compute_chunk, scenario, models[key[0]], key, backend, 1,
                                    key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False)
-            submitted.add(future)
+            submitted[future] = key
             running.add(future)
 
     top_up()
@@ -188,9 +200,8 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
             try:
                 output = future.result()
             except Exception as error:  # the task's own error, or KilledWorker
-                raise RunFailed(f"chunk {future.key} failed: "
-                                f"{type(error).__name__}: {error}") from error
-            submitted.discard(future)
+                raise _chunk_failed(scenario, submitted[future], error) from error
+            del submitted[future]
             future.release()
             top_up()
             yield output
@@ -324,9 +335,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     try:
         if keys:
             if workers == 0 and address is None and cluster is None:
-                _save_all(store, _in_process(
-                    lambda key: compute_chunk(scenario, models[key[0]], key, backend), keys),
-                    progress)
+                _save_all(store, _in_process(scenario, models, keys, backend), progress)
             else:
                 with open_client(workers, address, cluster) as client:
                     if client.dashboard_link:
@@ -335,6 +344,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                               progress)
     finally:
         progress.close()
+    progress.note(f"every chunk saved; writing {path}")
     return finish(store) if finish is not None else store.finish()
 
 

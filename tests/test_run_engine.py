@@ -1,0 +1,54 @@
+"""The run engine's handling of a chunk that fails (issue 4 part 6: a failure during a run
+is reported in one line, and the chunks finished before it are kept for --resume)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+import ensemble.run.execute as execute
+from ensemble import api
+from ensemble.model.compile import compile_model
+from ensemble.run.execute import RunFailed, open_client
+from ensemble.scenario.load import load_scenario
+from run_support import assert_same_numbers, write_scenario
+
+
+def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
+                                                              monkeypatch) -> None:
+    monkeypatch.chdir(tmp_path)     # the result goes to result.nc, as the file says
+    scenario = write_scenario(tmp_path)
+    real_make_design = execute.make_design
+
+    def failing_make_design(scenario, variant, model, members):
+        if 25 in members:
+            raise FloatingPointError("an illustrative failure")
+        return real_make_design(scenario, variant, model, members)
+
+    monkeypatch.setattr(execute, "make_design", failing_make_design)
+    with pytest.raises(RunFailed) as failure:
+        api.run(scenario, workers=0, chunk=10, progress=False)
+    message = str(failure.value)
+    assert "members 20..29 of variant 'no-change'" in message
+    assert "FloatingPointError: an illustrative failure" in message
+    work = tmp_path / "result.nc.partial"
+    assert len(list(work.glob("chunk-*"))) == 2     # members 0..9 and 10..19
+    assert not (tmp_path / "result.nc").exists()
+
+    monkeypatch.setattr(execute, "make_design", real_make_design)
+    resumed = api.run(scenario, workers=0, chunk=10, resume=True, progress=False)
+    reference = api.run(scenario, output=tmp_path / "reference.nc", workers=0,
+                        progress=False)
+    assert_same_numbers(resumed, reference)
+
+
+def test_a_task_error_on_a_worker_becomes_run_failed(tmp_path: Path) -> None:
+    """A chunk that raises inside a dask worker (here: members past the end, refused by the
+    sampler) stops the run with a message naming the chunk."""
+    scenario = load_scenario(write_scenario(tmp_path))
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    with open_client(workers=1) as client:
+        outputs = execute._on_cluster(client, scenario, models, [(1, 35, 45)], "numpy")
+        with pytest.raises(RunFailed, match=r"members 35\.\.44 of variant 'distancing'"):
+            list(outputs)
