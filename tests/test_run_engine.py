@@ -52,3 +52,12 @@ def test_a_task_error_on_a_worker_becomes_run_failed(tmp_path: Path) -> None:
         outputs = execute._on_cluster(client, scenario, models, [(1, 35, 45)], "numpy")
         with pytest.raises(RunFailed, match=r"members 35\.\.44 of variant 'distancing'"):
             list(outputs)
+
+
+def test_resume_without_work_in_progress_starts_afresh(tmp_path: Path) -> None:
+    """SPEC section 2: --resume starts afresh when there is no <PATH>.partial."""
+    scenario = write_scenario(tmp_path, members=6)
+    result = api.run(scenario, output=tmp_path / "result.nc", workers=0, resume=True,
+                     progress=False)
+    assert result == tmp_path / "result.nc" and result.is_file()
+    assert not (tmp_path / "result.nc.partial").exists()
