@@ -223,14 +223,14 @@ def global_attributes(layout: ResultLayout) -> dict[str, object]:
 
 
 def file_shape(layout: ResultLayout, name: str, array: np.ndarray) -> np.ndarray:
-    """``array`` reshaped from flat model rows to the file's dimensions of ``name``."""
-    dims = variable_spec(layout, name).dims
-    sizes = {"variant": len(layout.variants), "member": layout.members,
-             "quantile": len(layout.scenario.output.quantiles), "time": layout.n_reports,
-             "compartment": len(layout.compartments), "flow": len(layout.flows),
-             "group": layout.n_groups}
-    shape = tuple(sizes[d] for d in dims)
-    return np.asarray(array).reshape(array.shape[:2] + shape[2:])
+    """``array`` reshaped from flat model rows to the file's dimensions of ``name``.
+
+    The first two axes (variant and member or quantile) keep their lengths, so a chunk
+    of members reshapes as well as the whole ensemble."""
+    sizes = {"time": layout.n_reports, "compartment": len(layout.compartments),
+             "flow": len(layout.flows), "group": layout.n_groups}
+    trailing = tuple(sizes[d] for d in variable_spec(layout, name).dims[2:])
+    return np.asarray(array).reshape(array.shape[:2] + trailing)
 
 
 def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> xr.Dataset:
@@ -299,8 +299,7 @@ def dataset_from_results(layout: ResultLayout,
     return build_dataset(layout, variables)
 
 
-def _chunking(layout: ResultLayout, dims: tuple[str, ...], shape: tuple[int, ...]
-              ) -> tuple[int, ...]:
+def _chunking(dims: tuple[str, ...], shape: tuple[int, ...]) -> tuple[int, ...]:
     """netCDF chunk shape: one variant and one member (or every quantile) with all of
     the remaining dimensions, so one member's time series or a variant's quantiles are
     one read; per-member values without time in blocks of :data:`MEMBER_CHUNK`."""
@@ -321,7 +320,7 @@ def variable_encoding(layout: ResultLayout, name: str, shape: tuple[int, ...]
     ``output.compression`` (none at 0)."""
     spec = variable_spec(layout, name)
     level = layout.scenario.output.compression
-    encoding: dict[str, object] = {"chunksizes": _chunking(layout, spec.dims, shape)}
+    encoding: dict[str, object] = {"chunksizes": _chunking(spec.dims, shape)}
     if level > 0:
         encoding.update(zlib=True, complevel=level, shuffle=True)
     if spec.dtype is np.float64:
