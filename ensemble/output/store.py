@@ -97,6 +97,10 @@ class WorkStore:
         self.layout = layout
         self.work = partial_path(path)
         self.block_bytes = block_bytes
+        self.block_count = 0
+        """Blocks of trajectories gathered by :meth:`finish` (for tests and tuning)."""
+        self.largest_block_bytes = 0
+        """Size of the largest of those blocks."""
 
     # ------------------------------------------------------------------ opening
 
@@ -319,7 +323,6 @@ class WorkStore:
 
     def _check_complete(self) -> list[ChunkKey]:
         """The saved keys, after checking that they cover every member of every variant."""
-        covered = self._covered()
         gaps = []
         for index, variant in enumerate(self.layout.variants):
             holes = self.pending([(index, 0, self.layout.members)])
@@ -327,8 +330,7 @@ class WorkStore:
                         for _, first, end in holes)
         if gaps:
             raise IncompleteWork(f"{self.work} is not complete: " + "; ".join(gaps)
-                                 + f" are missing ({sum(map(len, covered.values()))} "
-                                 "saved ranges)")
+                                 + " not saved")
         return self.saved()
 
     def finish(self) -> Path:
@@ -353,7 +355,6 @@ class WorkStore:
             self._write_result(keys, temporary)
             os.replace(temporary, self.path)
             _fsync_directory(self.path.parent)
-            shutil.rmtree(self.work)
         except OSError as error:
             temporary.unlink(missing_ok=True)
             raise StoreWriteError(_describe(error, self.path)) from error
@@ -367,6 +368,8 @@ class WorkStore:
         except BaseException:
             temporary.unlink(missing_ok=True)
             raise
+        # the result is complete; a leftover work directory is only clutter
+        shutil.rmtree(self.work, ignore_errors=True)
         return self.path
 
     def _write_result(self, keys: list[ChunkKey], target: Path) -> None:
@@ -415,8 +418,6 @@ class WorkStore:
         rows = layout.n_states if name == "state" else layout.n_flow_elements
         probabilities = layout.scenario.output.quantiles
         result = np.empty((len(layout.variants), len(probabilities), rows, layout.n_reports))
-        self.largest_block_bytes = getattr(self, "largest_block_bytes", 0)
-        self.block_count = getattr(self, "block_count", 0)
         for variant in range(len(layout.variants)):
             spans = [(first, end) for v, first, end in keys if v == variant]
             count = int(included[variant].sum())
