@@ -17,3 +17,19 @@ CAUTION = (
     "Model projections inform, and never replace, the guidance of the public-health "
     "authority responsible for the population."
 )
+
+_API = ("load_scenario", "scenario_warnings", "run", "simulate", "open_result", "summarize",
+        "merge", "array_script")
+
+
+def __getattr__(name: str):
+    """Expose :mod:`ensemble.api` at the top level, imported only when first used so that
+    worker processes that need just the numerics stay light."""
+    if name in _API:
+        from ensemble import api
+
+        return getattr(api, name)
+    raise AttributeError(f"module 'ensemble' has no attribute {name!r}")
+
+
+__all__ = ["CAUTION", "__version__", *_API]
