@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 import psutil
+from distributed import LocalCluster
 
 from ensemble import api
 from run_support import assert_same_numbers, ensemble_command, write_scenario
@@ -25,12 +26,18 @@ def run_into(directory: Path, name: str, *, members: int = 40, days: int = 30,
 
 
 def test_chunk_size_workers_and_scheduler_change_no_bit(tmp_path: Path) -> None:
+    """In this process with chunks of 7, 50 and all 40 members; on a running one-worker
+    scheduler given by address; on the default local cluster with two workers."""
     reference = run_into(tmp_path, "in-process-7.nc", workers=0, chunk=7)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as running:
+        on_address = run_into(tmp_path, "address-1-worker.nc", chunk=13,
+                              address=running.scheduler_address)
     others = [
         run_into(tmp_path, "in-process-50.nc", workers=0, chunk=50),
         run_into(tmp_path, "in-process-all.nc", workers=0, chunk=40),
-        run_into(tmp_path, "distributed-1-worker.nc", workers=1, chunk=13),
-        run_into(tmp_path, "distributed-2-workers.nc", workers=2, chunk=7),
+        on_address,
+        run_into(tmp_path, "local-cluster-2-workers.nc", workers=2, chunk=7),
     ]
     for other in others:
         assert_same_numbers(reference, other)
