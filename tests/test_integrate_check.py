@@ -161,9 +161,9 @@ check = {{ levels = 3 }}
 
 @pytest.mark.parametrize("method", ALL_METHODS)
 def test_observed_order_nan_when_differences_are_round_off(tmp_path, method):
-    """X' = 3.5 is integrated exactly by every method (each is consistent: sum b_i = 1,
-    HNW I sec. II.1), so d2 is round-off and observed_order is NaN, not a number made of
-    noise; step_error is ~0 and the member passes."""
+    """X' = 3.5 is integrated exactly by every method (each is consistent, sum b_i = 1:
+    Hairer, Norsett & Wanner 1993, sec. II.1), so d2 is round-off and observed_order is
+    NaN, not a number made of noise; step_error is ~0 and the member passes."""
     case = load_case(tmp_path, LINEAR_GROWTH.format(method=method))
     result = case.chunk(method)
     np.testing.assert_allclose(result.state[:, case.row("X"), -1], 17.5, rtol=1e-14)

@@ -4,7 +4,7 @@ Sources: Hairer, Norsett & Wanner 1993, *Solving Ordinary Differential Equations
 (HNW I), sec. II.3 (a method of order p has global error O(h^p)); Hairer & Wanner 1996,
 *Solving Ordinary Differential Equations II* (HW II), sec. IV.2-IV.3 (stability functions
 R(z) of the methods on y' = lambda y, A- and L-stability); Dahlquist 1963, BIT 3:27-43
-(A-stability of the trapezoidal rule).
+(A-stability of the trapezoidal rule).  Section numbers are cited from memory.
 """
 
 from __future__ import annotations
@@ -51,7 +51,7 @@ theta methods)."""
 @pytest.mark.parametrize("method", list(ORDERS))
 def test_method_order_on_linear_decay(tmp_path, method):
     """y' = -y, y(0) = 1000, exact y(2) = 1000 exp(-2): the error at h and h/2 falls by
-    2^p (HNW I, Theorem II.3.6)."""
+    2^p (HNW I, sec. II.3)."""
     case = load_case(tmp_path, DECAY.format(days=2, k=1.0, step=0.1))
     assert METHODS[method].order == ORDERS[method]
     exact = 1000.0 * math.exp(-2.0)

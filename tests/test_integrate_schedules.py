@@ -92,7 +92,7 @@ def test_linear_schedule_integrated_exactly(tmp_path, method):
     """X' = v(t), v piecewise linear with knots on the step grid (0 before day 1, the
     last value after day 4): Heun and the trapezoid (the trapezoidal rule) and RK4
     (Simpson's rule) integrate a linear function exactly on each step (Suli & Mayers
-    2003, *An Introduction to Numerical Analysis*, sec. 7.2), so X(t) is the exact area
+    2003, *An Introduction to Numerical Analysis*, ch. 7), so X(t) is the exact area
     under v, computed here by the trapezoidal formula on the knots and reported times."""
     case = load_case(tmp_path, INFLOW)
     trajectory = case.run(method)

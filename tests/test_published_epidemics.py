@@ -3,6 +3,7 @@
 Every expected value below is computed in this file from the published formula named
 beside it, or by scipy.integrate.solve_ivp (DOP853, Hairer, Norsett & Wanner 1993) on a
 right-hand side written here from the model equations, independently of the package.
+Section numbers within the cited works are given from memory.
 """
 
 from __future__ import annotations
@@ -75,7 +76,7 @@ def test_sir_final_size_kermack_mckendrick(tmp_path):
 def test_sir_peak_prevalence_from_conserved_quantity(tmp_path):
     """S + I - (N / R0) ln S is constant along SIR solutions, so the peak (at S = N / R0)
     is I_max = S0 + I0 - N/R0 + (N/R0) ln(N / (R0 S0)) (Hethcote 2000, SIAM Review
-    42:599-653, sec. 2.1).  RK4 keeps the invariant to 1e-9 relative; the largest
+    42:599-653, the classic epidemic model).  RK4 keeps the invariant to 1e-9 relative; the largest
     reported I lies below I_max by at most the curvature bound |I''| (dt/2)^2 / 2 with
     I'' = -beta^2 S I^2 / N^2 at the peak (Taylor's theorem)."""
     case = sir_case(tmp_path, days=150, step=0.025, report_every=0.05)
@@ -132,7 +133,7 @@ report_every = 1
 def test_seir_early_growth_rate_wallinga_lipsitch(tmp_path):
     """For exponentially distributed latent and infectious periods the early growth rate
     r solves R0 = (1 + r / sigma)(1 + r / gamma) (Wallinga & Lipsitch 2007, Proc. R. Soc.
-    B 274:599-604, eq. 3.3).  In a population of 1e12 depletion is negligible over 40
+    B 274:599-604).  In a population of 1e12 depletion is negligible over 40
     days and the second mode has died out by day 25, so ln I grows at r."""
     case = load_case(tmp_path, SEIR_GROWTH)
     r0 = np.array([1.4, 2.0, 3.5])
@@ -181,7 +182,7 @@ report_every = 10
 
 @pytest.mark.parametrize("method", ALL_METHODS)
 def test_sis_endemic_equilibrium(tmp_path, method):
-    """SIS: I* = N (1 - 1 / R0), R0 = beta / gamma (Hethcote 2000, sec. 2.2).  The
+    """SIS: I* = N (1 - 1 / R0), R0 = beta / gamma (Hethcote 2000, the SIS model).  The
     equilibrium is a fixed point of every Runge-Kutta and theta step, so all five methods
     reach it to round-off once the transient (rate gamma (R0 - 1)) has died out."""
     case = load_case(tmp_path, SIS).with_parameter("beta", [0.4, 0.8])
@@ -243,7 +244,7 @@ report_every = 10
 @pytest.mark.parametrize("method", ALL_METHODS)
 def test_sir_with_births_and_deaths_endemic_equilibrium(tmp_path, method):
     """SIR with births and deaths at rate mu: R0 = beta / (gamma + mu), S* = N / R0,
-    I* = mu N (R0 - 1) / beta (Hethcote 2000, sec. 2.3 and Theorem 2.2); reached through
+    I* = mu N (R0 - 1) / beta (Hethcote 2000, the classic endemic model); reached through
     damped oscillations (illustrative rates, damping ~ mu R0 / 2 per day)."""
     case = load_case(tmp_path, SIR_VITAL)
     trajectory = case.run(method)
@@ -339,9 +340,9 @@ and in its asymptotic regime (common practice, no source)."""
 @pytest.mark.parametrize("method", ALL_METHODS)
 def test_step_check_tracks_the_true_error(tmp_path, method):
     """On a smooth problem the Richardson estimate behind step_error (Richardson 1911;
-    HNW I sec. II.4) is within a factor 3 of the true scaled error measured against
-    solve_ivp, and observed_order is within 0.3 of the method's order (HNW I,
-    Theorem II.3.6)."""
+    Hairer, Norsett & Wanner 1993, sec. II.4) is within a factor 3 of the true scaled
+    error measured against solve_ivp, and observed_order is within 0.3 of the method's
+    order (Hairer, Norsett & Wanner 1993, sec. II.3)."""
     case = load_case(tmp_path, AGE_SEIR.replace("step = 0.125", f"step = {STEPS[method]}"))
     result = case.chunk(method)
     check = case.scenario.solver.check

@@ -4,8 +4,8 @@ Explicit methods are Butcher tableaux (A, b, c): for a step of size h from (t, y
 stage i evaluates the flow rates ``r_i = R(t + c_i h, Y_i)`` with
 ``Y_i = y + h S sum_{j<i} A_ij r_j`` and the step moves ``h sum_i b_i r_i`` persons along
 the flows (Butcher 2008, *Numerical Methods for Ordinary Differential Equations*, 2nd ed.,
-sec. 23; Hairer, Norsett & Wanner 1993, *Solving Ordinary Differential Equations I*,
-sec. II.1).
+ch. 2-3; Hairer, Norsett & Wanner 1993, *Solving Ordinary Differential Equations I*,
+sec. II.1).  Section numbers here are cited from memory.
 
 The implicit methods are members of the theta-method family
 ``y1 = y0 + h S [(1 - theta) R(t, y0) + theta R(t + h, y1)]`` (Hairer & Wanner 1996,
@@ -65,9 +65,9 @@ def _tableau(name: str, order: int, a: list[list[float]], b: list[float]) -> Met
 METHODS: dict[str, Method] = {
     # Euler 1768; the theta = 0 member of the theta family, run as a one-stage tableau.
     "forward-euler": _tableau("forward-euler", 1, [[0.0]], [1.0]),
-    # Heun 1900: the explicit trapezoidal rule (Butcher 2008, sec. 232).
+    # Heun 1900: the explicit trapezoidal rule (Butcher 2008, ch. 2).
     "heun": _tableau("heun", 2, [[0.0, 0.0], [1.0, 0.0]], [0.5, 0.5]),
-    # Kutta 1901, the classical fourth-order method (Hairer, Norsett & Wanner 1993, Table II.1.2).
+    # Kutta 1901, the classical fourth-order method (Hairer, Norsett & Wanner 1993, sec. II.1).
     "rk4": _tableau("rk4", 4,
                     [[0.0, 0.0, 0.0, 0.0],
                      [0.5, 0.0, 0.0, 0.0],
