@@ -10,7 +10,8 @@ from pathlib import Path
 
 from hypothesis import given, strategies as st
 
-from ensemble.run.plan import default_chunk, fingerprint, plan_chunks, shard_range
+from ensemble.run.plan import (MAX_CHUNK_BYTES, default_chunk, fingerprint, plan_chunks,
+                               shard_range)
 from ensemble.scenario.load import load_scenario
 from ensemble.scenario.schema import Compute
 from run_support import write_scenario
@@ -65,6 +66,18 @@ def test_default_chunk_gives_several_tasks_per_worker(tmp_path: Path) -> None:
     chunk = default_chunk(scenario, n_states=4, n_flow_elements=3, workers=8)
     assert 1 <= chunk <= 10_000 // (4 * 8) + 1
     assert default_chunk(dataclasses.replace(scenario, members=1), 4, 3, workers=8) == 1
+
+
+def test_default_chunk_bounds_the_memory_of_a_task(tmp_path: Path) -> None:
+    """A chunk's trajectories (states and flow counts, float64, every reported time) stay
+    within MAX_CHUNK_BYTES, whatever the backend's speed."""
+    scenario = dataclasses.replace(_scenario(tmp_path), members=10**6)
+    rows = 80 + 64                                   # e.g. 16 age groups, 5 compartments
+    for backend in ("numpy", "compiled"):
+        chunk = default_chunk(scenario, 80, 64, workers=1, backend=backend)
+        assert chunk * rows * scenario.n_reports * 8 <= MAX_CHUNK_BYTES
+    assert (default_chunk(scenario, 4, 3, backend="compiled")
+            > default_chunk(scenario, 4, 3, backend="numpy"))
 
 
 def test_fingerprint_follows_what_changes_numbers(tmp_path: Path) -> None:

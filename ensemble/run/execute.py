@@ -329,7 +329,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     if chunk is None:
         chunk = scenario.compute.chunk or default_chunk(
             scenario, models[0].n_states, models[0].n_flow_elements,
-            cluster.max_workers if cluster else workers or available_cores())
+            cluster.max_workers if cluster else workers or available_cores(), backend)
     keys = store.pending(plan_chunks(scenario, chunk, members=members))
     progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
     try:

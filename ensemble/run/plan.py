@@ -22,11 +22,12 @@ from ensemble.output.store import ChunkKey
 from ensemble.scenario.schema import Compute, Scenario, Source
 
 
-TARGET_WORK_PER_CHUNK = 4e7
-"""Aimed-for work of one task, in state-element steps (member x step x (states + flows) x
-runs of the step check): a second or two of the numpy backend on one core.  Common
-practice, no source: tasks of 0.1-10 s amortise the scheduler's per-task overhead of about a
-millisecond while keeping the load balanced."""
+TARGET_WORK_PER_CHUNK = {"numpy": 4e7, "compiled": 5e8}
+"""Aimed-for work of one task per backend, in state-element steps (member x step x
+(states + flows) x runs of the step check): about a second on one core (measured here on
+an SEIR: the numpy backend does some 3e7 a second, the compiled kernels about ten times
+more).  Common practice, no source: tasks of 0.1-10 s amortise the scheduler's overhead of
+about a millisecond a task while keeping the load balanced."""
 
 MAX_CHUNK_BYTES = 64 * 2**20
 """Largest trajectory block (states and flow counts of every member of a chunk) that one
@@ -98,7 +99,7 @@ def fingerprint(scenario: Scenario, backend: str = "numpy") -> str:
 
 
 def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
-                  workers: int = 1) -> int:
+                  workers: int = 1, backend: str = "numpy") -> int:
     """A chunk size for ``scenario`` when neither the command line nor the file sets one.
 
     Aims at :data:`TARGET_WORK_PER_CHUNK` per task, at most :data:`MAX_CHUNK_BYTES` of
@@ -110,6 +111,7 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
     n_states, n_flow_elements : rows of the state and of the flow counts (compartments and
         flows times groups).
     workers : number of worker processes the run uses.
+    backend : the integration backend (``"numpy"`` or ``"compiled"``).
     """
     check = scenario.solver.check
     runs = 1
@@ -118,7 +120,8 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
     steps = int(scenario.days / scenario.solver.step)
     work_per_member = steps * (n_states + n_flow_elements) * runs
     bytes_per_member = (n_states + n_flow_elements) * scenario.n_reports * 8
-    chunk = min(TARGET_WORK_PER_CHUNK / work_per_member, MAX_CHUNK_BYTES / bytes_per_member)
+    chunk = min(TARGET_WORK_PER_CHUNK[backend] / work_per_member,
+                MAX_CHUNK_BYTES / bytes_per_member)
     chunk = min(chunk, math.ceil(scenario.members / (TASKS_PER_WORKER * max(workers, 1))))
     return max(1, int(chunk))
 
