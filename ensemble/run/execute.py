@@ -25,7 +25,7 @@ import numpy as np
 from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.model.compile import CompiledModel, compile_model
 from ensemble.output.store import ChunkKey, ResultLayout, WorkStore
-from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
+from ensemble.run.clusters import THREAD_LIMITS, ClusterProfile, jobqueue_cluster
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
 from ensemble.scenario.schema import Scenario
@@ -37,14 +37,10 @@ IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
 driver saves a finished chunk, few enough that unsaved results stay bounded."""
 
-SINGLE_THREAD_ENV = {
-    "OMP_NUM_THREADS": "1",
-    "OPENBLAS_NUM_THREADS": "1",
-    "MKL_NUM_THREADS": "1",
-    "NUMBA_NUM_THREADS": "1",
-}
+SINGLE_THREAD_ENV = {name: "1" for name in THREAD_LIMITS}
 """Environment of local worker processes: one worker process per core, so BLAS and numba
-inside a worker use one thread each and the cores are not oversubscribed."""
+inside a worker use one thread each and the cores are not oversubscribed (batch worker
+jobs export the same, :func:`ensemble.run.clusters.environment_lines`)."""
 
 
 def read_only(items: dict) -> types.MappingProxyType:
