@@ -5,7 +5,8 @@
 #   sudo bash scripts/slurm_testbed.sh        # about 30-60 s the first time, a few seconds after
 #
 # Safe to run again: it installs only what is missing, rewrites the configuration only when it
-# changed, starts only the daemons that are not running, and resumes a node left down or drained.
+# changed (and then restarts the two SLURM daemons, by the pids in their pid files), starts only
+# the daemons that are not running, and resumes a node left down or drained.
 # The configuration follows the slurm.conf(5) manual: process tracking through /proc
 # (proctrack/linuxproc) and no task plugin, so no cgroup.conf is needed (none is written, and a
 # stale one is removed). One node named after `hostname` with CPUs = `nproc`, in one default
@@ -85,7 +86,7 @@ write_config() {
     new=$(cat <<EOF
 # Single-node test bed written by scripts/slurm_testbed.sh (ensemble). Do not use in production.
 ClusterName=testbed
-SlurmctldHost=$host
+SlurmctldHost=$host(127.0.0.1)
 SlurmUser=slurm
 AuthType=auth/munge
 CryptoType=crypto/munge
@@ -107,7 +108,7 @@ SlurmctldPidFile=/run/slurmctld.pid
 SlurmdPidFile=/run/slurmd.pid
 SlurmctldLogFile=$LOG_DIR/slurmctld.log
 SlurmdLogFile=$LOG_DIR/slurmd.log
-SlurmctldTimeout=60
+SlurmctldTimeout=30
 SlurmdTimeout=60
 NodeName=$host NodeAddr=127.0.0.1 CPUs=$cpus RealMemory=$memory_mb State=UNKNOWN
 PartitionName=debug Nodes=$host Default=YES MaxTime=INFINITE State=UP
@@ -127,24 +128,32 @@ EOF
     fi
 }
 
+# Stop the daemon whose pid is in the file (only that process), waiting for it to exit.
+stop_daemon() {
+    local pidfile=$1 program=$2 pid tries=0
+    pidfile_alive "$pidfile" "$program" || return 0
+    pid=$(<"$pidfile")
+    say "configuration changed: stopping $program (pid $pid) to restart it"
+    kill "$pid"
+    while [[ -e /proc/$pid ]]; do
+        ((++tries > 30)) && fail "$program (pid $pid) did not stop"
+        sleep 0.5
+    done
+}
+
 start_slurm() {
-    if pidfile_alive /run/slurmctld.pid slurmctld; then
+    local daemon
+    for daemon in slurmctld slurmd; do
         if ((CONFIG_CHANGED)); then
-            say "configuration changed: slurmctld reconfigures"
-            scontrol reconfigure
-        else
-            say "slurmctld already running"
+            stop_daemon "/run/$daemon.pid" "$daemon"
         fi
-    else
-        say "starting slurmctld"
-        slurmctld
-    fi
-    if pidfile_alive /run/slurmd.pid slurmd; then
-        say "slurmd already running"
-    else
-        say "starting slurmd"
-        slurmd
-    fi
+        if pidfile_alive "/run/$daemon.pid" "$daemon"; then
+            say "$daemon already running"
+        else
+            say "starting $daemon"
+            "$daemon"
+        fi
+    done
 }
 
 # Wait until the node is idle (or busy with earlier jobs), resuming it if it came up down/drained.
