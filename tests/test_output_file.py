@@ -265,8 +265,9 @@ def test_summary_refuses_what_is_not_a_complete_result(tmp_path, dated):
     not_netcdf = tmp_path / "notes.nc"
     not_netcdf.write_text("not a result")
     part = tmp_path / "part.nc"
-    with netCDF4.Dataset(part, "w") as nc:
+    with netCDF4.Dataset(part, "w") as nc:      # shaped like a shard's part file
         nc.fingerprint = "f" * 64
+        nc.ensemble_part = "1"
         nc.createDimension("member", 2)
         nc.createVariable("status", np.uint8, ("member",))
     work = tmp_path / "r.nc.partial"
@@ -278,3 +279,4 @@ def test_summary_refuses_what_is_not_a_complete_result(tmp_path, dated):
         assert done.stderr.startswith("error: ") and str(target) in done.stderr
         with pytest.raises(NotAResult):
             api.open_result(target)
+    assert "ensemble merge" in runner.invoke(app, ["summary", str(part)]).stderr

@@ -480,7 +480,8 @@ def result_fingerprint(path: str | os.PathLike[str]) -> str:
     """The fingerprint of the complete result file at ``path``.
 
     A complete result is a netCDF file with the global attribute ``fingerprint`` and the
-    variable ``members_in_summary`` (which only :meth:`WorkStore.finish` writes).
+    variable ``members_in_summary`` (which only :meth:`WorkStore.finish` writes), and
+    without the ``ensemble_part`` attribute of a shard's part file.
 
     Raises
     ------
@@ -496,8 +497,12 @@ def result_fingerprint(path: str | os.PathLike[str]) -> str:
         with netCDF4.Dataset(path) as nc:
             fingerprint = getattr(nc, "fingerprint", None)
             complete = "members_in_summary" in nc.variables
+            part = "ensemble_part" in nc.ncattrs()
     except OSError as error:
         raise NotAResult(f"{path} is not a netCDF file ({error})") from error
+    if part:
+        raise NotAResult(f"{path} is a part file (one shard of a run), not a result; "
+                         "join the parts with ensemble merge")
     if fingerprint is None or not complete:
         raise NotAResult(f"{path} is not a complete ensemble result (a part file, or "
                          "another netCDF file)")
