@@ -124,13 +124,14 @@ def test_cancelled_worker_job_loses_nothing(tmp_path: Path) -> None:
     try:
         work = tmp_path / "killed.nc.partial"
         deadline = time.monotonic() + WAIT_SECONDS
-        while len(list(work.glob("chunk-*"))) < 3 or len(squeue("--name", JOB_NAME,
-                                                                "--states", "RUNNING")) < 2:
+        while len(list(work.glob("chunk-*"))) < 3 or not squeue("--name", JOB_NAME,
+                                                                "--states", "RUNNING"):
             assert run.poll() is None, run.communicate()
             assert time.monotonic() < deadline, "the run never got going"
             time.sleep(0.5)
         before = squeue("--name", JOB_NAME)
-        subprocess.run(["scancel", before[0]], check=True, timeout=20)
+        victim = squeue("--name", JOB_NAME, "--states", "RUNNING")[0]
+        subprocess.run(["scancel", victim], check=True, timeout=20)
         replaced = False
         while run.poll() is None:
             replaced = replaced or bool(set(squeue("--name", JOB_NAME)) - set(before))
@@ -141,7 +142,7 @@ def test_cancelled_worker_job_loses_nothing(tmp_path: Path) -> None:
         if run.poll() is None:
             run.kill()
     assert run.returncode == 0, err
-    assert job_state(before[0]) == "CANCELLED"
+    assert job_state(victim) == "CANCELLED"
     print(f"a replacement worker job was {'seen' if replaced else 'not needed before the end'}")
     api.run(scenario, output=tmp_path / "local.nc", workers=2, progress=False)
     assert_identical_numbers(tmp_path / "local.nc", tmp_path / "killed.nc")
