@@ -316,8 +316,8 @@ def environment_lines(profile: ClusterProfile) -> list[str]:
 def worker_lifetime(profile: ClusterProfile) -> tuple[int, int]:
     """A worker's ``--lifetime`` and ``--lifetime-stagger``, in seconds.
 
-    The worker retires a margin before the walltime (a tenth of it, at most five minutes,
-    at least one) so it can hand its results back before the batch system kills the job;
+    The worker retires a margin before the walltime (a tenth of it, at least one minute
+    and at most five) so it can hand its results back before the batch system kills the job;
     the stagger (a fortieth, at most two minutes) keeps all workers from leaving at once.
     The margins are common practice (dask-jobqueue documentation), no source for the values.
     """
