@@ -72,6 +72,10 @@ def test_save_checks_keys_members_and_shapes(tmp_path, layout):
     del reported["infectious_days"]
     with pytest.raises(ValueError, match="infectious_days"):
         store.save((1, 0, 3), result, reported)
+    result, reported = made_up_members(layout, 1, 0, 3)
+    reported["susceptibility"] = reported["susceptibility"][0]     # one group missing
+    with pytest.raises(ValueError, match="susceptibility.*expected"):
+        store.save((1, 0, 3), result, reported)
 
 
 def test_load_returns_what_was_saved(tmp_path, layout):

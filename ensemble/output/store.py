@@ -283,6 +283,11 @@ class WorkStore:
             if name not in reported:
                 raise ValueError(f"chunk {key}: parameter {name!r} is not reported")
             values = np.asarray(reported[name], dtype=np.float64)
+            shape = ((layout.n_groups, count) if layout.parameters[name].shape == "vector"
+                     and layout.groups else (count,))
+            if values.shape != shape:
+                raise ValueError(f"chunk {key}: parameter {name!r} has shape "
+                                 f"{values.shape}, expected {shape}")
             per_member[f"param_{name}"] = values.T if values.ndim == 2 else values
         per_member.update(member_metrics(result.state, result.flow_count, layout.times))
         final = self._chunk_directory(key)
