@@ -29,7 +29,7 @@ an SEIR: the numpy backend does some 3e7 a second, the compiled kernels about te
 more).  Common practice, no source: tasks of 0.1-10 s amortise the scheduler's overhead of
 about a millisecond a task while keeping the load balanced."""
 
-MAX_CHUNK_BYTES = 64 * 2**20
+MAX_CHUNK_BYTES = 32 * 2**20
 """Largest trajectory block (states and flow counts of every member of a chunk) that one
 task hands back, so that a few chunks in flight per worker stay well inside memory."""
 
