@@ -46,8 +46,9 @@ STREAMED = ("state", "flow_count")
 LABELLED_DIMS = ("variant", "compartment", "flow", "group")
 """Dimensions that carry a string label variable ``<dim>_name``."""
 
-MEMBER_CHUNK = 65536
-"""Members per netCDF chunk of the per-member variables without a time axis."""
+CHUNK_BYTES = 2**20
+"""Target size of a netCDF chunk of the per-member variables without a time axis (the
+size of HDF5's default chunk cache)."""
 
 _COUNT = "number of persons"
 _BASE_NAMES = {
@@ -302,13 +303,16 @@ def dataset_from_results(layout: ResultLayout,
 def _chunking(dims: tuple[str, ...], shape: tuple[int, ...]) -> tuple[int, ...]:
     """netCDF chunk shape: one variant and one member (or every quantile) with all of
     the remaining dimensions, so one member's time series or a variant's quantiles are
-    one read; per-member values without time in blocks of :data:`MEMBER_CHUNK`."""
+    one read; per-member values without time in blocks of members of about
+    :data:`CHUNK_BYTES`."""
+    per_member = 8 * int(np.prod([size for dim, size in zip(dims, shape)
+                                  if dim not in ("variant", "member")]))
     chunks = []
     for dim, size in zip(dims, shape):
         if dim == "variant":
             chunks.append(1)
         elif dim == "member":
-            chunks.append(1 if "time" in dims else min(size, MEMBER_CHUNK))
+            chunks.append(1 if "time" in dims else min(size, CHUNK_BYTES // per_member))
         else:
             chunks.append(size)
     return tuple(max(c, 1) for c in chunks)
