@@ -91,7 +91,8 @@ def test_load_returns_what_was_saved(tmp_path, layout):
 
 def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
     """A run killed after one chunk, mid-way through writing another (a stray temporary
-    left behind), resumed with another chunk size, gives the uninterrupted run's file."""
+    left behind; and a half-written result file from an earlier kill during finish),
+    resumed with another chunk size, gives the uninterrupted run's file."""
     reference = _open(tmp_path / "reference.nc", layout)
     fill(reference, layout, chunk=10)
     reference.finish()
@@ -102,10 +103,12 @@ def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
     stray = partial_path(path) / ".tmp-chunk-v0-0000000003-0000000006-99999"
     stray.mkdir()
     (stray / "state.npy").write_bytes(b"half a chunk")
+    half_written_result = tmp_path / ".tmp-r.nc-99999"
+    half_written_result.write_bytes(b"killed while finishing")
     del killed
 
     resumed = _open(path, layout, resume=True)
-    assert not stray.exists()
+    assert not stray.exists() and not half_written_result.exists()
     missing = resumed.pending([(v, first, min(first + 4, 10)) for v in range(2)
                                for first in range(0, 10, 4)])
     assert missing[0] == (0, 3, 4)

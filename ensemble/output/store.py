@@ -153,6 +153,14 @@ class WorkStore:
         """Adopt or create the work directory (see :meth:`open`)."""
         if self.work.exists() and not self.work.is_dir():
             raise StoreWriteError(f"{self.work} exists and is not a work directory")
+        strays = [*self.path.parent.glob(f"{TEMP_PREFIX}{self.path.name}-*"),
+                  *self.path.parent.glob(f"{TEMP_PREFIX}{self.work.name}-*")]
+        for stray in strays:
+            # a result file or work directory of a killed run, never renamed into place
+            if stray.is_dir():
+                shutil.rmtree(stray, ignore_errors=True)
+            else:
+                stray.unlink(missing_ok=True)
         manifest = self._read_manifest()
         if resume and manifest is not None:
             if manifest.get("fingerprint") != self.layout.fingerprint:
