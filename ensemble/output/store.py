@@ -5,7 +5,8 @@ Work in progress lives in the directory ``<path>.partial``::
 
     <path>.partial/
         manifest.json              fingerprint and shape of the run (written first)
-        chunk-v0-0000000-0000500/  one directory per saved chunk of members
+        chunk-v0-0000000000-0000000500/
+                                   one directory per saved chunk of members
             state.npy              (n_reports, n_states, M) float64, time-major
             flow_count.npy         (n_reports, n_flow_elements, M) float64
             members.npz            step_error, observed_order, status, param_<name>,
@@ -13,7 +14,8 @@ Work in progress lives in the directory ``<path>.partial``::
 
 A chunk is written under a temporary name, every file fsynced, then renamed into place,
 so a process killed at any instant leaves either the whole chunk or none of it (a stray
-temporary is removed on resume).  Trajectories are stored time-major so that the
+temporary is removed on resume).  The result file is written the same way, under a
+temporary name in its destination directory, renamed into place when complete.  Trajectories are stored time-major so that the
 quantiles over members are computed block of times by block of times, reading every
 chunk file once, whatever the number of members.
 """
