@@ -2,9 +2,10 @@
 units, attributes, chunking and compression.
 
 Every variable of the result file is described here once (:func:`variable_spec`), and
-both ways of making a file use it: :func:`build_dataset` for the variables that fit in
-memory (written by xarray) and :func:`create_streamed_variable` for the trajectories of
-every member (written chunk by chunk with netCDF4).  Arrays arrive with the model's flat
+every way of making a result uses it: :func:`build_dataset` for the variables that fit
+in memory (written by xarray), :func:`create_streamed_variable` for the trajectories of
+every member (written chunk by chunk with netCDF4), and :func:`dataset_from_results` for
+a whole ensemble held in memory (:func:`ensemble.api.simulate`).  Arrays arrive with the model's flat
 rows (``c * n_groups + g`` for states, ``f * n_groups + g`` for flows) and leave with
 separate compartment/flow and group dimensions, ``group`` just before ``time`` and
 ``time`` last (CF-1.10 section 2.4, "Dimensions": T last is recommended).
@@ -27,9 +28,8 @@ import numpy as np
 import xarray as xr
 
 import ensemble
-from ensemble.integrate.check import STATUS_FLAGS
+from ensemble.integrate.check import STATUS_FLAGS, ChunkResult
 from ensemble.output.layout import ResultLayout
-from ensemble.integrate.check import ChunkResult
 from ensemble.output.summary import (
     FLOW_METRICS,
     METRICS,
