@@ -188,6 +188,20 @@ def test_simulate_returns_what_the_streamed_file_holds(tmp_path):
     assert (infections.sel(variant="fewer-contacts") < infections.sel(variant="usual")).all()
 
 
+def test_simulate_a_chosen_variant(tmp_path):
+    """Member i draws the same numbers in every variant, so one variant alone gives the
+    same trajectories; without its compare_to variant there are no differences."""
+    scenario = grouped_scenario(tmp_path, members=4)
+    both = api.simulate(scenario)
+    alone = api.simulate(scenario, variants=["fewer-contacts"])
+    assert list(alone.variant.values) == ["fewer-contacts"]
+    assert not [name for name in alone.data_vars if name.startswith("difference_")]
+    np.testing.assert_array_equal(alone.state.values[0],
+                                  both.state.sel(variant="fewer-contacts").values)
+    with pytest.raises(ValueError, match="fewer-contact"):
+        api.simulate(scenario, variants=["fewer-contact"])
+
+
 SIR_TOML = """\
 # Illustrative only: a closed SIR population with invented numbers.
 [scenario]
