@@ -13,14 +13,17 @@ from __future__ import annotations
 import copyreg
 import logging
 import os
+import signal
 import sys
+import threading
 import types
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
-from contextlib import contextmanager
+from collections.abc import Callable, Generator, Iterator, Mapping, Sequence
+from contextlib import closing, contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from distributed.diagnostics.plugin import WorkerPlugin
 
 from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.model.compile import CompiledModel, compile_model
@@ -139,9 +142,25 @@ def open_client(workers: int | None = None, address: str | None = None,
     )
     try:
         with Client(cluster) as client:
+            client.register_plugin(LeaveInterruptsToDriver())
             yield client
     finally:
         cluster.close()
+
+
+class LeaveInterruptsToDriver(WorkerPlugin):
+    """Makes a local worker process ignore SIGINT.
+
+    Ctrl-C on a terminal reaches every process of the foreground group; the driver
+    answers it by closing the cluster, so the workers need not (and would only print
+    tracebacks).
+    """
+
+    name = "ensemble-leave-interrupts-to-driver"
+
+    def setup(self, worker) -> None:
+        if threading.current_thread() is threading.main_thread():
+            signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> RunFailed:
@@ -153,7 +172,7 @@ def _chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> Ru
 
 
 def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
-                keys: Sequence[ChunkKey], backend: str) -> Iterator[ChunkOutput]:
+                keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
     """Compute the chunks one after another in this process, without dask.distributed."""
     for key in keys:
         try:
@@ -164,7 +183,7 @@ def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
 
 
 def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
-                keys: Sequence[ChunkKey], backend: str) -> Iterator[ChunkOutput]:
+                keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
     At most :data:`IN_FLIGHT_PER_THREAD` tasks per worker thread are submitted at a time
@@ -344,8 +363,12 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     return finish(store) if finish is not None else store.finish()
 
 
-def _save_all(store: WorkStore, outputs: Iterable[ChunkOutput], progress: Progress) -> None:
-    """Save each finished chunk as it arrives."""
-    for output in outputs:
-        store.save(output.key, output.result, output.reported)
-        progress.advance(output.key[2] - output.key[1])
+def _save_all(store: WorkStore, outputs: Generator[ChunkOutput, None, None],
+              progress: Progress) -> None:
+    """Save each finished chunk as it arrives; on any exit (an interrupt, a failed save)
+    close ``outputs`` at once, so that tasks still queued are cancelled while the client
+    is open."""
+    with closing(outputs):
+        for output in outputs:
+            store.save(output.key, output.result, output.reported)
+            progress.advance(output.key[2] - output.key[1])
