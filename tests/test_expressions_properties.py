@@ -103,7 +103,9 @@ def _only_language_nodes(node) -> bool:
 
 def _parse_within_bounds(text: str):
     """Parse ``text``; the only outcomes are a tree of language nodes or ExpressionError,
-    well within a second (common practice, no source: a generous wall-clock bound)."""
+    without hanging.  The 10-second bound only catches a hang (parsing takes
+    milliseconds); it is kept generous so that a loaded machine cannot fail it (common
+    practice, no source)."""
     began = time.perf_counter()
     with _no_code_runs() as attempts:
         try:
@@ -111,7 +113,7 @@ def _parse_within_bounds(text: str):
         except ExpressionError:
             tree = None
     assert attempts == []
-    assert time.perf_counter() - began < 1.0
+    assert time.perf_counter() - began < 10.0
     if tree is not None:
         assert _only_language_nodes(tree)
     return tree
