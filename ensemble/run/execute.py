@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from distributed import Client, Future, LocalCluster, as_completed
 from distributed.diagnostics.plugin import WorkerPlugin
 
 from ensemble.integrate.check import ChunkResult, integrate_chunk
@@ -111,7 +112,7 @@ def available_cores() -> int:
 
 @contextmanager
 def open_client(workers: int | None = None, address: str | None = None,
-                cluster: ClusterProfile | None = None) -> Iterator:
+                cluster: ClusterProfile | None = None) -> Iterator[Client]:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
@@ -123,8 +124,6 @@ def open_client(workers: int | None = None, address: str | None = None,
     cluster : a batch-system profile: worker jobs started by dask-jobqueue, kept at the
         profile's size and cancelled on leaving (:mod:`ensemble.run.clusters`).
     """
-    from distributed import Client, LocalCluster
-
     if cluster is not None:
         with jobqueue_cluster(cluster) as batch, Client(batch) as client:
             yield client
@@ -136,16 +135,16 @@ def open_client(workers: int | None = None, address: str | None = None,
         finally:
             client.close()
         return
-    cluster = LocalCluster(
+    local = LocalCluster(
         n_workers=workers or available_cores(), threads_per_worker=1, processes=True,
         dashboard_address=":0", silence_logs=logging.ERROR, env=dict(SINGLE_THREAD_ENV),
     )
     try:
-        with Client(cluster) as client:
+        with Client(local) as client:
             client.register_plugin(LeaveInterruptsToDriver())
             yield client
     finally:
-        cluster.close()
+        local.close()
 
 
 class LeaveInterruptsToDriver(WorkerPlugin):
@@ -182,7 +181,7 @@ def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
         yield output
 
 
-def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
+def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledModel],
                 keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
@@ -191,11 +190,9 @@ def _on_cluster(client, scenario: Scenario, models: Sequence[CompiledModel],
     the scheduler; a task that raises, or that keeps killing its workers, stops the run
     with :class:`RunFailed`.
     """
-    from distributed import as_completed
-
     queue = iter(keys)
     running = as_completed()
-    submitted: dict = {}
+    submitted: dict[Future, ChunkKey] = {}
 
     def top_up() -> None:
         threads = sum(client.nthreads().values())
