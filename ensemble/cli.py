@@ -50,7 +50,8 @@ def run(
         None, "--output", "-o", help="Result file (default: the file's output.path)."),
     members: Optional[int] = typer.Option(
         None, "--members", min=1, help="Members per variant, instead of the file's."),
-    seed: Optional[int] = typer.Option(None, "--seed", min=0, help="Seed, instead of the file's."),
+    seed: Optional[int] = typer.Option(
+        None, "--seed", min=0, help="Seed, instead of the file's."),
     chunk: Optional[int] = typer.Option(
         None, "--chunk", min=1, help="Members per task (changes no number of the result)."),
     workers: Optional[int] = typer.Option(
@@ -206,7 +207,8 @@ def array_script(
         None, "--output", "-o", help="Result file (default: the file's output.path)."),
     members: Optional[int] = typer.Option(
         None, "--members", min=1, help="Members per variant, instead of the file's."),
-    seed: Optional[int] = typer.Option(None, "--seed", min=0, help="Seed, instead of the file's."),
+    seed: Optional[int] = typer.Option(
+        None, "--seed", min=0, help="Seed, instead of the file's."),
     chunk: Optional[int] = typer.Option(
         None, "--chunk", min=1, help="Members per task inside each shard."),
     backend: Optional[Backend] = typer.Option(None, "--backend", help="Integration backend."),
