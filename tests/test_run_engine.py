@@ -17,6 +17,9 @@ from run_support import assert_same_numbers, write_scenario
 
 def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
                                                               monkeypatch) -> None:
+    """A chunk fails in the middle of the first variant: the run stops naming it, the two
+    chunks before it stay saved, and a resume with another chunk size computes every other
+    member exactly once and gives the bits of an uninterrupted run."""
     monkeypatch.chdir(tmp_path)     # the result goes to result.nc, as the file says
     scenario = write_scenario(tmp_path)
     real_make_design = execute.make_design
@@ -36,8 +39,20 @@ def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
     assert len(list(work.glob("chunk-*"))) == 2     # members 0..9 and 10..19
     assert not (tmp_path / "result.nc").exists()
 
+    computed: list[tuple[str, int]] = []
+
+    def counting_make_design(scenario, variant, model, members):
+        computed.extend((variant.name, int(member)) for member in members)
+        return real_make_design(scenario, variant, model, members)
+
+    monkeypatch.setattr(execute, "make_design", counting_make_design)
+    resumed = api.run(scenario, workers=0, chunk=7, resume=True, progress=False)
+    everything = {(name, member) for name in ("no-change", "distancing")
+                  for member in range(40)}
+    kept = {("no-change", member) for member in range(20)}
+    assert sorted(computed) == sorted(everything - kept), "resume redid saved members"
+
     monkeypatch.setattr(execute, "make_design", real_make_design)
-    resumed = api.run(scenario, workers=0, chunk=10, resume=True, progress=False)
     reference = api.run(scenario, output=tmp_path / "reference.nc", workers=0,
                         progress=False)
     assert_same_numbers(resumed, reference)
