@@ -162,6 +162,14 @@ class LeaveInterruptsToDriver(WorkerPlugin):
             signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
+def _dashboard_link(client: Client) -> str | None:
+    """The scheduler's dashboard address, or None when it serves none (bokeh missing)."""
+    try:
+        return client.dashboard_link or None
+    except KeyError:  # a remote scheduler without the dashboard service
+        return None
+
+
 def _chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> RunFailed:
     """The one-line account of a chunk that could not be computed."""
     variant, start, end = key
@@ -350,8 +358,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                 _save_all(store, _in_process(scenario, models, keys, backend), progress)
             else:
                 with open_client(workers, address, cluster) as client:
-                    if client.dashboard_link:
-                        progress.note(f"dask dashboard at {client.dashboard_link}")
+                    dashboard = _dashboard_link(client)
+                    if dashboard:
+                        progress.note(f"dask dashboard at {dashboard}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend),
                               progress)
     finally:
