@@ -139,18 +139,32 @@ def interpolation_segment(days, t):
 # ------------------------------------------------------------------ linear solve
 
 
-def solve_block(matrix, rhs, pivot_row, pivot_size, factor, singular):
+def solve_block(matrix, rhs, pivot_row, pivot_size, factor, trouble, columns):
     """Solve ``matrix[:, :, b] x = rhs[:, b]`` for every member b of a block, in place.
 
     Gaussian elimination with partial pivoting (Golub & Van Loan 2013, Alg. 3.4.1), the
-    members loop innermost so that it vectorises; the solution replaces ``rhs``.
-    ``singular[b]`` is set where a pivot is exactly zero (LAPACK ``gesv``'s test).
-    ``pivot_row``, ``pivot_size`` and ``factor`` are (B,) work arrays.
+    members loop innermost so that it vectorises; the solution replaces ``rhs``.  Updates
+    whose multiplier, or whose pivot-row entry, is zero for every member of the block are
+    skipped: they would leave every finite entry unchanged, and with the unknowns ordered
+    to limit fill-in (:func:`elimination_order`) this skips most of the work for the sparse
+    rows of epidemic models.
+
+    ``trouble[b]`` is 2 where the matrix holds a non-finite entry, 1 where a pivot is
+    exactly zero (singular: LAPACK ``gesv``'s test), else 0.  ``pivot_row``,
+    ``pivot_size`` and ``factor`` are (B,) work arrays, ``columns`` an (n,) int64 one.
     """
     n = matrix.shape[0]
     width = matrix.shape[2]
     for b in range(width):
-        singular[b] = False
+        trouble[b] = 0
+        pivot_size[b] = 0.0
+    for i in range(n):
+        for j in range(n):
+            for b in range(width):
+                pivot_size[b] += matrix[i, j, b] - matrix[i, j, b]
+    for b in range(width):
+        if pivot_size[b] != 0.0:
+            trouble[b] = 2
     for k in range(n):
         for b in range(width):
             pivot_row[b] = k
@@ -161,33 +175,77 @@ def solve_block(matrix, rhs, pivot_row, pivot_size, factor, singular):
                 if size > pivot_size[b]:
                     pivot_size[b] = size
                     pivot_row[b] = i
+        swaps = 0
         for b in range(width):
-            singular[b] = singular[b] or pivot_size[b] == 0.0
-        for j in range(k, n):
+            if pivot_size[b] == 0.0 and trouble[b] == 0:
+                trouble[b] = 1
+            swaps += pivot_row[b] != k
+        if swaps:
+            for j in range(k, n):
+                for b in range(width):
+                    other = pivot_row[b]
+                    held = matrix[k, j, b]
+                    matrix[k, j, b] = matrix[other, j, b]
+                    matrix[other, j, b] = held
             for b in range(width):
                 other = pivot_row[b]
-                held = matrix[k, j, b]
-                matrix[k, j, b] = matrix[other, j, b]
-                matrix[other, j, b] = held
-        for b in range(width):
-            other = pivot_row[b]
-            held = rhs[k, b]
-            rhs[k, b] = rhs[other, b]
-            rhs[other, b] = held
+                held = rhs[k, b]
+                rhs[k, b] = rhs[other, b]
+                rhs[other, b] = held
+        used = 0
+        for j in range(k + 1, n):
+            nonzero = 0
+            for b in range(width):
+                nonzero += matrix[k, j, b] != 0.0
+            if nonzero:
+                columns[used] = j
+                used += 1
         for i in range(k + 1, n):
+            nonzero = 0
             for b in range(width):
                 factor[b] = matrix[i, k, b] / matrix[k, k, b]
-            for j in range(k + 1, n):
+                nonzero += factor[b] != 0.0
+            if nonzero == 0:
+                continue
+            for c in range(used):
+                j = columns[c]
                 for b in range(width):
                     matrix[i, j, b] -= factor[b] * matrix[k, j, b]
             for b in range(width):
                 rhs[i, b] -= factor[b] * rhs[k, b]
     for i in range(n - 1, -1, -1):
         for j in range(i + 1, n):
+            nonzero = 0
             for b in range(width):
-                rhs[i, b] -= matrix[i, j, b] * rhs[j, b]
+                nonzero += matrix[i, j, b] != 0.0
+            if nonzero:
+                for b in range(width):
+                    rhs[i, b] -= matrix[i, j, b] * rhs[j, b]
         for b in range(width):
             rhs[i, b] /= matrix[i, i, b]
+
+
+def elimination_order(pattern: list[set[int]]) -> list[int]:
+    """An order of the unknowns that limits fill-in: greedy minimum Markowitz count
+    ``(r - 1)(c - 1)`` over the remaining diagonal pivots, with the fill each elimination
+    creates (Markowitz 1957, "The elimination form of the inverse and its application to
+    linear programming"; Duff, Erisman & Reid 2017, *Direct Methods for Sparse Matrices*,
+    sec. 7.2).  ``pattern[i]`` holds the columns of row i's structural non-zeros."""
+    rows = [set(row) | {i} for i, row in enumerate(pattern)]
+    remaining = set(range(len(rows)))
+    order = []
+    while remaining:
+        def count(p: int) -> tuple[int, int]:
+            row = len(rows[p] & remaining) - 1
+            column = sum(1 for i in remaining if p in rows[i]) - 1
+            return row * column, p
+        pivot = min(remaining, key=count)
+        remaining.discard(pivot)
+        for i in remaining:
+            if pivot in rows[i]:
+                rows[i] |= rows[pivot] & remaining
+        order.append(pivot)
+    return order
 
 
 # ------------------------------------------------------------------ emitter
@@ -421,7 +479,8 @@ class KernelSource:
             emit("    pivot_row = np.empty(BLOCK, np.int64)")
             emit("    pivot_size = np.empty(BLOCK)")
             emit("    factor = np.empty(BLOCK)")
-            emit("    singular = np.empty(BLOCK, np.bool_)")
+            emit("    trouble = np.empty(BLOCK, np.int8)")
+            emit("    columns = np.empty(N_STATES, np.int64)")
         emit("    for b in range(BLOCK):")
         emit("        for s in range(N_STATES):")
         emit("            y[s, b] = y0[s, m0 + b]")
@@ -645,44 +704,52 @@ class KernelSource:
                          f"{_literal(theta)} * {r1[f]})")
             increments.append(f"g_{f}")
         lines += self._update_lines(deep, state, increments, "target_")
-        for s in range(n):
-            lines.append(f"{deep}upd[{s}, b] = w_{s} - target_{s}")
-        # matrix I - h theta S dR/dy
+        # matrix I - h theta S dR/dy, unknowns in an order that limits fill-in
         derivative = {}
         position = n_flows
         for f, entries in enumerate(model.rate_derivatives):
             for state_index, _ in entries:
                 derivative[(f, state_index)] = values[position]
                 position += 1
-        lines.append(f"{deep}ht = h * {_literal(theta)}")
+        entries = {}
         for s in range(n):
             for col in range(n):
                 terms = [(sign, derivative[(f, col)]) for sign, f in self._into_state[s]
                          if (f, col) in derivative]
-                diagonal = "1.0" if s == col else "0.0"
                 if terms:
-                    lines.append(f"{deep}jac[{s}, {col}, b] = {diagonal} - ht * "
-                                 f"({_signed_sum(terms)})")
+                    entries[(s, col)] = _signed_sum(terms)
+        order = elimination_order([{col for (row, col) in entries if row == s}
+                                   for s in range(n)])
+        place = {state: index for index, state in enumerate(order)}
+        for s in range(n):
+            lines.append(f"{deep}upd[{place[s]}, b] = w_{s} - target_{s}")
+        lines.append(f"{deep}ht = h * {_literal(theta)}")
+        for s in range(n):
+            for col in range(n):
+                at = f"jac[{place[s]}, {place[col]}, b]"
+                diagonal = "1.0" if s == col else "0.0"
+                if (s, col) in entries:
+                    lines.append(f"{deep}{at} = {diagonal} - ht * ({entries[(s, col)]})")
                 elif s == col:
-                    lines.append(f"{deep}jac[{s}, {col}, b] = 1.0")
+                    lines.append(f"{deep}{at} = 1.0")
         lines.append(f"{indent}    solve_block(jac, upd, pivot_row, pivot_size, factor, "
-                     "singular)")
+                     "trouble, columns)")
         # a singular member is not converged; a non-finite one leaves (it will be flagged
         # non-finite); the others move by the update and stop once it is <= tol
         lines.append(f"{indent}    remaining = 0")
         lines.append(f"{indent}    for b in range(BLOCK):")
         lines.append(f"{deep}size = 0.0")
         for s in range(n):
-            lines.append(f"{deep}size = _max(size, abs(upd[{s}, b]))")
+            lines.append(f"{deep}size = _max(size, abs(upd[{place[s]}, b]))")
         lines.append(f"{deep}if active[b]:")
-        lines.append(f"{deep}    if singular[b]:")
+        lines.append(f"{deep}    if trouble[b] == 1:")
         lines.append(f"{deep}        status[m0 + b] |= NEWTON_NOT_CONVERGED")
         lines.append(f"{deep}        active[b] = False")
-        lines.append(f"{deep}    elif size - size != 0.0:")
+        lines.append(f"{deep}    elif trouble[b] == 2 or size - size != 0.0:")
         lines.append(f"{deep}        active[b] = False")
         lines.append(f"{deep}    else:")
         for s in range(n):
-            lines.append(f"{deep}        y1[{s}, b] -= upd[{s}, b]")
+            lines.append(f"{deep}        y1[{s}, b] -= upd[{place[s]}, b]")
         lines.append(f"{deep}        if size <= newton_tol:")
         lines.append(f"{deep}            active[b] = False")
         lines.append(f"{deep}remaining += active[b]")
