@@ -47,6 +47,10 @@ GENERATOR_VERSION = 1
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
 
+MATRIX_PART_ENTRIES = 128
+"""Newton matrix entries computed per generated function: numba and LLVM compile many
+small functions much faster than one long one."""
+
 BLOCK_BYTES = 256 * 1024
 """Target size of a block's Newton matrices (members x n x n float64): well inside L2."""
 
@@ -355,6 +359,8 @@ class KernelSource:
         self._into_state = [
             [(float(stoich[s, f]), f) for f in range(model.n_flow_elements) if stoich[s, f] != 0]
             for s in range(model.n_states)]
+        if method.implicit:
+            self._plan_matrix()
         self.text = self._module()
 
     # -- pieces
@@ -459,8 +465,7 @@ class KernelSource:
 
     def _module(self) -> str:
         model, method = self.model, self.method
-        roots = list(model.rates) + self._derivative_trees()
-        time_only, param_only = self._split(roots)
+        time_only, param_only = self._split(list(model.rates))
         used_params = sorted(self._used_parameters())
         used_schedules = self._used_schedules()
         stages = self._stage_names()
@@ -497,24 +502,9 @@ class KernelSource:
         emit("                fc[f, b] = 0.0")
         emit("        for j in range(steps_per_report):")
         emit("            step = (k - 1) * steps_per_report + j")
-        emit("            t = step * h")
         indent = " " * 12
-        body += self._step_schedule_prelude(indent)
-        for stage, offset in stages:
-            time = "t" if offset == "0" else f"t + {offset} * h"
-            if method.implicit and stage == "1":
-                time = "(step + 1) * h"
-            emit(f"{indent}time{stage} = {time}")
-            body += self._stage_time_prelude(stage, f"time{stage}", indent)
-        # time-only subtrees: per stage, outside the members loop
-        time_names: dict[str, dict[ScalarNode, str]] = {}
-        for stage, _ in stages:
-            names: dict[ScalarNode, str] = {}
-            lines: list[str] = []
-            self._emitter.emit(time_only, names, f"u{stage}_", lines,
-                               lambda node, s=stage: f"time{s}")
-            body += [indent + line for line in lines]
-            time_names[stage] = {n: v for n, v in names.items() if n in set(time_only)}
+        context, time_names = self._context(indent, stages, time_only)
+        body += context
         if method.implicit:
             body += self._implicit_step(indent, used_params, used_schedules, param_only,
                                         time_names)
@@ -548,6 +538,10 @@ class KernelSource:
                           _HELPERS.values() else "@njit(error_model='numpy', boundscheck=False)")
             header.append(inspect.getsource(function).rstrip())
             header.append("")
+        if method.implicit:
+            for number in range(len(self._matrix_parts)):
+                header += self._matrix_part(number)
+            header.append("")
         arguments = ", ".join(["y0", "p", *self._schedule_arguments(), "h", "steps_per_report",
                                "n_reports", "atol", "newton_tol", "newton_max_iter",
                                "state_out", "flow_out", "status"])
@@ -571,6 +565,85 @@ class KernelSource:
         ]
         return "\n".join(header + ["    " + line[4:] for line in body] + driver) + "\n"
 
+    def _plan_matrix(self) -> None:
+        """The structural non-zeros of the Newton matrix, the order of the unknowns in the
+        solve, and the parts the matrix is computed in."""
+        model = self.model
+        n = model.n_states
+        partial = {(f, state): tree for f, entries in enumerate(model.rate_derivatives)
+                   for state, tree in entries}
+        self._partial = partial
+        self._entries: dict[tuple[int, int], list[tuple[float, tuple[int, int]]]] = {}
+        for s in range(n):
+            for col in range(n):
+                terms = [(sign, (f, col)) for sign, f in self._into_state[s]
+                         if (f, col) in partial]
+                if terms:
+                    self._entries[(s, col)] = terms
+        order = elimination_order([{col for (row, col) in self._entries if row == s}
+                                   for s in range(n)])
+        self._place = {state: index for index, state in enumerate(order)}
+        self._matrix_parts: list[list[tuple[int, int]]] = [[]]
+        for key in self._entries:
+            if len(self._matrix_parts[-1]) >= MATRIX_PART_ENTRIES:
+                self._matrix_parts.append([])
+            self._matrix_parts[-1].append(key)
+
+    def _matrix_part(self, number: int) -> list[str]:
+        """A function computing the Newton matrix entries of part ``number`` for a block,
+        at the iterates ``y1`` (its own members loop, so it vectorises)."""
+        keys = self._matrix_parts[number]
+        needed = sorted({pair for key in keys for _, pair in self._entries[key]})
+        roots = [self._partial[pair] for pair in needed]
+        time_only, param_only = self._split(roots)
+        arguments = "".join(a + ", " for a in self._schedule_arguments())
+        lines = ["", "", "@njit(cache=True, error_model='numpy', boundscheck=False)",
+                 f"def newton_matrix_{number}(m0, step, h, p, {arguments}y1, jac):",
+                 '    """Some entries of I - h theta S dR/dy at the iterates y1."""']
+        context, time_names = self._context("    ", [("1", "1.0")], time_only)
+        lines += context
+        lines.append(f"    ht = h * {_literal(float(self.method.theta))}")
+        lines.append("    for b in range(BLOCK):")
+        inner = " " * 8
+        prelude, member_names = self._member_prelude(
+            inner, sorted(self._used_parameters()), param_only, state=False)
+        lines += prelude
+        lines += [f"{inner}w_{s} = y1[{s}, b]" for s in range(self.model.n_states)]
+        body, values = self._rates_at("1", [f"w_{s}" for s in range(self.model.n_states)],
+                                      self._used_schedules(), member_names, time_names,
+                                      inner, roots)
+        lines += body
+        name = dict(zip(needed, values))
+        for s, col in keys:
+            terms = _signed_sum([(sign, name[pair]) for sign, pair in self._entries[(s, col)]])
+            diagonal = "1.0" if s == col else "0.0"
+            lines.append(f"{inner}jac[{self._place[s]}, {self._place[col]}, b] = "
+                         f"{diagonal} - ht * ({terms})")
+        return lines
+
+    def _context(self, indent: str, stages: list[tuple[str, str]],
+                 time_only: list[ScalarNode]) -> tuple[list[str], dict]:
+        """Scalar code of step ``step`` outside the members loop: the step's time ``t``,
+        the knots in force, each stage's time and "linear" segments, and the subtrees of
+        time alone; returns the lines and, per stage, the names of those subtrees."""
+        lines = [f"{indent}t = step * h"]
+        lines += self._step_schedule_prelude(indent)
+        for stage, offset in stages:
+            time = "t" if offset == "0" else f"t + {offset} * h"
+            if self.method.implicit and stage == "1":
+                time = "(step + 1) * h"
+            lines.append(f"{indent}time{stage} = {time}")
+            lines += self._stage_time_prelude(stage, f"time{stage}", indent)
+        time_names: dict[str, dict[ScalarNode, str]] = {}
+        for stage, _ in stages:
+            names: dict[ScalarNode, str] = {}
+            body: list[str] = []
+            self._emitter.emit(time_only, names, f"u{stage}_", body,
+                               lambda node, s=stage: f"time{s}")
+            lines += [indent + line for line in body]
+            time_names[stage] = {n: v for n, v in names.items() if n in set(time_only)}
+        return lines, time_names
+
     def _stage_names(self) -> list[tuple[str, str]]:
         """(stage name, node offset c as text) of every rate evaluation time in a step."""
         if self.method.implicit:
@@ -579,10 +652,13 @@ class KernelSource:
                 for i, c in enumerate(self.method.c)]
 
     def _member_prelude(self, indent: str, used_params: list[int],
-                        param_only: list[ScalarNode]) -> tuple[list[str], dict]:
-        """Load the member's state and parameters; compute its parameter-only subtrees."""
+                        param_only: list[ScalarNode],
+                        state: bool = True) -> tuple[list[str], dict]:
+        """Load the member's state (unless ``state`` is False) and parameters; compute its
+        parameter-only subtrees."""
         lines = [f"{indent}m = m0 + b"]
-        lines += [f"{indent}y_{s} = y[{s}, b]" for s in range(self.model.n_states)]
+        if state:
+            lines += [f"{indent}y_{s} = y[{s}, b]" for s in range(self.model.n_states)]
         lines += [f"{indent}p_{i} = p[{i}, m]" for i in used_params]
         names: dict[ScalarNode, str] = {}
         body: list[str] = []
@@ -687,16 +763,17 @@ class KernelSource:
         # Newton iterations
         lines.append(f"{indent}for iteration in range(newton_max_iter):")
         lines.append(f"{indent}    jac[:, :, :] = 0.0")
+        for s in range(n):
+            lines.append(f"{indent}    for b in range(BLOCK):")
+            lines.append(f"{indent}        jac[{self._place[s]}, {self._place[s]}, b] = 1.0")
         lines.append(f"{indent}    for b in range(BLOCK):")
         deep = indent + "        "
         prelude, member_names = self._member_prelude(deep, used_params, param_only)
         lines += prelude
         lines += [f"{deep}w_{s} = y1[{s}, b]" for s in range(n)]
-        derivative_roots = self._derivative_trees()
-        body, values = self._rates_at("1", iterate, used_schedules, member_names, time_names,
-                                      deep, list(model.rates) + derivative_roots)
+        body, r1 = self._rates_at("1", iterate, used_schedules, member_names, time_names,
+                                  deep, list(model.rates))
         lines += body
-        r1 = values[:n_flows]
         # residual F = w - y0 - h S [(1 - theta) r0 + theta r1]
         increments = []
         for f in range(n_flows):
@@ -704,34 +781,13 @@ class KernelSource:
                          f"{_literal(theta)} * {r1[f]})")
             increments.append(f"g_{f}")
         lines += self._update_lines(deep, state, increments, "target_")
-        # matrix I - h theta S dR/dy, unknowns in an order that limits fill-in
-        derivative = {}
-        position = n_flows
-        for f, entries in enumerate(model.rate_derivatives):
-            for state_index, _ in entries:
-                derivative[(f, state_index)] = values[position]
-                position += 1
-        entries = {}
-        for s in range(n):
-            for col in range(n):
-                terms = [(sign, derivative[(f, col)]) for sign, f in self._into_state[s]
-                         if (f, col) in derivative]
-                if terms:
-                    entries[(s, col)] = _signed_sum(terms)
-        order = elimination_order([{col for (row, col) in entries if row == s}
-                                   for s in range(n)])
-        place = {state: index for index, state in enumerate(order)}
+        place = self._place
         for s in range(n):
             lines.append(f"{deep}upd[{place[s]}, b] = w_{s} - target_{s}")
-        lines.append(f"{deep}ht = h * {_literal(theta)}")
-        for s in range(n):
-            for col in range(n):
-                at = f"jac[{place[s]}, {place[col]}, b]"
-                diagonal = "1.0" if s == col else "0.0"
-                if (s, col) in entries:
-                    lines.append(f"{deep}{at} = {diagonal} - ht * ({entries[(s, col)]})")
-                elif s == col:
-                    lines.append(f"{deep}{at} = 1.0")
+        # matrix I - h theta S dR/dy in parts (small functions compile much faster)
+        for part in range(len(self._matrix_parts)):
+            lines.append(f"{indent}    newton_matrix_{part}(m0, step, h, p, "
+                         f"{''.join(a + ', ' for a in self._schedule_arguments())}y1, jac)")
         lines.append(f"{indent}    solve_block(jac, upd, pivot_row, pivot_size, factor, "
                      "trouble, columns)")
         # a singular member is not converged; a non-finite one leaves (it will be flagged
