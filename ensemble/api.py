@@ -10,8 +10,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Sequence
-from typing import TYPE_CHECKING
-from collections.abc import Sequence
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -19,11 +18,15 @@ from ensemble.scenario.load import load_scenario, scenario_warnings
 from ensemble.scenario.schema import Scenario
 
 if TYPE_CHECKING:
+    import xarray as xr
+
     from ensemble.run.clusters import ClusterProfile
     from ensemble.run.shards import Shard
 
-if TYPE_CHECKING:
-    import xarray as xr
+
+def history_line(command: str) -> str:
+    """A result's ``history`` entry: the UTC time and the command that made it."""
+    return f"{datetime.now(timezone.utc).strftime('%Y-%m-%dT%H:%M:%SZ')} {command}"
 
 
 def run(scenario: Scenario | str | os.PathLike[str], *,
@@ -70,7 +73,6 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         finished chunks are kept for ``resume`` (exit 1).
     """
     import dataclasses
-    from datetime import datetime, timezone
 
     from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
     from ensemble.run.plan import fingerprint
@@ -88,8 +90,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         scenario = dataclasses.replace(
             scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if history is None:
-        now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        history = f"{now} ensemble.api.run({scenario.source.path!r})"
+        history = history_line(f"ensemble.api.run({scenario.source.path!r})")
     if part is not None and resume and not force and part_is_complete(
             output, fingerprint(scenario, backend), part):
         return Path(output)
@@ -106,14 +107,12 @@ def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
     -------
     flag word (as in the file's ``flag_meanings``) -> number of members with that bit.
     """
-    import numpy as np
     import xarray as xr
 
-    from ensemble.integrate.check import STATUS_FLAGS
+    from ensemble.output.summary import status_counts as count_bits
 
     with xr.open_dataset(path, decode_times=False) as dataset:
-        status = dataset["status"].values
-    return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}
+        return count_bits(dataset["status"].values)
 
 
 def open_result(path: str | os.PathLike[str]) -> xr.Dataset:
@@ -252,13 +251,10 @@ def merge(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLike[str
         fingerprints), a shard given twice, or missing shards (named); nothing is written.
     ensemble.output.ResultExists : ``output`` exists and ``force`` is false.
     """
-    from datetime import datetime, timezone
-
     from ensemble.run.shards import merge_parts
 
     if history is None:
-        now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        history = f"{now} ensemble.api.merge({len(parts)} parts, {os.fspath(output)!r})"
+        history = history_line(f"ensemble.api.merge({len(parts)} parts, {os.fspath(output)!r})")
     return merge_parts(parts, output, force=force, history=history)
 
 

@@ -78,7 +78,6 @@ def run(
     import shlex
     import signal
     import time
-    from datetime import datetime, timezone
 
     import ensemble
     from ensemble import api
@@ -89,8 +88,7 @@ def run(
     logging.getLogger("distributed").setLevel(logging.ERROR)
     signal.signal(signal.SIGTERM, _interrupt_on_sigterm)
     began = time.monotonic()
-    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
+    history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
     with _fail_on_invalid():
         loaded = api.load_scenario(scenario, members=members, seed=seed)
         profile = api.cluster_profile(cluster if cluster is not None
@@ -178,14 +176,12 @@ def merge(
 ) -> None:
     """Join the part files of a sharded run (`run --shard I/N`) into the result file."""
     import shlex
-    from datetime import datetime, timezone
 
     from ensemble import api
     from ensemble.output.store import OutputError, ResultExists
     from ensemble.run.shards import PartError
 
-    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    history = f"{now} " + shlex.join(["ensemble", *sys.argv[1:]])
+    history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
     try:
         with _fail_on_invalid():
             path = api.merge(parts, output, force=force, history=history)

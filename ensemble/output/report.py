@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
-from ensemble.integrate.check import STATUS_FLAGS
+from ensemble.output.summary import status_counts
 
 _ROWS = (
     ("peak size", "peak_value_quantile", "compartment"),
@@ -86,9 +86,8 @@ def summary_text(dataset: xr.Dataset) -> str:
                          for v in values[:, index]]
                 rows.append([title, label, *cells])
         lines.extend("  " + line for line in _align(rows, left=2))
-        status = part["status"].values
-        counts = ", ".join(f"{word} {int(np.count_nonzero(status & bit))}"
-                           for bit, word in STATUS_FLAGS)
+        counts = ", ".join(f"{word} {count}"
+                           for word, count in status_counts(part["status"].values).items())
         lines.extend([f"  members by status bit: {counts}", ""])
     lines.append(str(dataset.attrs.get("caution", "")))
     return "\n".join(lines) + "\n"

@@ -13,7 +13,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
-from ensemble.integrate.check import INVALID_START, NON_FINITE
+from ensemble.integrate.check import INVALID_START, NON_FINITE, STATUS_FLAGS
 
 EXCLUDED_FROM_SUMMARY = NON_FINITE | INVALID_START
 """Status bits that keep a member out of the quantiles."""
@@ -25,6 +25,11 @@ FLOW_METRICS = ("flow_peak_value", "flow_peak_time", "total_flow")
 """Metrics with one value per member and flow row."""
 
 METRICS = STATE_METRICS + FLOW_METRICS
+
+
+def status_counts(status: np.ndarray) -> dict[str, int]:
+    """Members behind each status bit: flag word (as in ``flag_meanings``) -> count."""
+    return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}
 
 
 def in_summary(status: np.ndarray) -> np.ndarray:
