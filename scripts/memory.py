@@ -27,59 +27,10 @@ from pathlib import Path
 
 import psutil
 
+from ensemble.examples import seir_text
+
 GOAL_BYTES = 2 * 10**9
 """Issue 4: a 200,000-member SEIR over 365 days must run in under 2 GB resident memory."""
-
-SCENARIO = """\
-[scenario]
-name = "memory-check"
-title = "Illustrative SEIR for the memory measurement (invented numbers)"
-days = {days}
-members = {members}
-seed = 2027
-
-[model]
-compartments = ["S", "E", "I", "R"]
-population = 250000
-initial = {{ S = "rest", E = 20, I = "seed_infectious" }}
-
-[[model.flows]]
-name = "infection"
-from = "S"
-to = "E"
-rate = "beta * S * I / N"
-
-[[model.flows]]
-name = "onset"
-from = "E"
-to = "I"
-rate = "E / latent_days"
-
-[[model.flows]]
-name = "recovery"
-from = "I"
-to = "R"
-rate = "I / infectious_days"
-
-[parameters]
-R0 = {{ dist = "uniform", low = 1.2, high = 2.2 }}
-latent_days = {{ dist = "gamma", mean = 3.0, sd = 0.7 }}
-infectious_days = {{ dist = "lognormal", mean = 5.0, sd = 1.2 }}
-seed_infectious = {{ dist = "uniform", low = 5, high = 40 }}
-beta = "R0 / infectious_days"
-
-[sampling]
-method = "latin-hypercube"
-
-[solver]
-method = "rk4"
-step = 0.25
-check = {{ refine = 2, levels = 2 }}
-
-[output]
-path = "memory-check.nc"
-members = false
-"""
 
 
 def sample(root: psutil.Process) -> tuple[int, int, int]:
@@ -121,7 +72,9 @@ def main() -> int:
         directory = options.keep or Path(temporary)
         directory.mkdir(parents=True, exist_ok=True)
         scenario = directory / "memory-check.toml"
-        scenario.write_text(SCENARIO.format(members=options.members, days=options.days))
+        scenario.write_text(seir_text(members=options.members, days=options.days,
+                                      population=250000, seed=2027, keep_members=False,
+                                      output="memory-check.nc", name="memory-check"))
         command = [sys.executable, "-c", "from ensemble.cli import main; main()", "run",
                    str(scenario), "--force"]
         if options.workers is not None:

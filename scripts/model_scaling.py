@@ -26,56 +26,17 @@ from pathlib import Path
 
 import numpy as np
 
+from ensemble.examples import age_seir_text
 from ensemble.model import RateFunctions, compile_model
 from ensemble.scenario.load import load_scenario
 
-SCENARIO = """
-# Illustrative, invented numbers.
-[scenario]
-name = "model-scaling"
-days = 10
-
-[model]
-compartments = ["S", "E", "I", "R"]
-groups = [{groups}]
-population = [{population}]
-initial = {{ S = "rest", I = [{seeds}] }}
-
-[model.matrices]
-contacts = [{contacts}]
-
-[[model.flows]]
-name = "infection"
-from = "S"
-to = "E"
-rate = "beta * S * (contacts @ (I / N))"
-
-[[model.flows]]
-from = "E"
-to = "I"
-rate = "E / latent_days"
-
-[[model.flows]]
-from = "I"
-to = "R"
-rate = "I / infectious_days"
-
-[parameters]
-beta = {{ dist = "uniform", low = 0.01, high = 0.03 }}
-latent_days = 3.0
-infectious_days = 5.0
-"""
-
-
 def scenario_text(n_groups: int, seed: int = 1) -> str:
+    """The illustrative SEIR with ``n_groups`` groups of 1000 and a dense random contact
+    matrix (invented numbers)."""
     rng = np.random.default_rng(seed)
     contacts = rng.uniform(0.1, 3.0, size=(n_groups, n_groups))
-    return SCENARIO.format(
-        groups=", ".join(f'"g{g}"' for g in range(n_groups)),
-        population=", ".join(["1000"] * n_groups),
-        seeds=", ".join(["1"] * n_groups),
-        contacts=", ".join("[" + ", ".join(repr(float(v)) for v in row) + "]"
-                           for row in contacts))
+    return age_seir_text([f"g{g}" for g in range(n_groups)], [1000] * n_groups, contacts,
+                         name="model-scaling")
 
 
 def main() -> None:

@@ -24,48 +24,10 @@ from pathlib import Path
 
 import numpy as np
 
+from ensemble.examples import seir_text
 from ensemble.model.compile import compile_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
-
-SCENARIO = """
-# Illustrative, invented numbers.
-[scenario]
-name = "scaling"
-days = 100
-members = {members}
-seed = 1
-
-[model]
-compartments = ["S", "E", "I", "R"]
-population = 100000
-initial = {{ S = "rest", I = "seed_infectious" }}
-
-[[model.flows]]
-from = "S"
-to = "E"
-rate = "beta * S * I / N"
-
-[[model.flows]]
-from = "E"
-to = "I"
-rate = "E / latent_days"
-
-[[model.flows]]
-from = "I"
-to = "R"
-rate = "I / infectious_days"
-
-[parameters]
-R0 = {{ dist = "uniform", low = 1.2, high = 2.5 }}
-latent_days = {{ dist = "gamma", mean = 3.0, sd = 0.8 }}
-infectious_days = {{ dist = "lognormal", mean = 5.0, sd = 1.5, low = 1.0, high = 14.0 }}
-seed_infectious = {{ dist = "uniform", low = 5, high = 50 }}
-beta = "R0 / infectious_days"
-
-[sampling]
-method = "{method}"
-"""
 
 
 def timed(function, repeats: int = 5) -> float:
@@ -89,7 +51,8 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as directory:
         for method in ("random", "latin-hypercube", "sobol"):
             path = Path(directory) / f"{method}.toml"
-            path.write_text(SCENARIO.format(members=members, method=method))
+            path.write_text(seir_text(members=members, days=100, sampling=method,
+                                      population=100000, seed=1, name="scaling"))
             scenario = load_scenario(path)
             variant = scenario.variants[0]
             model = compile_model(scenario, variant)
