@@ -12,12 +12,11 @@ from pathlib import Path
 
 import pytest
 
-from cluster_support import REPO
 from ensemble.run.clusters import (ClusterProfile, find_profile, jobqueue_arguments,
                                    load_profile, make_jobqueue_cluster, resolve_profile,
                                    worker_lifetime)
 from ensemble.scenario.errors import ScenarioError
-from run_support import run_cli, write_scenario
+from support import REPO, run_cli, write_scenario
 
 SLURM_PROFILE = """\
 [cluster]

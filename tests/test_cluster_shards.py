@@ -19,12 +19,11 @@ import pytest
 from typer.testing import CliRunner
 from hypothesis import given, strategies as st
 
-from cluster_support import REPO, assert_identical_numbers
 from ensemble import api
 from ensemble.cli import app
 from ensemble.run.clusters import load_profile
 from ensemble.run.shards import PartError, Shard
-from run_support import write_scenario
+from support import REPO, assert_identical_numbers, write_scenario
 
 
 def run_cli(*arguments: str | os.PathLike[str], cwd: Path) -> CompletedCommand:

@@ -19,9 +19,9 @@ from pathlib import Path
 
 import pytest
 
-from cluster_support import REPO, assert_identical_numbers
 from ensemble import api
-from run_support import ensemble_command, run_cli, write_scenario
+from support import (REPO, assert_identical_numbers, ensemble_command, run_cli,
+                     write_scenario)
 
 JOB_NAME = "ensemble-testbed-slurm"
 """Name dask-jobqueue gives the worker jobs of the test-bed profile."""

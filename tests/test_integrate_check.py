@@ -14,7 +14,7 @@ from ensemble.integrate.stepper import integrate_fixed
 from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,
                                        STEP_CHECK_FAILED)
-from integrate_fixtures import load_case, subset
+from support import load_case, subset
 
 ALL_METHODS = ["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
 

@@ -17,7 +17,7 @@ import pytest
 from ensemble.integrate.methods import METHODS
 from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED,
                                        NON_FINITE, STEP_CHECK_FAILED)
-from integrate_fixtures import IMPLICIT, load_case
+from support import IMPLICIT, load_case
 
 DECAY = """
 [scenario]

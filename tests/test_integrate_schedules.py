@@ -7,7 +7,7 @@ import dataclasses
 import numpy as np
 import pytest
 
-from integrate_fixtures import load_case
+from support import load_case
 
 SIR = """
 [scenario]

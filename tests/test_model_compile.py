@@ -9,7 +9,7 @@ import pytest
 
 from ensemble.model import RateFunctions, compile_model
 from ensemble.model.ir import Apply, Const, ParamRef, StateRef, apply
-from model_scenarios import AGE_SEIR, SEIR, VITAL, compiled, load, random_inputs
+from support import AGE_SEIR, SEIR, VITAL, compiled, load, random_inputs
 
 CONTACTS = np.array([[8.0, 3.0, 1.0, 0.0],
                      [3.0, 6.0, 2.0, 0.5],

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from ensemble.model import RateFunctions
-from model_scenarios import AGE_SEIR, NONLINEAR, SEIR, VITAL, compiled, random_inputs
+from support import AGE_SEIR, NONLINEAR, SEIR, VITAL, compiled, random_inputs
 
 MEMBERS = 7
 

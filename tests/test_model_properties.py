@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 
 from ensemble.model import RateFunctions
 from ensemble.scenario.expressions import Binary, Call, Name, Negate, Node, Number, parse
-from model_scenarios import compiled
+from support import compiled
 
 BODY = """
 [model]

@@ -32,7 +32,7 @@ from ensemble.model.compile import compile_model
 from ensemble.output.store import NotAResult, WorkStore
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
-from output_support import fill, grouped_scenario, layout_of
+from support import fill, grouped_scenario, layout_of
 
 
 def _made_up_file(directory: Path, **options) -> Path:

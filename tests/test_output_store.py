@@ -26,7 +26,7 @@ from ensemble.output.store import (
     partial_path,
     result_fingerprint,
 )
-from output_support import fill, grouped_scenario, layout_of, made_up_members
+from support import fill, grouped_scenario, layout_of, made_up_members
 
 
 @pytest.fixture

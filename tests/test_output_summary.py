@@ -14,7 +14,7 @@ import xarray as xr
 
 from ensemble.output.store import WorkStore
 from ensemble.output.summary import member_metrics, quantiles
-from output_support import fill, grouped_scenario, layout_of
+from support import fill, grouped_scenario, layout_of
 
 
 @pytest.fixture(scope="module")

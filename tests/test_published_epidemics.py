@@ -15,7 +15,7 @@ import pytest
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 
-from integrate_fixtures import load_case
+from support import load_case
 
 ALL_METHODS = ["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
 ORDERS = {"forward-euler": 1, "heun": 2, "rk4": 4, "backward-euler": 1, "trapezoid": 2}

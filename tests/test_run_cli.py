@@ -19,7 +19,7 @@ import pytest
 
 import ensemble
 from ensemble import api
-from run_support import assert_same_numbers, ensemble_command, run_cli, write_scenario
+from support import assert_same_numbers, ensemble_command, run_cli, write_scenario
 
 SLOW = {"members": 20, "days": 60}
 """A run of several seconds with chunks of two members: time to interrupt it midway."""

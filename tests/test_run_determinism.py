@@ -14,7 +14,7 @@ import psutil
 from distributed import LocalCluster
 
 from ensemble import api
-from run_support import assert_same_numbers, ensemble_command, write_scenario
+from support import assert_same_numbers, ensemble_command, write_scenario
 
 
 def run_into(directory: Path, name: str, *, members: int = 40, days: int = 30,

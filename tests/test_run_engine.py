@@ -12,7 +12,7 @@ from ensemble import api
 from ensemble.model.compile import compile_model
 from ensemble.run.execute import RunFailed, open_client
 from ensemble.scenario.load import load_scenario
-from run_support import assert_same_numbers, write_scenario
+from support import assert_same_numbers, write_scenario
 
 
 def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,

@@ -14,7 +14,7 @@ from ensemble.run.plan import (MAX_CHUNK_BYTES, default_chunk, fingerprint, plan
                                shard_range)
 from ensemble.scenario.load import load_scenario
 from ensemble.scenario.schema import Compute
-from run_support import write_scenario
+from support import write_scenario
 
 
 @given(members=st.integers(0, 10_000), count=st.integers(1, 300))
