@@ -31,8 +31,7 @@ from ensemble.integrate.check import integrate_chunk
 from ensemble.model.compile import compile_model
 from ensemble.output.store import NotAResult, WorkStore
 from ensemble.sampling import make_design
-from ensemble.scenario.load import load_scenario
-from support import fill, grouped_scenario, layout_of
+from support import fill, grouped_scenario, layout_of, load_text
 
 
 def _made_up_file(directory: Path, **options) -> Path:
@@ -243,9 +242,7 @@ def test_simulated_sir_matches_the_final_size_and_peak_relations(tmp_path):
     """Closed SIR with R0 = 2, S0 = N - 10, I0 = 10: the conserved quantity
     S + I - (N / R0) ln S (Kermack and McKendrick 1927; Hethcote 2000, section 2) gives the
     final susceptibles S_inf and the largest prevalence at S = N / R0."""
-    path = tmp_path / "sir.toml"
-    path.write_text(SIR_TOML)
-    dataset = api.simulate(load_scenario(path))
+    dataset = api.simulate(load_text(tmp_path, SIR_TOML, "sir"))
     n, r0, s0, i0 = 1e6, 2.0, 1e6 - 10, 10.0
     invariant = s0 + i0 - n / r0 * np.log(s0)
     s_inf = brentq(lambda s: s - n / r0 * np.log(s) - invariant, 1.0, n / r0)

@@ -8,7 +8,6 @@ section 1) against the scenario file's contract.
 from __future__ import annotations
 
 import math
-import textwrap
 import tracemalloc
 
 import numpy as np
@@ -16,7 +15,7 @@ import pytest
 
 from ensemble.model.compile import compile_model
 from ensemble.sampling import Design, make_design
-from ensemble.scenario.load import load_scenario
+from support import load_text
 
 METHODS = ("random", "latin-hypercube", "sobol")
 
@@ -120,10 +119,8 @@ method = "{method}"
 
 
 def load(tmp_path, template: str, members: int = 1000, method: str = "random", **fields):
-    path = tmp_path / f"scenario-{method}-{members}.toml"
-    path.write_text(textwrap.dedent(template.format(members=members, method=method,
-                                                    **fields)))
-    return load_scenario(path)
+    return load_text(tmp_path, template.format(members=members, method=method, **fields),
+                     f"scenario-{method}-{members}")
 
 
 def seir(tmp_path, members=1000, method="random", extra=""):
@@ -334,8 +331,7 @@ matrices = { contact = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]] }
 def test_start_without_rest_must_add_up_to_the_population(tmp_path, initial, all_valid):
     """Without "rest" the starts must add up to the population (SPEC section 1, relative
     tolerance 1e-9); a member whose drawn starts do not is an impossible start."""
-    path = tmp_path / "no-rest.toml"
-    path.write_text(textwrap.dedent(f"""
+    scenario = load_text(tmp_path, f"""
         [scenario]
         name = "no-rest"
         days = 5
@@ -353,8 +349,8 @@ def test_start_without_rest_must_add_up_to_the_population(tmp_path, initial, all
 
         [parameters]
         seed_infectious = {{ dist = "uniform", low = 5, high = 15 }}
-    """))
-    d = design(load_scenario(path), 0, np.arange(50))
+    """, "no-rest")
+    d = design(scenario, 0, np.arange(50))
     assert np.array_equal(d.invalid_start, np.full(50, not all_valid))
     assert np.isnan(d.initial[:, d.invalid_start]).all()
 

@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import itertools
-import textwrap
 
 import numpy as np
 import pytest
 from scipy import stats
 
 from ensemble.sampling.uniform import uncertain_columns, uniform_draws
-from ensemble.scenario.load import load_scenario
+from support import load_text
 
 METHODS = ("random", "latin-hypercube", "sobol")
 
@@ -58,11 +57,9 @@ k = 0.5
 def load(directory, method: str, members: int, seed: int = 11, parameters: str = THREE,
          groups: str = "population = 1000", infected: str = "10",
          infection: str = "k * a * b * c * S * I / N", variants: str = ""):
-    path = directory / f"uniform-{next(_files)}.toml"
-    path.write_text(textwrap.dedent(TEMPLATE.format(
+    return load_text(directory, TEMPLATE.format(
         members=members, seed=seed, groups=groups, infected=infected, infection=infection,
-        parameters=parameters, method=method, variants=variants)))
-    return load_scenario(path)
+        parameters=parameters, method=method, variants=variants), f"uniform-{next(_files)}")
 
 
 KEYS = [("a", 0), ("b", 0), ("c", 0)]
