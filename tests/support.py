@@ -33,11 +33,13 @@ REPO = Path(__file__).resolve().parent.parent
 IMPLICIT = ("backward-euler", "trapezoid")
 
 
-def load_text(directory: Path, text: str, name: str = "scenario") -> Scenario:
-    """Write ``text`` (dedented) to ``directory / f"{name}.toml"`` and load it."""
+def load_text(directory: Path, text: str, name: str = "scenario",
+              **overrides: object) -> Scenario:
+    """Write ``text`` (dedented, UTF-8) to ``directory / f"{name}.toml"`` and load it with
+    ``overrides`` (as the command line's)."""
     path = directory / f"{name}.toml"
-    path.write_text(textwrap.dedent(text))
-    return load_scenario(path)
+    path.write_text(textwrap.dedent(text), encoding="utf-8")
+    return load_scenario(path, **overrides)
 
 
 # ------------------------------------------------------------------ model tests

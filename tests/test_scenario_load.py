@@ -13,6 +13,7 @@ from ensemble.cli import app
 from ensemble.scenario import ScenarioError, ScenarioErrors, load_scenario, scenario_warnings
 from ensemble.scenario.expressions import RESERVED
 from ensemble.scenario.schema import Derived, Distribution, Expression, Fixed, Rest, Schedule
+from support import load_text
 
 SCENARIOS = Path(__file__).parent.parent / "scenarios"
 
@@ -80,11 +81,7 @@ def edit(text: str, *pairs: str) -> str:
 
 @pytest.fixture
 def load(tmp_path: Path):
-    def load_text(text: str, **overrides):
-        path = tmp_path / "scenario.toml"
-        path.write_text(text, encoding="utf-8")
-        return load_scenario(path, **overrides)
-    return load_text
+    return lambda text, **overrides: load_text(tmp_path, text, **overrides)
 
 
 def error_of(load, text: str) -> ScenarioError:
