@@ -45,6 +45,7 @@ CACHE_ENVIRONMENT = "ENSEMBLE_KERNEL_CACHE"
 """Environment variable naming the kernel cache directory (overrides the XDG default)."""
 
 _loaded: dict[str, ModuleType] = {}
+_recent: dict[tuple[int, str], tuple[CompiledModel, ModuleType, KernelSource]] = {}
 _loading = threading.Lock()
 
 
@@ -92,7 +93,11 @@ def _write_once(path: Path, text: str) -> None:
 
 def load_kernel(model: CompiledModel, method: Method) -> tuple[ModuleType, KernelSource]:
     """The kernel module of ``model`` and ``method`` (generated, written and imported on
-    first use; numba compiles it on first call unless its disk cache has it)."""
+    first use; numba compiles it on first call unless its disk cache has it).  The last
+    few (model, method) pairs are remembered, so chunks of one run skip the generation."""
+    known = _recent.get((id(model), method.name))
+    if known is not None and known[0] is model:
+        return known[1], known[2]
     source = KernelSource(model, method)
     path = kernel_path(source)
     with _loading:
@@ -104,6 +109,9 @@ def load_kernel(model: CompiledModel, method: Method) -> tuple[ModuleType, Kerne
             sys.modules[spec.name] = module
             spec.loader.exec_module(module)
             _loaded[path.stem] = module
+        if len(_recent) >= 16:
+            _recent.clear()
+        _recent[(id(model), method.name)] = (model, module, source)
     return module, source
 
 
