@@ -1,11 +1,9 @@
 """Python source of one numba kernel that integrates a chunk of members with one method.
 
 The kernel is written for the machine, not for the reader: :mod:`ensemble.integrate.stepper`
-is the readable reference it must agree with.  Its shape follows the usual recipe for
-vectorising an ensemble of small independent ODE systems on a CPU (members are the SIMD
-lanes; e.g. Rackauckas et al. 2022, "Automated translation and accelerated solving of
-differential equations on multiple GPU platforms", which compares the array-of-systems
-layouts):
+is the readable reference it must agree with.  Its shape is the usual way of vectorising an
+ensemble of small independent ODE systems on a CPU, members as the SIMD lanes (common
+practice, no source):
 
 - members are cut into blocks of a fixed size ``BLOCK`` (the caller pads the last one), and
   blocks are spread over threads with ``numba.prange``;
@@ -23,22 +21,20 @@ floats appear in the text; the trees were validated before compilation.
 
 The implicit theta methods solve ``y1 = y0 + h S [(1 - theta) R(t, y0) + theta R(t + h, y1)]``
 by Newton's method per member (Hairer & Wanner 1996, *Solving Ordinary Differential Equations
-II*, sec. IV.8), from the explicit Euler predictor, with the dense Jacobian
+II*, sec. IV.8, cited from memory), from the explicit Euler predictor, with the dense Jacobian
 ``I - h theta S dR/dy`` solved by Gaussian elimination with partial pivoting (Golub & Van Loan
-2013, *Matrix Computations*, 4th ed., Alg. 3.4.1), vectorised across the members of a block.
+2013, *Matrix Computations*, 4th ed., sec. 3.4; section cited from memory), vectorised across
+the members of a block.
 """
 
 from __future__ import annotations
 
 import inspect
 import math
-import textwrap
 from collections.abc import Iterable
 
-import numpy as np
-
 from ensemble.integrate.methods import Method
-from ensemble.integrate.check import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
+from ensemble.integrate.status import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
 from ensemble.model.compile import CompiledModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
@@ -146,7 +142,7 @@ def interpolation_segment(days, t):
 def solve_block(matrix, rhs, pivot_row, pivot_size, factor, trouble, columns):
     """Solve ``matrix[:, :, b] x = rhs[:, b]`` for every member b of a block, in place.
 
-    Gaussian elimination with partial pivoting (Golub & Van Loan 2013, Alg. 3.4.1), the
+    Gaussian elimination with partial pivoting (Golub & Van Loan 2013, sec. 3.4), the
     members loop innermost so that it vectorises; the solution replaces ``rhs``.  Updates
     whose multiplier, or whose pivot-row entry, is zero for every member of the block are
     skipped: they would leave every finite entry unchanged, and with the unknowns ordered
@@ -234,7 +230,7 @@ def elimination_order(pattern: list[set[int]]) -> list[int]:
     ``(r - 1)(c - 1)`` over the remaining diagonal pivots, with the fill each elimination
     creates (Markowitz 1957, "The elimination form of the inverse and its application to
     linear programming"; Duff, Erisman & Reid 2017, *Direct Methods for Sparse Matrices*,
-    sec. 7.2).  ``pattern[i]`` holds the columns of row i's structural non-zeros."""
+    2nd ed.).  ``pattern[i]`` holds the columns of row i's structural non-zeros."""
     rows = [set(row) | {i} for i, row in enumerate(pattern)]
     remaining = set(range(len(rows)))
     order = []
@@ -258,8 +254,7 @@ def elimination_order(pattern: list[set[int]]) -> list[int]:
 class _Emitter:
     """Straight-line code for the rate trees, each distinct subtree computed once."""
 
-    def __init__(self, model: CompiledModel):
-        self.model = model
+    def __init__(self) -> None:
         self._depends: dict[ScalarNode, frozenset[str]] = {}
 
     def depends(self, node: ScalarNode) -> frozenset[str]:
@@ -354,7 +349,7 @@ class KernelSource:
         self.model = model
         self.method = method
         self.block = block_size(model, method)
-        self._emitter = _Emitter(model)
+        self._emitter = _Emitter()
         stoich = model.stoichiometry
         self._into_state = [
             [(float(stoich[s, f]), f) for f in range(model.n_flow_elements) if stoich[s, f] != 0]

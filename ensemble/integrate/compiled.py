@@ -33,7 +33,7 @@ from types import ModuleType
 import numba
 import numpy as np
 
-from ensemble.integrate.check import INVALID_START
+from ensemble.integrate.status import INVALID_START
 from ensemble.integrate.codegen import KernelSource
 from ensemble.integrate.methods import Method
 from ensemble.integrate.stepper import Trajectory
