@@ -114,6 +114,63 @@ members = {str(keep_members).lower()}
 """
 
 
+def sir_text(*, members: int = 10, days: int = 100, population: float = 10000,
+             infectious: float = 10, beta: float = 0.5, gamma: float = 0.25,
+             method: str = "rk4", step: float = 0.25, report_every: float = 1,
+             seed: int = 1, name: str = "example-sir") -> str:
+    """A closed SIR scenario with fixed rates (invented numbers) as TOML text.
+
+    S' = -beta S I / N, I' = beta S I / N - gamma I, R' = gamma I, so R0 = beta / gamma
+    (Kermack & McKendrick 1927, Proc. R. Soc. A 115:700-721); the flows are named
+    ``infection`` and ``recovery``.
+
+    Parameters
+    ----------
+    members, days, method, step, seed, name
+        As in :func:`seir_text`.
+    population, infectious
+        Total population and infectious persons at the start (the rest susceptible).
+    beta, gamma
+        Transmission and recovery rates, per day.
+    report_every
+        Days between reported times.
+    """
+    return f"""\
+[scenario]
+name = "{name}"
+title = "Illustrative closed SIR, invented numbers"
+days = {days}
+members = {members}
+seed = {seed}
+
+[model]
+compartments = ["S", "I", "R"]
+population = {population}
+initial = {{ S = "rest", I = {infectious} }}
+
+[[model.flows]]
+name = "infection"
+from = "S"
+to = "I"
+rate = "beta * S * I / N"
+
+[[model.flows]]
+name = "recovery"
+from = "I"
+to = "R"
+rate = "gamma * I"
+
+[parameters]
+beta = {beta}
+gamma = {gamma}
+
+[solver]
+method = "{method}"
+step = {step}
+report_every = {report_every}
+"""
+
+
 def age_seir_text(groups: Sequence[str], population: Sequence[float], contacts: np.ndarray,
                   *, members: int = 100, days: int = 10, method: str = "rk4",
                   step: float = 0.25, seed: int = 1, name: str = "example-age-seir") -> str:

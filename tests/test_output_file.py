@@ -27,6 +27,7 @@ from typer.testing import CliRunner
 import ensemble
 from ensemble import api
 from ensemble.cli import app
+from ensemble.examples import sir_text
 from ensemble.integrate.check import integrate_chunk
 from ensemble.model.compile import compile_model
 from ensemble.output.store import NotAResult, WorkStore
@@ -201,48 +202,13 @@ def test_simulate_a_chosen_variant(tmp_path):
         api.simulate(scenario, variants=["fewer-contact"])
 
 
-SIR_TOML = """\
-# Illustrative only: a closed SIR population with invented numbers.
-[scenario]
-name = "closed-sir"
-days = 300
-members = 2
-seed = 3
-
-[model]
-compartments = ["S", "I", "R"]
-population = 1000000
-initial = { S = "rest", I = 10 }
-
-[[model.flows]]
-name = "infection"
-from = "S"
-to = "I"
-rate = "beta * S * I / N"
-
-[[model.flows]]
-name = "recovery"
-from = "I"
-to = "R"
-rate = "I / infectious_days"
-
-[parameters]
-R0 = 2.0
-infectious_days = 5.0
-beta = "R0 / infectious_days"
-
-[solver]
-method = "rk4"
-step = 0.125
-report_every = 0.25
-"""
-
-
 def test_simulated_sir_matches_the_final_size_and_peak_relations(tmp_path):
     """Closed SIR with R0 = 2, S0 = N - 10, I0 = 10: the conserved quantity
     S + I - (N / R0) ln S (Kermack and McKendrick 1927; Hethcote 2000, section 2) gives the
     final susceptibles S_inf and the largest prevalence at S = N / R0."""
-    dataset = api.simulate(load_text(tmp_path, SIR_TOML, "sir"))
+    text = sir_text(members=2, days=300, population=1000000, infectious=10, beta=0.4,
+                    gamma=0.2, step=0.125, report_every=0.25, seed=3, name="closed-sir")
+    dataset = api.simulate(load_text(tmp_path, text, "sir"))
     n, r0, s0, i0 = 1e6, 2.0, 1e6 - 10, 10.0
     invariant = s0 + i0 - n / r0 * np.log(s0)
     s_inf = brentq(lambda s: s - n / r0 * np.log(s) - invariant, 1.0, n / r0)

@@ -15,48 +15,21 @@ import pytest
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 
+from ensemble.examples import sir_text
 from support import load_case
 
 ALL_METHODS = ["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
 ORDERS = {"forward-euler": 1, "heun": 2, "rk4": 4, "backward-euler": 1, "trapezoid": 2}
 
-SIR = """
-[scenario]
-name = "sir"
-days = {days}
-members = 3
-
-[model]
-compartments = ["S", "I", "R"]
-population = 10000
-initial = {{ S = "rest", I = 10 }}
-
-[[model.flows]]
-name = "infection"
-from = "S"
-to = "I"
-rate = "beta * S * I / N"
-
-[[model.flows]]
-name = "recovery"
-from = "I"
-to = "R"
-rate = "gamma * I"
-
-[parameters]
-beta = 0.5
-gamma = 0.25
-
-[solver]
-step = {step}
-report_every = {report_every}
-"""
-
 R0_VALUES = np.array([1.5, 2.0, 3.0])
 
 
 def sir_case(tmp_path, days, step, report_every):
-    case = load_case(tmp_path, SIR.format(days=days, step=step, report_every=report_every))
+    """Three members of a closed SIR of 10,000 with 10 infectious at the start, gamma =
+    0.25 per day and beta = 0.25 R0 (so R0 = 1.5, 2, 3)."""
+    case = load_case(tmp_path, sir_text(members=3, days=days, population=10000,
+                                        infectious=10, gamma=0.25, step=step,
+                                        report_every=report_every, name="sir"))
     return case.with_parameter("beta", R0_VALUES * 0.25)
 
 
