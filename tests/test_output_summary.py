@@ -3,7 +3,7 @@
 References: quantiles are checked against ``numpy.quantile`` (its default "linear"
 method is definition 7 of Hyndman and Fan 1996, "Sample quantiles in statistical
 packages", The American Statistician 50(4)); peaks, peak times and totals against values
-worked out by hand for the made-up trajectories of ``output_support.made_up_members``.
+worked out by hand for the made-up trajectories of ``support.made_up_members``.
 """
 
 from __future__ import annotations

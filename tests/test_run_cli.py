@@ -2,7 +2,7 @@
 resume (SPEC section 2, "Command line"; issue 4 part 6).
 
 Each test runs the real program in a subprocess on the illustrative SEIR scenario of
-run_support and compares what it leaves on disk with an uninterrupted run made in this
+support.write_scenario and compares what it leaves on disk with an uninterrupted run made in this
 process (``ensemble.api.run`` with ``workers=0``).
 """
 
