@@ -2,8 +2,8 @@
 resume (SPEC section 2, "Command line"; issue 4 part 6).
 
 Each test runs the real program in a subprocess on the illustrative SEIR scenario of
-support.write_scenario and compares what it leaves on disk with an uninterrupted run made in this
-process (``ensemble.api.run`` with ``workers=0``).
+``support.write_scenario`` and compares what it leaves on disk with an uninterrupted run
+made in this process (``ensemble.api.run`` with ``workers=0``).
 """
 
 from __future__ import annotations
