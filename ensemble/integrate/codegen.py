@@ -47,8 +47,11 @@ MATRIX_PART_ENTRIES = 128
 """Newton matrix entries computed per generated function: numba and LLVM compile many
 small functions much faster than one long one."""
 
-BLOCK_BYTES = 256 * 1024
-"""Target size of a block's Newton matrices (members x n x n float64): well inside L2."""
+BLOCK_BYTES = 1_100_000
+"""Largest size of a block's Newton matrices and right-hand sides (members x n x (n + 1)
+float64): about the L2 cache of one core of the machines measured (1 MB).  On the 16-group
+model (n = 64) that is 32 members; 8 members gave twice the cost per step (measured with
+scripts/benchmark.py)."""
 
 
 def block_size(model: CompiledModel, method: Method) -> int:
