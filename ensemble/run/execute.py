@@ -34,8 +34,11 @@ from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
 from ensemble.scenario.schema import Scenario
 
-DEFAULT_BACKEND = "numpy"
-"""Integration backend used when none is asked for."""
+DEFAULT_BACKEND = "compiled"
+"""Integration backend used when none is asked for: the generated numba kernels, which
+run 5 to 13 times faster than the numpy reference and are cached on disk after their
+first compilation (``scripts/benchmark.py``).  ``--backend numpy`` selects the readable
+reference; the two agree to 1e-12 relative (``tests/test_compiled_backend.py``)."""
 
 IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
