@@ -22,6 +22,7 @@ chunk file once, whatever the number of members.
 
 from __future__ import annotations
 
+import errno
 import json
 import os
 import shutil
@@ -53,6 +54,9 @@ ChunkKey = tuple[int, int, int]
 """(variant index, first member, end member): members ``first .. end - 1`` of a variant."""
 
 MANIFEST = "manifest.json"
+MARKER = "driver-marker"
+"""File in the work directory holding a token of the running driver: a process that reads
+the same token back sees the same directory, and may save chunks there itself."""
 CHUNK_PREFIX = "chunk-"
 TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
@@ -90,7 +94,8 @@ class WorkStore:
     """Finished chunks of one run on disk, and the result file made from them.
 
     Use :meth:`open`, then :meth:`pending` to learn what is left, :meth:`save` for each
-    finished chunk (from one thread; the order does not matter), and :meth:`finish`.
+    finished chunk (in any order, from any process that sees the work directory: see
+    :meth:`mark`), and :meth:`finish`.
     """
 
     def __init__(self, path: Path, layout: ResultLayout, *,
@@ -200,6 +205,31 @@ class WorkStore:
             return None
         return manifest if isinstance(manifest, dict) else None
 
+    # ------------------------------------------------------------------ sharing
+
+    def mark(self) -> str:
+        """Write a fresh token to the work directory's marker file and return it.
+
+        A process (a dask worker on another host) that finds the same token with
+        :meth:`shares_directory` sees this work directory, so it may :meth:`save` chunks
+        into it itself instead of sending them to the driver.
+        """
+        token = os.urandom(16).hex()
+        temporary = self.work / f"{TEMP_PREFIX}{MARKER}-{os.getpid()}"
+        try:
+            temporary.write_text(token)
+            os.replace(temporary, self.work / MARKER)
+        except OSError as error:
+            raise StoreWriteError(_describe(error, self.work)) from error
+        return token
+
+    def shares_directory(self, token: str) -> bool:
+        """True when this process reads ``token`` (from :meth:`mark`) in the marker file."""
+        try:
+            return (self.work / MARKER).read_text() == token
+        except OSError:
+            return False
+
     # ------------------------------------------------------------------ chunks
 
     def _chunk_directory(self, key: ChunkKey) -> Path:
@@ -261,7 +291,9 @@ class WorkStore:
              reported: Mapping[str, np.ndarray]) -> None:
         """Store one finished chunk durably (temporary name, fsync, rename).
 
-        Saving the same key again replaces the chunk.
+        Saving the same key again replaces the chunk.  Processes may save different
+        keys at once; when two save the same key at once (a task rerun while its first
+        worker was still alive), one copy is kept: a chunk's bits depend on its key only.
 
         Parameters
         ----------
@@ -312,7 +344,12 @@ class WorkStore:
             _fsync_directory(temporary)
             if final.exists():
                 shutil.rmtree(final)
-            os.rename(temporary, final)
+            try:
+                os.rename(temporary, final)
+            except OSError as error:
+                if error.errno not in (errno.EEXIST, errno.ENOTEMPTY):
+                    raise
+                shutil.rmtree(temporary)    # another process saved this key meanwhile
             _fsync_directory(self.work)
         except OSError as error:
             shutil.rmtree(temporary, ignore_errors=True)

@@ -3,9 +3,11 @@
 Each chunk is one task, :func:`compute_chunk`, a pure function of its arguments (the
 scenario, the variant's compiled model, the member range, the backend), so a task that
 is rerun (its worker died, the run was resumed) gives the same bits.  The driver keeps a
-bounded window of tasks in flight, hands every finished chunk to the
-:class:`~ensemble.output.store.WorkStore` at once and forgets it, so memory stays bounded
-whatever the number of members.
+bounded window of tasks in flight.  A worker that sees the work directory (always on the
+local cluster; checked by a marker file on others) saves its chunk into the
+:class:`~ensemble.output.store.WorkStore` itself and hands back only the key, so the
+trajectories never cross to the driver; otherwise the driver saves each finished chunk at
+once and forgets it.  Memory stays bounded whatever the number of members.
 """
 
 from __future__ import annotations
@@ -27,8 +29,10 @@ from distributed import Client, Future, LocalCluster, as_completed
 from distributed.diagnostics.plugin import WorkerPlugin
 
 from ensemble.integrate.check import ChunkResult, integrate_chunk
+from ensemble.integrate.codegen import block_size
+from ensemble.integrate.methods import METHODS
 from ensemble.model.compile import CompiledModel, compile_model
-from ensemble.output.store import ChunkKey, ResultLayout, WorkStore
+from ensemble.output.store import ChunkKey, ResultLayout, StoreWriteError, WorkStore
 from ensemble.run.clusters import THREAD_LIMITS, ClusterProfile, jobqueue_cluster
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
@@ -100,6 +104,36 @@ def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
     design = make_design(scenario, scenario.variants[variant], model, members)
     result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
     return ChunkOutput(key, result, dict(design.reported))
+
+
+@dataclass(frozen=True)
+class ChunkSaved:
+    """What a task that saved its own chunk hands back."""
+
+    key: ChunkKey
+
+
+def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
+                           store: WorkStore, token: str | None,
+                           backend: str = DEFAULT_BACKEND,
+                           kernel_threads: int | None = None) -> ChunkOutput | ChunkSaved:
+    """:func:`compute_chunk`, then save the chunk into ``store`` here when this process
+    sees the store's directory (``token`` None: known to; else the token of
+    :meth:`WorkStore.mark` must be read back), else hand the whole chunk back for the
+    driver to save."""
+    output = compute_chunk(scenario, model, key, backend, kernel_threads)
+    if token is not None and not store.shares_directory(token):
+        return output
+    store.save(output.key, output.result, output.reported)
+    return ChunkSaved(key)
+
+
+def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
+    """Members per block of ``backend``'s kernels for this model and method (1 for the
+    numpy backend, which works on any number of members alike)."""
+    if backend != "compiled":
+        return 1
+    return block_size(model, METHODS[scenario.solver.method])
 
 
 # --------------------------------------------------------------------------- executors
@@ -181,6 +215,10 @@ def _chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> Ru
                      f"{type(error).__name__}: {error}")
 
 
+Finished = ChunkOutput | ChunkSaved
+"""A finished chunk: saved already, or still to be saved by the driver."""
+
+
 def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
                 keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
     """Compute the chunks one after another in this process, without dask.distributed."""
@@ -193,14 +231,18 @@ def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
 
 
 def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledModel],
-                keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
+                keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None
+                ) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
-    At most :data:`IN_FLIGHT_PER_THREAD` tasks per worker thread are submitted at a time
+    With ``store``, a worker that sees its directory (:meth:`WorkStore.mark`, checked by
+    every task) saves its chunk there itself and yields only the key.  At most
+    :data:`IN_FLIGHT_PER_THREAD` tasks per worker thread are submitted at a time
     (re-counted as workers come and go).  A task whose worker dies is rerun elsewhere by
     the scheduler; a task that raises, or that keeps killing its workers, stops the run
     with :class:`RunFailed`.
     """
+    token = store.mark() if store is not None else None
     queue = iter(keys)
     running = as_completed()
     submitted: dict[Future, ChunkKey] = {}
@@ -212,8 +254,14 @@ def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledMod
             key = next(queue, None)
             if key is None:
                 return
-            future = client.submit(compute_chunk, scenario, models[key[0]], key, backend, 1,
-                                   key=f"chunk-{key[0]}-{key[1]}-{key[2]}", pure=False)
+            task_key = f"chunk-{key[0]}-{key[1]}-{key[2]}"
+            if store is None:
+                future = client.submit(compute_chunk, scenario, models[key[0]], key,
+                                       backend, 1, key=task_key, pure=False)
+            else:
+                future = client.submit(compute_and_save_chunk, scenario, models[key[0]],
+                                       key, store, token, backend, 1, key=task_key,
+                                       pure=False)
             submitted[future] = key
             running.add(future)
 
@@ -222,6 +270,8 @@ def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledMod
         for future in running:
             try:
                 output = future.result()
+            except StoreWriteError:     # a worker could not save its chunk: as the driver
+                raise
             except Exception as error:  # the task's own error, or KilledWorker
                 raise _chunk_failed(scenario, submitted[future], error) from error
             del submitted[future]
@@ -352,7 +402,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     if chunk is None:
         chunk = scenario.compute.chunk or default_chunk(
             scenario, models[0].n_states, models[0].n_flow_elements,
-            cluster.max_workers if cluster else workers or available_cores(), backend)
+            cluster.max_workers if cluster else workers or available_cores(), backend,
+            kernel_block(models[0], scenario, backend))
     keys = store.pending(plan_chunks(scenario, chunk, members=members))
     progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
     try:
@@ -364,20 +415,21 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                     dashboard = _dashboard_link(client)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
-                    _save_all(store, _on_cluster(client, scenario, models, keys, backend),
-                              progress)
+                    _save_all(store, _on_cluster(client, scenario, models, keys, backend,
+                                                 store), progress)
     finally:
         progress.close()
     progress.note(f"every chunk saved; writing {path}")
     return finish(store) if finish is not None else store.finish()
 
 
-def _save_all(store: WorkStore, outputs: Generator[ChunkOutput, None, None],
+def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
               progress: Progress) -> None:
-    """Save each finished chunk as it arrives; on any exit (an interrupt, a failed save)
-    close ``outputs`` at once, so that tasks still queued are cancelled while the client
-    is open."""
+    """Save each finished chunk as it arrives (unless its worker saved it); on any exit
+    (an interrupt, a failed save) close ``outputs`` at once, so that tasks still queued
+    are cancelled while the client is open."""
     with closing(outputs):
         for output in outputs:
-            store.save(output.key, output.result, output.reported)
+            if isinstance(output, ChunkOutput):
+                store.save(output.key, output.result, output.reported)
             progress.advance(output.key[2] - output.key[1])

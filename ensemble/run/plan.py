@@ -99,11 +99,13 @@ def fingerprint(scenario: Scenario, backend: str = "numpy") -> str:
 
 
 def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
-                  workers: int = 1, backend: str = "numpy") -> int:
+                  workers: int = 1, backend: str = "numpy", block: int = 1) -> int:
     """A chunk size for ``scenario`` when neither the command line nor the file sets one.
 
     Aims at :data:`TARGET_WORK_PER_CHUNK` per task, at most :data:`MAX_CHUNK_BYTES` of
-    trajectories per task, and at least :data:`TASKS_PER_WORKER` tasks per worker.
+    trajectories per task, and at least :data:`TASKS_PER_WORKER` tasks per worker; a
+    chunk of at least ``block`` members is cut down to a whole number of blocks, so that
+    a kernel working in blocks of ``block`` members pads nothing.
 
     Parameters
     ----------
@@ -112,6 +114,8 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
         flows times groups).
     workers : number of worker processes the run uses.
     backend : the integration backend (``"numpy"`` or ``"compiled"``).
+    block : members per block of the backend's kernel
+        (:func:`ensemble.integrate.codegen.block_size`); 1 for none.
     """
     check = scenario.solver.check
     runs = 1
@@ -122,8 +126,10 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
     bytes_per_member = (n_states + n_flow_elements) * scenario.n_reports * 8
     chunk = min(TARGET_WORK_PER_CHUNK[backend] / work_per_member,
                 MAX_CHUNK_BYTES / bytes_per_member)
-    chunk = min(chunk, math.ceil(scenario.members / (TASKS_PER_WORKER * max(workers, 1))))
-    return max(1, int(chunk))
+    chunk = int(min(chunk, math.ceil(scenario.members / (TASKS_PER_WORKER * max(workers, 1)))))
+    if chunk >= block:
+        chunk -= chunk % block
+    return max(1, chunk)
 
 
 def split(start: int, end: int, chunk: int) -> list[tuple[int, int]]:
