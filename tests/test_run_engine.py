@@ -5,14 +5,16 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 import ensemble.run.execute as execute
 from ensemble import api
 from ensemble.model.compile import compile_model
+from ensemble.output.store import WorkStore
 from ensemble.run.execute import RunFailed, open_client
 from ensemble.scenario.load import load_scenario
-from support import assert_same_numbers, write_scenario
+from support import assert_same_numbers, layout_of, write_scenario
 
 
 def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
@@ -76,3 +78,43 @@ def test_resume_without_work_in_progress_starts_afresh(tmp_path: Path) -> None:
                      progress=False)
     assert result == tmp_path / "result.nc" and result.is_file()
     assert not (tmp_path / "result.nc.partial").exists()
+
+
+def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path: Path
+                                                                        ) -> None:
+    """A task that reads back the driver's marker token saves its chunk itself and hands
+    back only the key; one that reads another token (a worker on a host without the
+    directory) hands the whole chunk back, and the driver's save of it is the same file.
+    The local cluster's workers always see it."""
+    scenario = load_scenario(write_scenario(tmp_path, members=12))
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    layout = layout_of(scenario)
+    store = WorkStore.open(tmp_path / "result.nc", layout, resume=False, force=False)
+    token = store.mark()
+    assert store.shares_directory(token) and not store.shares_directory("elsewhere")
+
+    elsewhere = execute.compute_and_save_chunk(scenario, models[0], (0, 0, 6), store,
+                                               "elsewhere", "numpy")
+    assert isinstance(elsewhere, execute.ChunkOutput) and store.saved() == []
+    saved = execute.compute_and_save_chunk(scenario, models[0], (0, 6, 12), store, token,
+                                           "numpy")
+    assert saved == execute.ChunkSaved((0, 6, 12)) and store.saved() == [(0, 6, 12)]
+
+    driver = WorkStore.open(tmp_path / "driver.nc", layout, resume=False, force=False)
+    output = execute.compute_chunk(scenario, models[0], (0, 6, 12), "numpy")
+    driver.save(output.key, output.result, output.reported)
+    chunk = "chunk-v0-0000000006-0000000012"
+    for name in ("state.npy", "flow_count.npy"):
+        assert ((store.work / chunk / name).read_bytes()
+                == (driver.work / chunk / name).read_bytes()), name
+    with np.load(store.work / chunk / "members.npz") as ours, \
+            np.load(driver.work / chunk / "members.npz") as theirs:
+        assert sorted(ours.files) == sorted(theirs.files)
+        for name in ours.files:
+            np.testing.assert_array_equal(ours[name], theirs[name], err_msg=name)
+
+    with open_client(workers=1) as client:
+        outputs = list(execute._on_cluster(client, scenario, models, [(1, 0, 12)], "numpy",
+                                           store))
+    assert outputs == [execute.ChunkSaved((1, 0, 12))]
+    assert store.saved() == [(0, 6, 12), (1, 0, 12)]
