@@ -27,6 +27,7 @@ import json
 import os
 import shutil
 from collections.abc import Callable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import BinaryIO
 
@@ -62,6 +63,11 @@ TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
 DEFAULT_BLOCK_BYTES = 128 * 2**20
 """Memory for one block of trajectories gathered over all members in :meth:`finish`."""
+FINISH_THREADS = max(1, min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                            else os.cpu_count() or 1))
+"""Blocks of trajectories reduced to quantiles at once in :meth:`finish`: one per core
+(the run's workers are done by then), at most 4 so that memory stays within a few
+blocks."""
 
 
 class OutputError(Exception):
@@ -465,31 +471,46 @@ class WorkStore:
                               included: np.ndarray) -> np.ndarray:
         """(variant, quantile, rows, time) quantiles over the included members of
         trajectory ``name``, gathered in blocks of times (and rows) of at most
-        ``block_bytes``; each chunk file is read once."""
+        ``block_bytes``; each chunk file is read once.
+
+        Blocks are independent, so :data:`FINISH_THREADS` threads gather and reduce one
+        each at a time (numpy's partition, most of the work, releases the GIL); memory
+        stays within ``FINISH_THREADS * block_bytes``.
+        """
         layout = self.layout
         rows = layout.n_states if name == "state" else layout.n_flow_elements
         probabilities = layout.scenario.output.quantiles
         result = np.empty((len(layout.variants), len(probabilities), rows, layout.n_reports))
-        for variant in range(len(layout.variants)):
-            spans = [(first, end) for v, first, end in keys if v == variant]
+
+        def reduce_block(variant: int, times: slice, row_range: slice) -> int:
+            """Quantiles of one block into ``result``; the block's size in bytes."""
             count = int(included[variant].sum())
-            for times, row_range in block_plan(count, rows, layout.n_reports,
-                                               self.block_bytes):
-                block = np.empty((times.stop - times.start, row_range.stop - row_range.start,
-                                  count))
-                position = 0
-                for first, end in spans:
-                    chosen = included[variant, first:end]
-                    size = int(chosen.sum())
-                    stored = np.load(self._chunk_directory((variant, first, end))
-                                     / f"{name}.npy", mmap_mode="r")
-                    block[..., position:position + size] = stored[times, row_range][..., chosen]
-                    del stored
-                    position += size
-                self.largest_block_bytes = max(self.largest_block_bytes, block.nbytes)
-                self.block_count += 1
-                values = quantiles(block, probabilities, axis=-1, overwrite_input=True)
-                result[variant, :, row_range, times] = values.transpose(0, 2, 1)
+            block = np.empty((times.stop - times.start, row_range.stop - row_range.start,
+                              count))
+            position = 0
+            for v, first, end in keys:
+                if v != variant:
+                    continue
+                chosen = included[variant, first:end]
+                size = int(chosen.sum())
+                stored = np.load(self._chunk_directory((variant, first, end))
+                                 / f"{name}.npy", mmap_mode="r")[times, row_range]
+                block[..., position:position + size] = (
+                    stored if size == end - first else stored[..., chosen])
+                del stored
+                position += size
+            values = quantiles(block, probabilities, axis=-1, overwrite_input=True)
+            result[variant, :, row_range, times] = values.transpose(0, 2, 1)
+            return block.nbytes
+
+        blocks = [(variant, times, row_range)
+                  for variant in range(len(layout.variants))
+                  for times, row_range in block_plan(int(included[variant].sum()), rows,
+                                                     layout.n_reports, self.block_bytes)]
+        with ThreadPoolExecutor(FINISH_THREADS) as pool:
+            sizes = list(pool.map(lambda block: reduce_block(*block), blocks))
+        self.block_count += len(sizes)
+        self.largest_block_bytes = max([self.largest_block_bytes, *sizes])
         return result
 
     def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
