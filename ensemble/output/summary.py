@@ -82,11 +82,19 @@ def member_metrics(state: np.ndarray, flow_count: np.ndarray,
 def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int = 0,
               overwrite_input: bool = False) -> np.ndarray:
     """Quantiles of ``values`` over ``axis`` (numpy's default linear definition); the
-    quantile axis replaces ``axis`` at the front.  NaN where ``axis`` is empty."""
+    quantile axis replaces ``axis`` at the front.  NaN where ``axis`` is empty.
+
+    With ``overwrite_input``, ``values`` is first sorted in place along ``axis``: numpy's
+    vectorised sort followed by its selection on sorted data takes about half the time
+    of the selection of a dozen ranks from unsorted data (measured on 200,000 members),
+    and the order statistics, hence the quantiles, are the same.
+    """
     probabilities = np.asarray(probabilities, dtype=np.float64)
     if values.shape[axis] == 0:
         shape = np.delete(np.array(values.shape), axis % values.ndim)
         return np.full((len(probabilities), *shape), np.nan)
+    if overwrite_input:
+        values.sort(axis=axis)
     return np.quantile(values, probabilities, axis=axis, overwrite_input=overwrite_input)
 
 
