@@ -5,6 +5,7 @@ Work in progress lives in the directory ``<path>.partial``::
 
     <path>.partial/
         manifest.json              fingerprint and shape of the run (written first)
+        driver-marker              token of the running driver (:meth:`WorkStore.mark`)
         chunk-v0-0000000000-0000000500/
                                    one directory per saved chunk of members
             state.npy              (n_reports, n_states, M) float64, time-major
@@ -63,8 +64,8 @@ TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
 DEFAULT_BLOCK_BYTES = 128 * 2**20
 """Memory for one block of trajectories gathered over all members in :meth:`finish`."""
-FINISH_THREADS = max(1, min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
-                            else os.cpu_count() or 1))
+FINISH_THREADS = min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                     else os.cpu_count() or 1)
 """Blocks of trajectories reduced to quantiles at once in :meth:`finish`: one per core
 (the run's workers are done by then), at most 4 so that memory stays within a few
 blocks."""
@@ -436,8 +437,7 @@ class WorkStore:
         variables = self._gather_members(keys)
         status = variables["status"]
         included = in_summary(status)
-        for name in STREAMED:
-            variables[f"{name}_quantile"] = self._trajectory_quantiles(name, keys, included)
+        variables.update(self._trajectory_quantiles(keys, included))
         variables.update(summary_quantiles(variables, status,
                                            layout.scenario.output.quantiles,
                                            layout.compare_index))
@@ -467,23 +467,24 @@ class WorkStore:
                     gathered[name][variant, first:end] = values
         return gathered
 
-    def _trajectory_quantiles(self, name: str, keys: list[ChunkKey],
-                              included: np.ndarray) -> np.ndarray:
-        """(variant, quantile, rows, time) quantiles over the included members of
-        trajectory ``name``, gathered in blocks of times (and rows) of at most
-        ``block_bytes``; each chunk file is read once.
+    def _trajectory_quantiles(self, keys: list[ChunkKey], included: np.ndarray
+                              ) -> dict[str, np.ndarray]:
+        """``<name>_quantile`` of each trajectory ``name``: (variant, quantile, rows,
+        time) quantiles over the included members, gathered in blocks of times (and
+        rows) of at most ``block_bytes``; each chunk file is read once.
 
         Blocks are independent, so :data:`FINISH_THREADS` threads gather and reduce one
-        each at a time (numpy's partition, most of the work, releases the GIL); memory
-        stays within ``FINISH_THREADS * block_bytes``.
+        each at a time (numpy's sort, most of the work, releases the GIL); memory stays
+        within ``FINISH_THREADS * block_bytes``.
         """
         layout = self.layout
-        rows = layout.n_states if name == "state" else layout.n_flow_elements
         probabilities = layout.scenario.output.quantiles
-        result = np.empty((len(layout.variants), len(probabilities), rows, layout.n_reports))
+        rows = {"state": layout.n_states, "flow_count": layout.n_flow_elements}
+        results = {name: np.empty((len(layout.variants), len(probabilities), rows[name],
+                                   layout.n_reports)) for name in STREAMED}
 
-        def reduce_block(variant: int, times: slice, row_range: slice) -> int:
-            """Quantiles of one block into ``result``; the block's size in bytes."""
+        def reduce_block(name: str, variant: int, times: slice, row_range: slice) -> int:
+            """Quantiles of one block into ``results``; the block's size in bytes."""
             count = int(included[variant].sum())
             block = np.empty((times.stop - times.start, row_range.stop - row_range.start,
                               count))
@@ -500,18 +501,20 @@ class WorkStore:
                 del stored
                 position += size
             values = quantiles(block, probabilities, axis=-1, overwrite_input=True)
-            result[variant, :, row_range, times] = values.transpose(0, 2, 1)
+            results[name][variant, :, row_range, times] = values.transpose(0, 2, 1)
             return block.nbytes
 
-        blocks = [(variant, times, row_range)
+        blocks = [(name, variant, times, row_range)
+                  for name in STREAMED
                   for variant in range(len(layout.variants))
-                  for times, row_range in block_plan(int(included[variant].sum()), rows,
-                                                     layout.n_reports, self.block_bytes)]
+                  for times, row_range in block_plan(int(included[variant].sum()),
+                                                     rows[name], layout.n_reports,
+                                                     self.block_bytes)]
         with ThreadPoolExecutor(FINISH_THREADS) as pool:
             sizes = list(pool.map(lambda block: reduce_block(*block), blocks))
         self.block_count += len(sizes)
         self.largest_block_bytes = max([self.largest_block_bytes, *sizes])
-        return result
+        return {f"{name}_quantile": result for name, result in results.items()}
 
     def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
         """Append ``state`` and ``flow_count`` of every member to the file, chunk by

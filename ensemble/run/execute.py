@@ -114,15 +114,13 @@ class ChunkSaved:
 
 
 def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
-                           store: WorkStore, token: str | None,
-                           backend: str = DEFAULT_BACKEND,
+                           store: WorkStore, token: str, backend: str = DEFAULT_BACKEND,
                            kernel_threads: int | None = None) -> ChunkOutput | ChunkSaved:
     """:func:`compute_chunk`, then save the chunk into ``store`` here when this process
-    sees the store's directory (``token`` None: known to; else the token of
-    :meth:`WorkStore.mark` must be read back), else hand the whole chunk back for the
-    driver to save."""
+    sees the store's directory (it reads back ``token``, from :meth:`WorkStore.mark`),
+    else hand the whole chunk back for the driver to save."""
     output = compute_chunk(scenario, model, key, backend, kernel_threads)
-    if token is not None and not store.shares_directory(token):
+    if not store.shares_directory(token):
         return output
     store.save(output.key, output.result, output.reported)
     return ChunkSaved(key)
