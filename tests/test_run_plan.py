@@ -80,6 +80,20 @@ def test_default_chunk_bounds_the_memory_of_a_task(tmp_path: Path) -> None:
             > default_chunk(scenario, 4, 3, backend="numpy"))
 
 
+def test_default_chunk_is_whole_kernel_blocks(tmp_path: Path) -> None:
+    """A chunk of at least one block of the compiled kernel is cut to whole blocks (no
+    padded members), still within MAX_CHUNK_BYTES; a smaller one is left as it is."""
+    scenario = dataclasses.replace(_scenario(tmp_path), members=10**6)
+    unblocked = default_chunk(scenario, 4, 3, backend="compiled")
+    chunk = default_chunk(scenario, 4, 3, backend="compiled", block=512)
+    assert unblocked % 512 != 0, "pick a case the rounding changes"
+    assert chunk % 512 == 0 and unblocked - 512 < chunk <= unblocked
+    assert chunk * 7 * scenario.n_reports * 8 <= MAX_CHUNK_BYTES
+    small = dataclasses.replace(scenario, members=100)
+    assert (default_chunk(small, 4, 3, backend="compiled", block=512)
+            == default_chunk(small, 4, 3, backend="compiled"))
+
+
 def test_fingerprint_follows_what_changes_numbers(tmp_path: Path) -> None:
     scenario = _scenario(tmp_path)
     base = fingerprint(scenario)
