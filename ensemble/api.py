@@ -17,6 +17,10 @@ from typing import TYPE_CHECKING
 from ensemble.scenario.load import load_scenario, scenario_warnings
 from ensemble.scenario.schema import Scenario
 
+__all__ = ["load_scenario", "scenario_warnings", "run", "simulate", "open_result",
+           "summarize", "status_counts", "merge", "array_script", "cluster_profile",
+           "default_part_path", "history_line"]
+
 if TYPE_CHECKING:
     import xarray as xr
 
