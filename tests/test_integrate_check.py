@@ -9,7 +9,8 @@ import types
 import numpy as np
 import pytest
 
-from ensemble.integrate.check import integrate_chunk, observed_order
+from ensemble.integrate.check import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, integrate_chunk,
+                                      observed_order, step_error)
 from ensemble.integrate.stepper import integrate_fixed
 from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,
@@ -177,6 +178,36 @@ def test_observed_order_formula():
     runs = [exact + 0.5 * (0.5 ** 3) ** level for level in range(3)]
     np.testing.assert_allclose(observed_order(*runs, refine=2, noise_floor=0.0), 3.0)
     assert np.isnan(observed_order(*runs, refine=2, noise_floor=1.0))
+
+
+@pytest.mark.parametrize("report_major", [False, True])
+def test_blockwise_reductions_match_whole_array_formulas(report_major):
+    """The blocked step_error and observed_order equal, bit for bit, the whole-array
+    expressions of their definitions (Richardson 1911, Phil. Trans. R. Soc. A 210:307-357;
+    Hairer, Norsett & Wanner 1993, sec. II.4), in both layouts the backends hand out,
+    with NaN members and rows spanning several blocks plus a partial one."""
+    members, n_states, n_reports = 7, 3, ROWS_PER_BLOCK + 5
+    rng = np.random.default_rng(5)
+    runs = [rng.normal(100.0, 1.0, (members + 1, n_states, n_reports)) for _ in range(3)]
+    runs[0][0, 2, -1] += 50.0  # member 0's largest difference is in the last, partial block
+    runs[1][2, 1, -1] = np.nan
+    runs[2][4, 0, 3] = np.nan
+    if report_major:  # the compiled backend's views of padded report-major arrays
+        runs = [np.ascontiguousarray(run.transpose(2, 1, 0))[:, :, :members].transpose(2, 1, 0)
+                for run in runs]
+    else:
+        runs = [run[:members] for run in runs]
+    coarse, fine, finest = runs
+    expected_error = (np.abs(coarse - fine) / (1.0 - 2.0 ** -4)
+                      / (0.01 + 1e-3 * np.abs(fine))).max(axis=(1, 2))
+    np.testing.assert_array_equal(step_error(coarse, fine, 2, 4, 1e-3, 0.01), expected_error)
+    d1 = np.abs(coarse - fine).max(axis=(1, 2))
+    d2 = np.abs(fine - finest).max(axis=(1, 2))
+    with np.errstate(all="ignore"):
+        floor = ROUND_OFF_FACTOR * np.finfo(np.float64).eps * np.abs(fine).max(axis=(1, 2))
+        expected_order = np.where(d2 > floor, np.log(d1 / d2) / np.log(2), np.nan)
+    np.testing.assert_array_equal(observed_order(coarse, fine, finest, 2, 0.0), expected_order)
+    assert np.isnan(expected_error[2]) and np.isnan(expected_order[[2, 4]]).all()
 
 
 def test_backend_dispatch(tmp_path, monkeypatch):

@@ -115,9 +115,13 @@ def load_kernel(model: CompiledModel, method: Method) -> tuple[ModuleType, Kerne
     return module, source
 
 
-def _columns(array: np.ndarray, columns: np.ndarray) -> np.ndarray:
-    """``array[..., columns]`` as a C-contiguous float64 array."""
-    return np.ascontiguousarray(np.take(np.asarray(array, dtype=np.float64), columns, axis=-1))
+def _columns(array: np.ndarray, columns: np.ndarray | None) -> np.ndarray:
+    """``array[..., columns]`` (``array`` itself for ``None``) as a C-contiguous float64
+    array, copied only where needed."""
+    array = np.asarray(array, dtype=np.float64)
+    if columns is None:
+        return np.ascontiguousarray(array)
+    return np.take(array, columns, axis=-1)
 
 
 def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Method,
@@ -147,8 +151,10 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
     flow_count = allocate((n_reports, model.n_flow_elements, padded))
     status = np.zeros(padded, np.uint8)
     if valid.size:
-        columns = np.full(padded, valid[0])
-        columns[valid] = valid
+        columns: np.ndarray | None = None
+        if valid.size < padded:
+            columns = np.full(padded, valid[0])
+            columns[valid] = valid
         schedules: list[np.ndarray] = []
         for slot, values in zip(model.schedule_slots, design.schedule_values):
             knots = (np.rint(slot.days / step).astype(np.int64) if slot.between == "step"
@@ -158,9 +164,10 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
                          _columns(design.parameters, columns), *schedules,
                          float(step), int(steps_per_report), int(n_reports), float(atol),
                          float(newton.tol), int(newton.max_iter), state, flow_count, status)
-    state[:, :, :members][:, :, invalid] = np.nan
-    flow_count[:, :, :members][:, :, invalid] = np.nan
-    status[:members][invalid] = INVALID_START
+    if valid.size < members:
+        state[:, :, :members][:, :, invalid] = np.nan
+        flow_count[:, :, :members][:, :, invalid] = np.nan
+        status[:members][invalid] = INVALID_START
     return Trajectory(state=state[:, :, :members].transpose(2, 1, 0),
                       flow_count=flow_count[:, :, :members].transpose(2, 1, 0),
                       status=status[:members])
