@@ -42,6 +42,7 @@ import psutil
 from numba import njit, prange
 from scipy.integrate import solve_ivp
 
+from ensemble.examples import seir_text
 from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
 from ensemble.integrate.methods import METHODS
 from ensemble.integrate.stepper import integrate_fixed
@@ -57,56 +58,13 @@ GROUPS = 16
 BLOCK = 512
 """Members per block of the reference kernels (a multiple of the SIMD width)."""
 
-SEIR = """\
-[scenario]
-name = "benchmark-seir"
-title = "Illustrative SEIR for the benchmark (invented numbers)"
-days = {days}
-members = {members}
-seed = 6
-
-[model]
-compartments = ["S", "E", "I", "R"]
-population = 250000
-initial = {{ S = "rest", E = 20, I = "seed_infectious" }}
-
-[[model.flows]]
-name = "infection"
-from = "S"
-to = "E"
-rate = "beta * S * I / N"
-
-[[model.flows]]
-name = "onset"
-from = "E"
-to = "I"
-rate = "E / latent_days"
-
-[[model.flows]]
-name = "recovery"
-from = "I"
-to = "R"
-rate = "I / infectious_days"
-
-[parameters]
-R0 = {{ dist = "uniform", low = 1.2, high = 2.2 }}
-latent_days = {{ dist = "gamma", mean = 3.0, sd = 0.7 }}
-infectious_days = {{ dist = "lognormal", mean = 5.0, sd = 1.2 }}
-seed_infectious = {{ dist = "uniform", low = 5, high = 40 }}
-beta = "R0 / infectious_days"
-
-[sampling]
-method = "latin-hypercube"
-
-[solver]
-method = "{method}"
-step = {step}
-check = {{ refine = 2, levels = 2 }}
-
-[output]
-path = "benchmark-seir.nc"
-members = false
-"""
+def seir_scenario(members: int, method: str = "rk4", step: float = STEP) -> str:
+    """The illustrative SEIR of :func:`ensemble.examples.seir_text` (invented numbers), as
+    the benchmark runs it: a year, a large town, members not kept in the result."""
+    return seir_text(members=members, days=DAYS, method=method, step=step,
+                     population=250000, seed=6, keep_members=False,
+                     output="benchmark-seir.nc", name="benchmark-seir",
+                     title="Illustrative SEIR for the benchmark (invented numbers)")
 
 
 def age_scenario(members: int, method: str) -> str:
@@ -468,7 +426,7 @@ def report_implicit(case: Case) -> None:
 def report_end_to_end(directory: Path, members: int, reference: float) -> None:
     """``ensemble run`` on ``members`` SEIR members against (d) doing the same steps."""
     path = directory / "run.toml"
-    path.write_text(SEIR.format(days=DAYS, members=members, method="rk4", step=STEP))
+    path.write_text(seir_scenario(members))
     command = [sys.executable, "-m", "ensemble", "run", str(path), "--force",
                "--backend", "compiled", "--output", str(directory / "run.nc")]
     began = time.monotonic()
@@ -501,8 +459,7 @@ def main() -> int:
     print(f"numba threads: {numba.get_num_threads()}, cores: {psutil.cpu_count()}")
     with tempfile.TemporaryDirectory(prefix="ensemble-benchmark-") as temporary:
         directory = Path(temporary)
-        seir = Case(directory, "seir", SEIR.format(days=DAYS, members=options.members,
-                                                   method="rk4", step=STEP), options.members)
+        seir = Case(directory, "seir", seir_scenario(options.members), options.members)
         reference = report_model("SEIR", seir, 20, seir.subset(min(options.members, 4096)))
         age_members = max(BLOCK, options.members // 8 // BLOCK * BLOCK)
         age = Case(directory, "age", age_scenario(age_members, "rk4"), age_members)
