@@ -1,7 +1,8 @@
 """Per-member metrics (peaks, peak times, totals) and quantiles over members.
 
-Pure numpy: used by the streaming store on each chunk, by :func:`ensemble.simulate` on
-a whole ensemble, and by ``ensemble summary``.  Quantiles use numpy's default definition
+numpy, with one compiled (numba) pass over the times for the metrics: used by the
+streaming store on each chunk, by :func:`ensemble.simulate` on a whole ensemble, and by
+``ensemble summary``.  Quantiles use numpy's default definition
 (linear interpolation between order statistics: Hyndman and Fan 1996, "Sample quantiles
 in statistical packages", definition 7), so they are the same numbers whatever the
 order or grouping in which members arrive.
@@ -11,6 +12,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 
+import numba
 import numpy as np
 
 from ensemble.integrate.check import INVALID_START, NON_FINITE, STATUS_FLAGS
@@ -38,17 +40,60 @@ def in_summary(status: np.ndarray) -> np.ndarray:
     return (np.asarray(status) & EXCLUDED_FROM_SUMMARY) == 0
 
 
-def _peaks(values: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Largest value along the last axis and the first time it is reached (NaN for both
-    where any value is NaN)."""
-    if values.shape[-1] == 0:
-        nan = np.full(values.shape[:-1], np.nan)
-        return nan, nan.copy()
-    first = np.argmax(values, axis=-1)          # numpy returns the first maximum (or NaN)
-    peak = np.take_along_axis(values, first[..., None], axis=-1)[..., 0]
-    when = times[first]
-    when[np.isnan(peak)] = np.nan
-    return peak, when
+@numba.njit(cache=True, nogil=True)
+def _scan_times(values: np.ndarray, first: int, peak: np.ndarray, peak_index: np.ndarray,
+                total: np.ndarray) -> None:
+    """One pass over the (n_times, K) ``values`` from row ``first`` on: the largest value
+    of each column, the row where it is first reached (NaN peak where any value is NaN)
+    and the sum of the column (added in time order)."""
+    n_times, columns = values.shape
+    for k in range(columns):
+        peak[k] = values[first, k]
+        peak_index[k] = first
+        total[k] = 0.0
+    seen_nan = np.zeros(columns, np.bool_)
+    for t in range(first, n_times):
+        row = values[t]
+        for k in range(columns):
+            value = row[k]
+            total[k] += value
+            seen_nan[k] |= value != value
+            if value > peak[k]:
+                peak[k] = value
+                peak_index[k] = t
+    for k in range(columns):
+        if seen_nan[k]:
+            peak[k] = np.nan
+
+
+def _time_scan(values: np.ndarray, times: np.ndarray, first: int
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Peak value, first peak time and sum over times ``first:`` of (..., n_times)
+    ``values``, each shaped ``values.shape[:-1]``.
+
+    The pass runs over the array's own memory order (time-major arrays, as the compiled
+    backend writes them, are read in place without a copy).
+    """
+    moved = np.moveaxis(values, -1, 0)
+    # the other axes from the largest stride to the smallest: contiguous when possible
+    order = sorted(range(moved.ndim - 1), key=lambda axis: -abs(moved.strides[axis + 1]))
+    rows = np.ascontiguousarray(moved.transpose(0, *(axis + 1 for axis in order)),
+                                dtype=np.float64)
+    shape = rows.shape[1:]
+    flat = rows.reshape(rows.shape[0], -1)
+    peak = np.empty(flat.shape[1])
+    peak_index = np.empty(flat.shape[1], np.int64)
+    total = np.empty(flat.shape[1])
+    if flat.shape[0] > first:
+        _scan_times(flat, first, peak, peak_index, total)
+        when = times[peak_index]
+        when[np.isnan(peak)] = np.nan
+    else:
+        peak[:], total[:] = np.nan, 0.0
+        when = np.full(flat.shape[1], np.nan)
+    back = np.argsort(order)
+    return tuple(np.ascontiguousarray(array.reshape(shape).transpose(back))
+                 for array in (peak, when, total))
 
 
 def member_metrics(state: np.ndarray, flow_count: np.ndarray,
@@ -66,14 +111,13 @@ def member_metrics(state: np.ndarray, flow_count: np.ndarray,
     -------
     ``peak_value``, ``peak_time`` (..., n_states); ``flow_peak_value``,
     ``flow_peak_time``, ``total_flow`` (..., n_flow_elements), all float64.  A peak time is
-    the first reported time at which the largest value is reached.
+    the first reported time at which the largest value is reached; a trajectory with a
+    NaN has neither.  Totals add the intervals in time order, so a member's total has the
+    same bits whatever chunk it was computed in.
     """
     times = np.asarray(times, dtype=np.float64)
-    peak_value, peak_time = _peaks(state, times)
-    # contiguous rows, so the sum adds in the same order however the members arrived
-    intervals = np.ascontiguousarray(flow_count[..., 1:])
-    flow_peak_value, flow_peak_time = _peaks(intervals, times[1:])
-    total_flow = intervals.sum(axis=-1)
+    peak_value, peak_time, _ = _time_scan(state, times, 0)
+    flow_peak_value, flow_peak_time, total_flow = _time_scan(flow_count, times, 1)
     return {"peak_value": peak_value, "peak_time": peak_time,
             "flow_peak_value": flow_peak_value, "flow_peak_time": flow_peak_time,
             "total_flow": total_flow}
