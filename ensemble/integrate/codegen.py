@@ -20,11 +20,13 @@ subtrees of time alone out of the members loop.  Only our own identifiers and ``
 floats appear in the text; the trees were validated before compilation.
 
 The implicit theta methods solve ``y1 = y0 + h S [(1 - theta) R(t, y0) + theta R(t + h, y1)]``
-by Newton's method per member (Hairer & Wanner 1996, *Solving Ordinary Differential Equations
-II*, sec. IV.8, cited from memory), from the explicit Euler predictor, with the dense Jacobian
-``I - h theta S dR/dy`` solved by Gaussian elimination with partial pivoting (Golub & Van Loan
-2013, *Matrix Computations*, 4th ed., sec. 3.4; section cited from memory), vectorised across
-the members of a block.
+by simplified Newton iterations per member (Hairer & Wanner 1996, *Solving Ordinary
+Differential Equations II*, sec. IV.8, cited from memory), from the explicit Euler predictor:
+the matrix ``I - h theta S dR/dy`` is taken at the predictor and factored once per step by
+Gaussian elimination with partial pivoting (Golub & Van Loan 2013, *Matrix Computations*,
+4th ed., sec. 3.4; section cited from memory), touching only the static pattern of its
+non-zeros and their fill-in while no member needs a row interchange, vectorised across the
+members of a block.
 """
 
 from __future__ import annotations
@@ -39,7 +41,7 @@ from ensemble.model.compile import CompiledModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
 
-GENERATOR_VERSION = 1
+GENERATOR_VERSION = 2
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
 
@@ -142,59 +144,45 @@ def interpolation_segment(days, t):
 # ------------------------------------------------------------------ linear solve
 
 
-def solve_block(matrix, rhs, pivot_row, pivot_size, factor, trouble, columns):
-    """Solve ``matrix[:, :, b] x = rhs[:, b]`` for every member b of a block, in place.
+def factor_pivoting(matrix, first, pivots, pivot_size, factor, trouble, columns):
+    """Columns ``first`` .. n-1 of the LU factorisation with partial pivoting (Golub & Van
+    Loan 2013, sec. 3.4) of ``matrix[:, :, b]`` for every member b of a block, in place,
+    the members loop innermost so that it vectorises.
 
-    Gaussian elimination with partial pivoting (Golub & Van Loan 2013, sec. 3.4), the
-    members loop innermost so that it vectorises; the solution replaces ``rhs``.  Updates
-    whose multiplier, or whose pivot-row entry, is zero for every member of the block are
-    skipped: they would leave every finite entry unchanged, and with the unknowns ordered
-    to limit fill-in (:func:`elimination_order`) this skips most of the work for the sparse
-    rows of epidemic models.
-
-    ``trouble[b]`` is 2 where the matrix holds a non-finite entry, 1 where a pivot is
-    exactly zero (singular: LAPACK ``gesv``'s test), else 0.  ``pivot_row``,
-    ``pivot_size`` and ``factor`` are (B,) work arrays, ``columns`` an (n,) int64 one.
+    The general path of :func:`factor_block`, taken from the first column where some
+    member needs a row interchange.  Row k's interchange is recorded in ``pivots[k, b]``
+    and applied to columns k .. n-1 (the multipliers stay where they were computed, as
+    :func:`solve_factored` replays them); the multipliers replace the entries below the
+    diagonal.  Updates whose multiplier, or whose pivot-row entry, is zero for every
+    member of the block are skipped: they would leave every finite entry unchanged.  Sets
+    ``trouble[b]`` to 1 where a pivot is exactly zero (singular: LAPACK ``gesv``'s test)
+    unless it is already set.  ``pivot_size`` and ``factor`` are (B,) work arrays,
+    ``columns`` an (n,) int64 one.
     """
     n = matrix.shape[0]
     width = matrix.shape[2]
-    for b in range(width):
-        trouble[b] = 0
-        pivot_size[b] = 0.0
-    for i in range(n):
-        for j in range(n):
-            for b in range(width):
-                pivot_size[b] += matrix[i, j, b] - matrix[i, j, b]
-    for b in range(width):
-        if pivot_size[b] != 0.0:
-            trouble[b] = 2
-    for k in range(n):
+    for k in range(first, n):
         for b in range(width):
-            pivot_row[b] = k
+            pivots[k, b] = k
             pivot_size[b] = abs(matrix[k, k, b])
         for i in range(k + 1, n):
             for b in range(width):
                 size = abs(matrix[i, k, b])
                 if size > pivot_size[b]:
                     pivot_size[b] = size
-                    pivot_row[b] = i
+                    pivots[k, b] = i
         swaps = 0
         for b in range(width):
             if pivot_size[b] == 0.0 and trouble[b] == 0:
                 trouble[b] = 1
-            swaps += pivot_row[b] != k
+            swaps += pivots[k, b] != k
         if swaps:
             for j in range(k, n):
                 for b in range(width):
-                    other = pivot_row[b]
+                    other = pivots[k, b]
                     held = matrix[k, j, b]
                     matrix[k, j, b] = matrix[other, j, b]
                     matrix[other, j, b] = held
-            for b in range(width):
-                other = pivot_row[b]
-                held = rhs[k, b]
-                rhs[k, b] = rhs[other, b]
-                rhs[other, b] = held
         used = 0
         for j in range(k + 1, n):
             nonzero = 0
@@ -207,6 +195,7 @@ def solve_block(matrix, rhs, pivot_row, pivot_size, factor, trouble, columns):
             nonzero = 0
             for b in range(width):
                 factor[b] = matrix[i, k, b] / matrix[k, k, b]
+                matrix[i, k, b] = factor[b]
                 nonzero += factor[b] != 0.0
             if nonzero == 0:
                 continue
@@ -214,21 +203,121 @@ def solve_block(matrix, rhs, pivot_row, pivot_size, factor, trouble, columns):
                 j = columns[c]
                 for b in range(width):
                     matrix[i, j, b] -= factor[b] * matrix[k, j, b]
+
+
+def factor_block(matrix, lower_start, lower, upper_start, upper, pivots, pivot_size, factor,
+                 trouble, columns):
+    """LU factorisation with partial pivoting of ``matrix[:, :, b]`` for every member b of
+    a block, in place; returns the first column where some member needed a row
+    interchange (n if none), which :func:`solve_factored` takes.
+
+    Gaussian elimination with partial pivoting (Golub & Van Loan 2013, sec. 3.4) on a
+    matrix whose entries outside a static pattern are zero: ``lower[lower_start[k]:
+    lower_start[k + 1]]`` are the rows below k, ``upper[upper_start[k]:upper_start[k +
+    1]]`` the columns right of k, of the pattern's non-zeros once the fill of elimination
+    without interchanges is added (:func:`factor_pattern`), both increasing.  While no
+    member needs an interchange (no entry below the diagonal larger in magnitude than the
+    pivot: the test of partial pivoting), only the pattern is touched; from the first
+    column where one does, :func:`factor_pivoting` takes over (entries outside the pattern
+    may then be non-zero: the caller clears the matrix before its next use).  Both paths
+    do the same operations in the same order on a member that needs no interchange, so
+    its factors do not depend on the other members of its block.  The multipliers replace
+    the entries below the diagonal.
+
+    ``trouble[b]`` is 2 where the matrix holds a non-finite entry, 1 where a pivot is
+    exactly zero (singular: LAPACK ``gesv``'s test), else 0.  ``pivots`` is an (n, B)
+    int64 array, ``pivot_size`` and ``factor`` (B,) work arrays, ``columns`` an (n,) int64
+    one.
+    """
+    n = matrix.shape[0]
+    width = matrix.shape[2]
+    for b in range(width):
+        trouble[b] = 0
+        pivot_size[b] = 0.0
+    for k in range(n):
+        for b in range(width):
+            pivot_size[b] += matrix[k, k, b] - matrix[k, k, b]
+        for e in range(lower_start[k], lower_start[k + 1]):
+            i = lower[e]
             for b in range(width):
-                rhs[i, b] -= factor[b] * rhs[k, b]
+                pivot_size[b] += matrix[i, k, b] - matrix[i, k, b]
+        for e in range(upper_start[k], upper_start[k + 1]):
+            j = upper[e]
+            for b in range(width):
+                pivot_size[b] += matrix[k, j, b] - matrix[k, j, b]
+    for b in range(width):
+        if pivot_size[b] != 0.0:
+            trouble[b] = 2
+    for k in range(n):
+        swaps = 0
+        for e in range(lower_start[k], lower_start[k + 1]):
+            i = lower[e]
+            for b in range(width):
+                swaps += abs(matrix[i, k, b]) > abs(matrix[k, k, b])
+        if swaps:
+            factor_pivoting(matrix, k, pivots, pivot_size, factor, trouble, columns)
+            return k
+        for b in range(width):
+            if matrix[k, k, b] == 0.0 and trouble[b] == 0:
+                trouble[b] = 1
+        for e in range(lower_start[k], lower_start[k + 1]):
+            i = lower[e]
+            for b in range(width):
+                factor[b] = matrix[i, k, b] / matrix[k, k, b]
+                matrix[i, k, b] = factor[b]
+            for c in range(upper_start[k], upper_start[k + 1]):
+                j = upper[c]
+                for b in range(width):
+                    matrix[i, j, b] -= factor[b] * matrix[k, j, b]
+    return n
+
+
+def solve_factored(matrix, rhs, lower_start, lower, upper_start, upper, first, pivots):
+    """Solve ``A x = rhs[:, b]`` for every member b of a block, in place, with the factors
+    of A left in ``matrix`` by :func:`factor_block` (which returned ``first``).
+
+    Forward substitution replays the elimination on the right-hand side (the pattern's
+    rows up to column ``first``, then every row with the recorded interchanges), and back
+    substitution runs over the pattern's columns, or over every column once rows were
+    interchanged (Golub & Van Loan 2013, sec. 3.1 and 3.4).  The operations on ``rhs``
+    are those elimination would do on it alongside the matrix, in the same order.
+    """
+    n = matrix.shape[0]
+    width = matrix.shape[2]
+    for k in range(first):
+        for e in range(lower_start[k], lower_start[k + 1]):
+            i = lower[e]
+            for b in range(width):
+                rhs[i, b] -= matrix[i, k, b] * rhs[k, b]
+    for k in range(first, n):
+        for b in range(width):
+            other = pivots[k, b]
+            held = rhs[k, b]
+            rhs[k, b] = rhs[other, b]
+            rhs[other, b] = held
+        for i in range(k + 1, n):
+            for b in range(width):
+                rhs[i, b] -= matrix[i, k, b] * rhs[k, b]
     for i in range(n - 1, -1, -1):
-        for j in range(i + 1, n):
-            nonzero = 0
-            for b in range(width):
-                nonzero += matrix[i, j, b] != 0.0
-            if nonzero:
+        if first == n:
+            for c in range(upper_start[i], upper_start[i + 1]):
+                j = upper[c]
                 for b in range(width):
                     rhs[i, b] -= matrix[i, j, b] * rhs[j, b]
+        else:
+            for j in range(i + 1, n):
+                nonzero = 0
+                for b in range(width):
+                    nonzero += matrix[i, j, b] != 0.0
+                if nonzero:
+                    for b in range(width):
+                        rhs[i, b] -= matrix[i, j, b] * rhs[j, b]
         for b in range(width):
             rhs[i, b] /= matrix[i, i, b]
 
 
 def elimination_order(pattern: list[set[int]]) -> list[int]:
+
     """An order of the unknowns that limits fill-in: greedy minimum Markowitz count
     ``(r - 1)(c - 1)`` over the remaining diagonal pivots, with the fill each elimination
     creates (Markowitz 1957, "The elimination form of the inverse and its application to
@@ -249,6 +338,30 @@ def elimination_order(pattern: list[set[int]]) -> list[int]:
                 rows[i] |= rows[pivot] & remaining
         order.append(pivot)
     return order
+
+
+def factor_pattern(pattern: list[set[int]]) -> tuple[list[int], list[int], list[int],
+                                                     list[int]]:
+    """The non-zeros of the LU factors of a matrix with non-zeros ``pattern`` (row i's
+    columns, the diagonal implied) eliminated in its own order without interchanges:
+    symbolic factorisation (Duff, Erisman & Reid 2017, ch. 9, cited from memory).
+
+    Returns ``lower_start, lower, upper_start, upper`` in the compressed form
+    :func:`factor_block` reads: the rows below k holding a non-zero in column k, and the
+    columns right of k holding one in row k, each increasing.
+    """
+    rows = [set(row) | {i} for i, row in enumerate(pattern)]
+    lower_start, lower, upper_start, upper = [0], [], [0], []
+    for k in range(len(rows)):
+        right = sorted(j for j in rows[k] if j > k)
+        below = [i for i in range(k + 1, len(rows)) if k in rows[i]]
+        for i in below:
+            rows[i].update(right)
+        lower += below
+        upper += right
+        lower_start.append(len(lower))
+        upper_start.append(len(upper))
+    return lower_start, lower, upper_start, upper
 
 
 # ------------------------------------------------------------------ emitter
@@ -476,10 +589,11 @@ class KernelSource:
         if method.implicit:
             emit("    r0 = np.empty((N_FLOWS, BLOCK))")
             emit("    y1 = np.empty((N_STATES, BLOCK))")
-            emit("    jac = np.empty((N_STATES, N_STATES, BLOCK))")
+            emit("    jac = np.zeros((N_STATES, N_STATES, BLOCK))")
             emit("    upd = np.empty((N_STATES, BLOCK))")
             emit("    active = np.empty(BLOCK, np.bool_)")
-            emit("    pivot_row = np.empty(BLOCK, np.int64)")
+            emit("    pivots = np.empty((N_STATES, BLOCK), np.int64)")
+            emit("    first = N_STATES")
             emit("    pivot_size = np.empty(BLOCK)")
             emit("    factor = np.empty(BLOCK)")
             emit("    trouble = np.empty(BLOCK, np.int8)")
@@ -527,9 +641,13 @@ class KernelSource:
             f"NEWTON_NOT_CONVERGED = {NEWTON_NOT_CONVERGED}",
             "",
         ]
+        if method.implicit:
+            for name, values in zip(("LOWER_START", "LOWER", "UPPER_START", "UPPER"),
+                                    self._factor_pattern):
+                header.append(f"{name} = np.array({values!r}, dtype=np.int64)")
         support = [_min, _max, _sign, step_value_index, interpolation_segment]
         if method.implicit:
-            support.append(solve_block)
+            support += [factor_pivoting, factor_block, solve_factored]
         for function in support:
             header.append("")
             header.append("@njit(inline='always', error_model='numpy')" if function in
@@ -581,6 +699,19 @@ class KernelSource:
         order = elimination_order([{col for (row, col) in self._entries if row == s}
                                    for s in range(n)])
         self._place = {state: index for index, state in enumerate(order)}
+        placed: list[set[int]] = [set() for _ in range(n)]
+        for s, col in self._entries:
+            placed[self._place[s]].add(self._place[col])
+        self._factor_pattern = factor_pattern(placed)
+        # every position of the factors' pattern is written at each iteration (a diagonal
+        # without partials is 1, a fill-in 0), so the solve finds nothing stale there
+        lower_start, lower, upper_start, upper = self._factor_pattern
+        for k in range(n):
+            positions = [(k, k)] + [(lower[e], k) for e in range(lower_start[k],
+                                                                 lower_start[k + 1])]
+            positions += [(k, upper[e]) for e in range(upper_start[k], upper_start[k + 1])]
+            for row, col in positions:
+                self._entries.setdefault((order[row], order[col]), [])
         self._matrix_parts: list[list[tuple[int, int]]] = [[]]
         for key in self._entries:
             if len(self._matrix_parts[-1]) >= MATRIX_PART_ENTRIES:
@@ -613,10 +744,13 @@ class KernelSource:
         lines += body
         name = dict(zip(needed, values))
         for s, col in keys:
-            terms = _signed_sum([(sign, name[pair]) for sign, pair in self._entries[(s, col)]])
             diagonal = "1.0" if s == col else "0.0"
-            lines.append(f"{inner}jac[{self._place[s]}, {self._place[col]}, b] = "
-                         f"{diagonal} - ht * ({terms})")
+            value = diagonal
+            if self._entries[(s, col)]:
+                terms = _signed_sum([(sign, name[pair])
+                                     for sign, pair in self._entries[(s, col)]])
+                value = f"{diagonal} - ht * ({terms})"
+            lines.append(f"{inner}jac[{self._place[s]}, {self._place[col]}, b] = {value}")
         return lines
 
     def _context(self, indent: str, stages: list[tuple[str, str]],
@@ -760,10 +894,6 @@ class KernelSource:
 
         # Newton iterations
         lines.append(f"{indent}for iteration in range(newton_max_iter):")
-        lines.append(f"{indent}    jac[:, :, :] = 0.0")
-        for s in range(n):
-            lines.append(f"{indent}    for b in range(BLOCK):")
-            lines.append(f"{indent}        jac[{self._place[s]}, {self._place[s]}, b] = 1.0")
         lines.append(f"{indent}    for b in range(BLOCK):")
         deep = indent + "        "
         prelude, member_names = self._member_prelude(deep, used_params, param_only)
@@ -782,12 +912,20 @@ class KernelSource:
         place = self._place
         for s in range(n):
             lines.append(f"{deep}upd[{place[s]}, b] = w_{s} - target_{s}")
-        # matrix I - h theta S dR/dy in parts (small functions compile much faster)
+        # simplified Newton: the matrix I - h theta S dR/dy at the first iterate, factored
+        # once per step; outside the factors' pattern it must be zero, so it is cleared
+        # after a factorisation that interchanged rows
+        lines.append(f"{indent}    if iteration == 0:")
+        lines.append(f"{indent}        if first < N_STATES:")
+        lines.append(f"{indent}            jac[:, :, :] = 0.0")
+        # in parts (small functions compile much faster)
         for part in range(len(self._matrix_parts)):
-            lines.append(f"{indent}    newton_matrix_{part}(m0, step, h, p, "
+            lines.append(f"{indent}        newton_matrix_{part}(m0, step, h, p, "
                          f"{''.join(a + ', ' for a in self._schedule_arguments())}y1, jac)")
-        lines.append(f"{indent}    solve_block(jac, upd, pivot_row, pivot_size, factor, "
-                     "trouble, columns)")
+        lines.append(f"{indent}        first = factor_block(jac, LOWER_START, LOWER, "
+                     "UPPER_START, UPPER, pivots, pivot_size, factor, trouble, columns)")
+        lines.append(f"{indent}    solve_factored(jac, upd, LOWER_START, LOWER, UPPER_START, "
+                     "UPPER, first, pivots)")
         # a singular member is not converged; a non-finite one leaves (it will be flagged
         # non-finite); the others move by the update and stop once it is <= tol
         lines.append(f"{indent}    remaining = 0")

@@ -39,10 +39,13 @@ Theta method (theta = 1 backward Euler, 1/2 trapezoid) for step k, from ``y0``:
 - at ``t_{k+1} = (k + 1) * h``, with the schedules of step k as above,
   ``inc(y1) = h * ((1 - theta) * R0 + theta * R(t_{k+1}, y1))`` and the residual
   ``F(y1) = y1 - (y0 (+) S inc(y1))``;
-- Newton update ``d`` solves ``(I - (h * theta) * J) d = -F`` with ``J = S dR/dy`` at
-  ``y1`` and the rates at ``t_{k+1}`` (see :class:`_NewtonMatrix`; the matrix entries
-  are ``(-(h * theta)) * J_ij``, plus 1.0 on the diagonal), by LU with partial pivoting
-  (LAPACK ``gesv``) per member through numpy.linalg.solve; ``y1 <- y1 + d``; a member
+- simplified Newton iterations (Hairer & Wanner 1996, *Solving Ordinary Differential
+  Equations II*, sec. IV.8, cited from memory): the update ``d`` solves
+  ``(I - (h * theta) * J) d = -F`` with ``J = S dR/dy`` at the predictor (the first
+  iterate) and the rates at ``t_{k+1}``, one matrix for every iteration of the step
+  (see :class:`_NewtonMatrix`; the matrix entries are ``(-(h * theta)) * J_ij``, plus
+  1.0 on the diagonal), by LU with partial pivoting (LAPACK ``gesv``) per member
+  through numpy.linalg.solve; ``y1 <- y1 + d``; a member
   converges when ``max_i |d_i| <= newton.tol`` and is then frozen (no further
   iterations; the others carry on with compacted copies of their columns).  A member
   whose residual or Jacobian is not finite leaves the iteration (it will be flagged
@@ -285,22 +288,24 @@ class _ChunkStepper:
 
     def _newton(self, t_end: float, y: np.ndarray, y_end: np.ndarray, active: np.ndarray,
                 status: np.ndarray) -> None:
-        """Newton iterations on the members ``active``, updating ``y_end`` in place."""
+        """Simplified Newton iterations on the members ``active``, updating ``y_end`` in
+        place: the Newton matrix is taken at the starting iterate and kept for the step."""
         n_states = y.shape[0]
+        if active.size == 0:
+            return
+        matrices = self.newton_matrix(t_end, y_end[:, active], self.parameters[:, active],
+                                      self.schedule_end[:, active])
+        finite_matrix = np.isfinite(matrices.reshape(active.size, -1)).all(axis=1)
         for _ in range(self.newton.max_iter):
-            if active.size == 0:
-                return
             y0, y1 = y[:, active], y_end[:, active]
-            p, s = self.parameters[:, active], self.schedule_end[:, active]
             end_rates = np.empty((self.stage_rates.shape[1], active.size))
-            self.functions.rates(t_end, y1, p, s, end_rates)
+            self.functions.rates(t_end, y1, self.parameters[:, active],
+                                 self.schedule_end[:, active], end_rates)
             increment = self._theta_increment(self.stage_rates[0][:, active], end_rates,
                                               np.empty_like(end_rates), end_rates)
             residual = np.subtract(y1, self.stoichiometry.apply(y0, increment,
                                                                 np.empty_like(y0)))
-            matrices = self.newton_matrix(t_end, y1, p, s)
-            finite = (np.isfinite(residual).all(axis=0)
-                      & np.isfinite(matrices.reshape(active.size, -1)).all(axis=1))
+            finite = np.isfinite(residual).all(axis=0) & finite_matrix
             update = np.zeros((active.size, n_states))
             solved = np.zeros(active.size, bool)
             update[finite], solved[finite] = _solve_each(matrices[finite],
@@ -308,7 +313,10 @@ class _ChunkStepper:
             y_end[:, active] = y1 + update.T
             status[active[finite & ~solved]] |= NEWTON_NOT_CONVERGED
             converged = np.abs(update).max(axis=1) <= self.newton.tol
-            active = active[finite & solved & ~converged]
+            keep = finite & solved & ~converged
+            active, matrices, finite_matrix = active[keep], matrices[keep], finite_matrix[keep]
+            if active.size == 0:
+                return
         status[active] |= NEWTON_NOT_CONVERGED
 
 
