@@ -20,13 +20,13 @@ subtrees of time alone out of the members loop.  Only our own identifiers and ``
 floats appear in the text; the trees were validated before compilation.
 
 The implicit theta methods solve ``y1 = y0 + h S [(1 - theta) R(t, y0) + theta R(t + h, y1)]``
-by simplified Newton iterations per member (Hairer & Wanner 1996, *Solving Ordinary
-Differential Equations II*, sec. IV.8, cited from memory), from the explicit Euler predictor:
-the matrix ``I - h theta S dR/dy`` is taken at the predictor and factored once per step by
-Gaussian elimination with partial pivoting (Golub & Van Loan 2013, *Matrix Computations*,
-4th ed., sec. 3.4; section cited from memory), touching only the static pattern of its
-non-zeros and their fill-in while no member needs a row interchange, vectorised across the
-members of a block.
+by Newton iterations per member (Hairer & Wanner 1996, *Solving Ordinary Differential
+Equations II*, sec. IV.8, cited from memory), from the explicit Euler predictor, the first
+:data:`~ensemble.integrate.stepper.SHARED_MATRIX_ITERATIONS` sharing the matrix ``I - h theta
+S dR/dy`` of the predictor (simplified Newton).  A matrix is factored by Gaussian elimination
+with partial pivoting (Golub & Van Loan 2013, *Matrix Computations*, 4th ed., sec. 3.4;
+section cited from memory), touching only the static pattern of its non-zeros and their
+fill-in while no member needs a row interchange, vectorised across the members of a block.
 """
 
 from __future__ import annotations
@@ -37,6 +37,7 @@ from collections.abc import Iterable
 
 from ensemble.integrate.methods import Method
 from ensemble.integrate.status import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
+from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS
 from ensemble.model.compile import CompiledModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
@@ -912,10 +913,11 @@ class KernelSource:
         place = self._place
         for s in range(n):
             lines.append(f"{deep}upd[{place[s]}, b] = w_{s} - target_{s}")
-        # simplified Newton: the matrix I - h theta S dR/dy at the first iterate, factored
-        # once per step; outside the factors' pattern it must be zero, so it is cleared
-        # after a factorisation that interchanged rows
-        lines.append(f"{indent}    if iteration == 0:")
+        # the matrix I - h theta S dR/dy of the first iterate serves the first iterations
+        # (simplified Newton), later ones take their own; outside the factors' pattern it
+        # must be zero, so it is cleared after a factorisation that interchanged rows
+        lines.append(f"{indent}    if iteration == 0 or iteration >= "
+                     f"{SHARED_MATRIX_ITERATIONS}:")
         lines.append(f"{indent}        if first < N_STATES:")
         lines.append(f"{indent}            jac[:, :, :] = 0.0")
         # in parts (small functions compile much faster)

@@ -39,13 +39,12 @@ Theta method (theta = 1 backward Euler, 1/2 trapezoid) for step k, from ``y0``:
 - at ``t_{k+1} = (k + 1) * h``, with the schedules of step k as above,
   ``inc(y1) = h * ((1 - theta) * R0 + theta * R(t_{k+1}, y1))`` and the residual
   ``F(y1) = y1 - (y0 (+) S inc(y1))``;
-- simplified Newton iterations (Hairer & Wanner 1996, *Solving Ordinary Differential
-  Equations II*, sec. IV.8, cited from memory): the update ``d`` solves
-  ``(I - (h * theta) * J) d = -F`` with ``J = S dR/dy`` at the predictor (the first
-  iterate) and the rates at ``t_{k+1}``, one matrix for every iteration of the step
-  (see :class:`_NewtonMatrix`; the matrix entries are ``(-(h * theta)) * J_ij``, plus
-  1.0 on the diagonal), by LU with partial pivoting (LAPACK ``gesv``) per member
-  through numpy.linalg.solve; ``y1 <- y1 + d``; a member
+- Newton update ``d`` solves ``(I - (h * theta) * J) d = -F`` with ``J = S dR/dy`` and
+  the rates at ``t_{k+1}`` (see :class:`_NewtonMatrix`; the matrix entries are
+  ``(-(h * theta)) * J_ij``, plus 1.0 on the diagonal), ``J`` taken at the first iterate
+  (the predictor) for the first :data:`SHARED_MATRIX_ITERATIONS` iterations (simplified
+  Newton) and at the current iterate from then on, by LU with partial pivoting (LAPACK
+  ``gesv``) per member through numpy.linalg.solve; ``y1 <- y1 + d``; a member
   converges when ``max_i |d_i| <= newton.tol`` and is then frozen (no further
   iterations; the others carry on with compacted copies of their columns).  A member
   whose residual or Jacobian is not finite leaves the iteration (it will be flagged
@@ -73,6 +72,16 @@ from ensemble.model.compile import CompiledModel, ScheduleSlot
 from ensemble.model.evaluate import RateFunctions
 from ensemble.sampling import Design
 from ensemble.scenario.schema import Newton
+
+SHARED_MATRIX_ITERATIONS = 2
+"""Newton iterations of a theta step that share the Newton matrix of the first iterate
+(simplified Newton, Hairer & Wanner 1996, *Solving Ordinary Differential Equations II*,
+sec. IV.8, cited from memory); later iterations take the matrix of their own iterate.
+Most steps of an epidemic converge by the second iteration, so sharing saves a matrix and
+its factorisation there, while a hard step (a stiff model at a large step) gets Newton's
+quadratic convergence back from the third (measured on an SEIR emptying E at 100 per
+day, h = 1: as many members converge as with a fresh matrix at every iteration; with
+one matrix for the whole step up to twice as many fail)."""
 
 
 @dataclass(frozen=True)
@@ -288,23 +297,23 @@ class _ChunkStepper:
 
     def _newton(self, t_end: float, y: np.ndarray, y_end: np.ndarray, active: np.ndarray,
                 status: np.ndarray) -> None:
-        """Simplified Newton iterations on the members ``active``, updating ``y_end`` in
-        place: the Newton matrix is taken at the starting iterate and kept for the step."""
+        """Newton iterations on the members ``active``, updating ``y_end`` in place, the
+        first :data:`SHARED_MATRIX_ITERATIONS` with the matrix of the first iterate."""
         n_states = y.shape[0]
-        if active.size == 0:
-            return
-        matrices = self.newton_matrix(t_end, y_end[:, active], self.parameters[:, active],
-                                      self.schedule_end[:, active])
-        finite_matrix = np.isfinite(matrices.reshape(active.size, -1)).all(axis=1)
-        for _ in range(self.newton.max_iter):
+        for iteration in range(self.newton.max_iter):
+            if active.size == 0:
+                return
             y0, y1 = y[:, active], y_end[:, active]
+            p, s = self.parameters[:, active], self.schedule_end[:, active]
             end_rates = np.empty((self.stage_rates.shape[1], active.size))
-            self.functions.rates(t_end, y1, self.parameters[:, active],
-                                 self.schedule_end[:, active], end_rates)
+            self.functions.rates(t_end, y1, p, s, end_rates)
             increment = self._theta_increment(self.stage_rates[0][:, active], end_rates,
                                               np.empty_like(end_rates), end_rates)
             residual = np.subtract(y1, self.stoichiometry.apply(y0, increment,
                                                                 np.empty_like(y0)))
+            if iteration == 0 or iteration >= SHARED_MATRIX_ITERATIONS:
+                matrices = self.newton_matrix(t_end, y1, p, s)
+                finite_matrix = np.isfinite(matrices.reshape(active.size, -1)).all(axis=1)
             finite = np.isfinite(residual).all(axis=0) & finite_matrix
             update = np.zeros((active.size, n_states))
             solved = np.zeros(active.size, bool)
@@ -315,8 +324,6 @@ class _ChunkStepper:
             converged = np.abs(update).max(axis=1) <= self.newton.tol
             keep = finite & solved & ~converged
             active, matrices, finite_matrix = active[keep], matrices[keep], finite_matrix[keep]
-            if active.size == 0:
-                return
         status[active] |= NEWTON_NOT_CONVERGED
 
 
