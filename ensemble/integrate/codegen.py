@@ -684,7 +684,8 @@ class KernelSource:
 
     def _plan_matrix(self) -> None:
         """The structural non-zeros of the Newton matrix, the order of the unknowns in the
-        solve, and the parts the matrix is computed in."""
+        solve, the pattern of its LU factors in that order, and the parts the matrix is
+        computed in."""
         model = self.model
         n = model.n_states
         partial = {(f, state): tree for f, entries in enumerate(model.rate_derivatives)
@@ -704,8 +705,9 @@ class KernelSource:
         for s, col in self._entries:
             placed[self._place[s]].add(self._place[col])
         self._factor_pattern = factor_pattern(placed)
-        # every position of the factors' pattern is written at each iteration (a diagonal
-        # without partials is 1, a fill-in 0), so the solve finds nothing stale there
+        # every position of the factors' pattern is written with each new matrix (a
+        # diagonal without partials is 1, a fill-in 0), so the factorisation finds nothing
+        # stale there
         lower_start, lower, upper_start, upper = self._factor_pattern
         for k in range(n):
             positions = [(k, k)] + [(lower[e], k) for e in range(lower_start[k],
