@@ -118,3 +118,21 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
                                            store))
     assert outputs == [execute.ChunkSaved((1, 0, 12))]
     assert store.saved() == [(0, 6, 12), (1, 0, 12)]
+
+
+def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) -> None:
+    """The store's contract (ensemble/output/store.py): chunks saved during a run reach the
+    durable list in the background, so a resume after a crash of the system keeps them.
+    With the interval at zero every chunk arriving while no batch runs starts one; leaving
+    waits for the last batch."""
+    monkeypatch.setattr(execute, "CHECKPOINT_SECONDS", 0.0)
+    scenario = load_scenario(write_scenario(tmp_path, members=12))
+    store = WorkStore.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
+                           force=False)
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
+    outputs = execute._in_process(scenario, models, keys, "numpy")
+    execute._save_all(store, outputs, execute.Progress(bar=False))
+    durable = (store.work / "durable-chunks").read_text().split()
+    assert durable and set(durable) <= {path.name for path in store.work.glob("chunk-*")}
+    assert "chunk-v0-0000000000-0000000006" in durable

@@ -6,17 +6,27 @@ Work in progress lives in the directory ``<path>.partial``::
     <path>.partial/
         manifest.json              fingerprint and shape of the run (written first)
         driver-marker              token of the running driver (:meth:`WorkStore.mark`)
+        durable-chunks             names of the chunks known to be on stable storage
         chunk-v0-0000000000-0000000500/
                                    one directory per saved chunk of members
             state.npy              (n_reports, n_states, M) float64, time-major
             flow_count.npy         (n_reports, n_flow_elements, M) float64
             members.npz            step_error, observed_order, status, param_<name>,
                                    and the per-member metrics of :mod:`.summary`
+            boot                   the boot of the operating system that wrote it
 
-A chunk is written under a temporary name, every file fsynced, then renamed into place,
-so a process killed at any instant leaves either the whole chunk or none of it (a stray
-temporary is removed on resume).  The result file is written the same way, under a
-temporary name in its destination directory, renamed into place when complete.  Trajectories are stored time-major so that the
+A chunk is written under a temporary name and renamed into place when complete, so a
+process killed at any instant leaves either the whole chunk or none of it (a stray
+temporary is removed on resume).  Chunks are not fsynced one by one: a killed process
+loses nothing the operating system has accepted, and syncing every chunk would make the
+disk, not the cores, set the pace of a run (4 GB for 200,000 SEIR members over a year).
+Only a crash of the operating system itself can lose written data, so a chunk is trusted
+on resume when it was written in the current boot (``boot``) or was later made durable
+(:meth:`WorkStore.make_durable`, which the run engine calls every minute and which lists
+the chunk in ``durable-chunks``); any other chunk is recomputed.
+
+The result file is written under a temporary name in its destination directory, fsynced
+and renamed into place when complete.  Trajectories are stored time-major so that the
 quantiles over members are computed block of times by block of times, reading every
 chunk file once, whatever the number of members.
 """
@@ -26,7 +36,10 @@ from __future__ import annotations
 import errno
 import json
 import os
+import math
 import shutil
+import socket
+import threading
 from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -34,6 +47,7 @@ from typing import BinaryIO
 
 import netCDF4
 import numpy as np
+import psutil
 
 from ensemble.integrate.check import ChunkResult
 from ensemble.output.dataset import (
@@ -62,6 +76,10 @@ the same token back sees the same directory, and may save chunks there itself.""
 CHUNK_PREFIX = "chunk-"
 TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
+BOOT_FILE = "boot"
+"""File in each chunk directory naming the boot of the system that wrote it."""
+JOURNAL = "durable-chunks"
+"""File in the work directory listing, a name a line, the chunks made durable."""
 DEFAULT_BLOCK_BYTES = 128 * 2**20
 """Memory for one block of trajectories gathered over all members in :meth:`finish`."""
 FINISH_THREADS = min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
@@ -185,6 +203,7 @@ class WorkStore:
                     "afresh")
             for stray in self.work.glob(f"{TEMP_PREFIX}*"):
                 shutil.rmtree(stray, ignore_errors=True)
+            self._drop_untrusted_chunks()
             return
         if self.work.exists():
             shutil.rmtree(self.work)
@@ -204,6 +223,28 @@ class WorkStore:
                 "variants": list(layout.variants), "members": layout.members,
                 "n_states": layout.n_states, "n_flow_elements": layout.n_flow_elements,
                 "n_reports": layout.n_reports, "parameters": list(layout.parameters)}
+
+    def _drop_untrusted_chunks(self) -> None:
+        """Remove the chunks that a crash of the operating system may have left
+        incomplete: those neither written in this boot nor listed as durable."""
+        durable = set(self._journal())
+        current = boot_identity()
+        for directory in self.work.glob(f"{CHUNK_PREFIX}v*"):
+            if directory.name in durable:
+                continue
+            try:
+                written_in = (directory / BOOT_FILE).read_text()
+            except OSError:
+                written_in = None
+            if written_in != current:
+                shutil.rmtree(directory, ignore_errors=True)
+
+    def _journal(self) -> list[str]:
+        """Names of the chunk directories made durable."""
+        try:
+            return (self.work / JOURNAL).read_text().split()
+        except OSError:
+            return []
 
     def _read_manifest(self) -> dict[str, object] | None:
         try:
@@ -296,7 +337,8 @@ class WorkStore:
 
     def save(self, key: ChunkKey, result: ChunkResult,
              reported: Mapping[str, np.ndarray]) -> None:
-        """Store one finished chunk durably (temporary name, fsync, rename).
+        """Store one finished chunk (temporary name, then rename; see the module's note on
+        durability and :meth:`make_durable`).
 
         Saving the same key again replaces the chunk.  Processes may save different
         keys at once; when two save the same key at once (a task rerun while its first
@@ -346,9 +388,12 @@ class WorkStore:
             temporary.mkdir()
             for name in STREAMED:
                 time_major = np.ascontiguousarray(getattr(result, name).transpose(2, 1, 0))
-                _write_durably(temporary / f"{name}.npy", lambda f: np.save(f, time_major))
-            _write_durably(temporary / MEMBER_FILE, lambda f: np.savez(f, **per_member))
-            _fsync_directory(temporary)
+                with open(temporary / f"{name}.npy", "wb") as handle:
+                    _preallocate(handle, time_major.nbytes + NPY_HEADER_ROOM)
+                    np.save(handle, time_major)
+                    handle.truncate()
+            np.savez(temporary / MEMBER_FILE, **per_member)
+            (temporary / BOOT_FILE).write_text(boot_identity())
             if final.exists():
                 shutil.rmtree(final)
             try:
@@ -357,9 +402,34 @@ class WorkStore:
                 if error.errno not in (errno.EEXIST, errno.ENOTEMPTY):
                     raise
                 shutil.rmtree(temporary)    # another process saved this key meanwhile
-            _fsync_directory(self.work)
         except OSError as error:
             shutil.rmtree(temporary, ignore_errors=True)
+            raise StoreWriteError(_describe(error, self.work)) from error
+
+    def make_durable(self, keys: Sequence[ChunkKey]) -> None:
+        """Put the saved chunks ``keys`` on stable storage (fsync every file) and list them
+        in the journal, so that a resume after a crash of the operating system keeps
+        them.  Safe to call from a thread while other chunks are being saved.
+
+        Raises
+        ------
+        StoreWriteError : a file could not be synced or the journal written.
+        """
+        names = []
+        try:
+            for key in keys:
+                directory = self._chunk_directory(key)
+                for file in directory.iterdir():
+                    with open(file, "rb") as handle:
+                        os.fsync(handle.fileno())
+                _fsync_directory(directory)
+                names.append(directory.name)
+            _fsync_directory(self.work)
+            with open(self.work / JOURNAL, "a") as journal:
+                journal.write("".join(f"{name}\n" for name in names))
+                journal.flush()
+                os.fsync(journal.fileno())
+        except OSError as error:
             raise StoreWriteError(_describe(error, self.work)) from error
 
     def load(self, key: ChunkKey) -> tuple[ChunkResult, dict[str, np.ndarray]]:
@@ -474,8 +544,9 @@ class WorkStore:
         rows) of at most ``block_bytes``; each chunk file is read once.
 
         Blocks are independent, so :data:`FINISH_THREADS` threads gather and reduce one
-        each at a time (numpy's sort, most of the work, releases the GIL); memory stays
-        within ``FINISH_THREADS * block_bytes``.
+        each at a time (numpy's sort, most of the work, releases the GIL); each thread
+        reuses its buffers from block to block, so memory stays within about
+        ``FINISH_THREADS * block_bytes`` and is touched once, not once a block.
         """
         layout = self.layout
         probabilities = layout.scenario.output.quantiles
@@ -483,22 +554,24 @@ class WorkStore:
         results = {name: np.empty((len(layout.variants), len(probabilities), rows[name],
                                    layout.n_reports)) for name in STREAMED}
 
+        workspace = threading.local()
+
         def reduce_block(name: str, variant: int, times: slice, row_range: slice) -> int:
             """Quantiles of one block into ``results``; the block's size in bytes."""
             count = int(included[variant].sum())
-            block = np.empty((times.stop - times.start, row_range.stop - row_range.start,
-                              count))
+            shape = (times.stop - times.start, row_range.stop - row_range.start)
+            block = _reusable(workspace, "block", (*shape, count))
             position = 0
             for v, first, end in keys:
                 if v != variant:
                     continue
                 chosen = included[variant, first:end]
                 size = int(chosen.sum())
-                stored = np.load(self._chunk_directory((variant, first, end))
-                                 / f"{name}.npy", mmap_mode="r")[times, row_range]
+                stored = _reusable(workspace, "stored", (*shape, end - first))
+                _read_slab(self._chunk_directory((variant, first, end)) / f"{name}.npy",
+                           times, row_range, stored)
                 block[..., position:position + size] = (
                     stored if size == end - first else stored[..., chosen])
-                del stored
                 position += size
             values = quantiles(block, probabilities, axis=-1, overwrite_input=True)
             results[name][variant, :, row_range, times] = values.transpose(0, 2, 1)
@@ -529,6 +602,30 @@ class WorkStore:
                     variable[variant, first:end] = file_shape(self.layout, name,
                                                               member_major)[0]
                     del stored, member_major
+
+
+def _reusable(workspace: threading.local, name: str, shape: tuple[int, ...]) -> np.ndarray:
+    """A float64 array of ``shape`` over the thread's buffer ``name``, grown as needed."""
+    size = math.prod(shape)
+    buffer = getattr(workspace, name, None)
+    if buffer is None or buffer.size < size:
+        buffer = np.empty(size)
+        setattr(workspace, name, buffer)
+    return buffer[:size].reshape(shape)
+
+
+def _read_slab(path: Path, times: slice, rows: slice, out: np.ndarray) -> None:
+    """Read ``[times, rows]`` of the time-major float64 ``.npy`` file ``path`` into the
+    contiguous ``out``: one read, as the slab is contiguous in the file when it spans
+    whole rows or a single time (the blocks of :func:`block_plan`)."""
+    with open(path, "rb") as handle:
+        version = np.lib.format.read_magic(handle)
+        shape, _, _ = (np.lib.format.read_array_header_1_0(handle) if version == (1, 0)
+                       else np.lib.format.read_array_header_2_0(handle))
+        n_rows, members = shape[1], shape[2]
+        handle.seek(handle.tell() + (times.start * n_rows + rows.start) * members * 8)
+        if handle.readinto(memoryview(out).cast("B")) != out.nbytes:
+            raise OSError(errno.EIO, f"{path} is shorter than its header says")
 
 
 def block_plan(members: int, rows: int, times: int, block_bytes: int
@@ -596,6 +693,36 @@ def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
         else:
             merged.append((start, stop))
     return merged
+
+
+NPY_HEADER_ROOM = 4096
+"""Bytes reserved for the header of an ``.npy`` file beyond its data."""
+
+
+def _preallocate(handle: BinaryIO, size: int) -> None:
+    """Reserve ``size`` bytes for a file about to be written in full.
+
+    Writing into reserved blocks avoids allocating them piecemeal as the data arrives,
+    which on this project's test machines (ext4) made writing a chunk 10 times slower
+    (70 ms against 5 ms for 31 MB).  Where the system cannot reserve space the file is
+    written as it is; a full disk shows in the write that follows.
+    """
+    reserve = getattr(os, "posix_fallocate", None)
+    if reserve is None:
+        return
+    try:
+        reserve(handle.fileno(), 0, size)
+    except OSError:
+        pass
+
+
+def boot_identity() -> str:
+    """An identifier of the running boot of this machine's operating system: data
+    written in this boot and not lost to a crash is still there."""
+    try:
+        return Path("/proc/sys/kernel/random/boot_id").read_text().strip()
+    except OSError:
+        return f"{socket.gethostname()}-{psutil.boot_time():.0f}"
 
 
 def _write_durably(path: Path, write: Callable[[BinaryIO], object]) -> None:

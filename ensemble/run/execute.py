@@ -12,12 +12,10 @@ once and forgets it.  Memory stays bounded whatever the number of members.
 
 from __future__ import annotations
 
+import concurrent.futures
 import copyreg
-import logging
-import os
-import signal
 import sys
-import threading
+import time
 import types
 from collections.abc import Callable, Generator, Iterator, Mapping, Sequence
 from contextlib import closing, contextmanager
@@ -25,15 +23,15 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from distributed import Client, Future, LocalCluster, as_completed
-from distributed.diagnostics.plugin import WorkerPlugin
+from distributed import Client, Future, as_completed
 
 from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.integrate.codegen import block_size
 from ensemble.integrate.methods import METHODS
 from ensemble.model.compile import CompiledModel, compile_model
 from ensemble.output.store import ChunkKey, ResultLayout, StoreWriteError, WorkStore
-from ensemble.run.clusters import THREAD_LIMITS, ClusterProfile, jobqueue_cluster
+from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
+from ensemble.run.local import LocalStart, available_cores
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
 from ensemble.scenario.schema import Scenario
@@ -44,15 +42,13 @@ run 5 to 13 times faster than the numpy reference and are cached on disk after t
 first compilation (``scripts/benchmark.py``).  ``--backend numpy`` selects the readable
 reference; the two agree to 1e-12 relative (``tests/test_compiled_backend.py``)."""
 
+CHECKPOINT_SECONDS = 60.0
+"""Seconds between two calls of :meth:`WorkStore.make_durable` on the chunks saved
+meanwhile: a crash of the operating system loses at most about this much work."""
+
 IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
 driver saves a finished chunk, few enough that unsaved results stay bounded."""
-
-SINGLE_THREAD_ENV = {name: "1" for name in THREAD_LIMITS}
-"""Environment of local worker processes: one worker process per core, so BLAS and numba
-inside a worker use one thread each and the cores are not oversubscribed (batch worker
-jobs export the same, :func:`ensemble.run.clusters.environment_lines`)."""
-
 
 def read_only(items: dict) -> types.MappingProxyType:
     """A read-only view of ``items`` (what a pickled read-only mapping becomes again)."""
@@ -137,27 +133,24 @@ def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
 # --------------------------------------------------------------------------- executors
 
 
-def available_cores() -> int:
-    """Cores this process may run on."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # not Linux
-        return os.cpu_count() or 1
-
-
 @contextmanager
 def open_client(workers: int | None = None, address: str | None = None,
-                cluster: ClusterProfile | None = None) -> Iterator[Client]:
+                cluster: ClusterProfile | None = None, started: LocalStart | None = None
+                ) -> Iterator[Client]:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
     ----------
     workers : worker processes of a local cluster (default: one per core), each with one
-        thread and single-threaded numerical libraries (:data:`SINGLE_THREAD_ENV`).
+        thread and single-threaded numerical libraries
+        (:data:`ensemble.run.local.SINGLE_THREAD_ENV`).
     address : a running scheduler to connect to instead (``tcp://host:8786``); its
         workers are used as they are.
     cluster : a batch-system profile: worker jobs started by dask-jobqueue, kept at the
         profile's size and cancelled on leaving (:mod:`ensemble.run.clusters`).
+    started : a local cluster already being started (:class:`LocalStart`), used
+        instead of starting one (``workers`` is then ignored); on leaving, its closing
+        only begins (:meth:`LocalStart.release`): its owner closes it.
     """
     if cluster is not None:
         with jobqueue_cluster(cluster) as batch, Client(batch) as client:
@@ -170,31 +163,17 @@ def open_client(workers: int | None = None, address: str | None = None,
         finally:
             client.close()
         return
-    local = LocalCluster(
-        n_workers=workers or available_cores(), threads_per_worker=1, processes=True,
-        dashboard_address=":0", silence_logs=logging.ERROR, env=dict(SINGLE_THREAD_ENV),
-    )
+    if started is not None:
+        try:
+            yield started.client()
+        finally:
+            started.release()   # its owner waits for the close
+        return
+    local = LocalStart(workers)
     try:
-        with Client(local) as client:
-            client.register_plugin(LeaveInterruptsToDriver())
-            yield client
+        yield local.client()
     finally:
         local.close()
-
-
-class LeaveInterruptsToDriver(WorkerPlugin):
-    """Makes a local worker process ignore SIGINT.
-
-    Ctrl-C on a terminal reaches every process of the foreground group; the driver
-    answers it by closing the cluster, so the workers need not (and would only print
-    tracebacks).
-    """
-
-    name = "ensemble-leave-interrupts-to-driver"
-
-    def setup(self, worker) -> None:
-        if threading.current_thread() is threading.main_thread():
-            signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _dashboard_link(client: Client) -> str | None:
@@ -342,7 +321,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                  address: str | None = None, cluster: ClusterProfile | None = None,
                  resume: bool = False, force: bool = False,
                  progress: Progress | None = None, members: tuple[int, int] | None = None,
-                 finish: Callable[[WorkStore], Path] | None = None) -> Path:
+                 finish: Callable[[WorkStore], Path] | None = None,
+                 started: LocalStart | None = None) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
@@ -370,6 +350,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         :mod:`ensemble.run.shards`); default all.
     finish : what to make of the store once every planned chunk is saved (default
         :meth:`WorkStore.finish`, the result file; a shard writes its part file).
+    started : the local cluster, already being started by the caller, to use when the
+        run goes to a local cluster (the caller closes it).
 
     Returns
     -------
@@ -409,7 +391,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
             if workers == 0 and address is None and cluster is None:
                 _save_all(store, _in_process(scenario, models, keys, backend), progress)
             else:
-                with open_client(workers, address, cluster) as client:
+                with open_client(workers, address, cluster, started) as client:
                     dashboard = _dashboard_link(client)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
@@ -423,11 +405,49 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
 
 def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
               progress: Progress) -> None:
-    """Save each finished chunk as it arrives (unless its worker saved it); on any exit
-    (an interrupt, a failed save) close ``outputs`` at once, so that tasks still queued
-    are cancelled while the client is open."""
-    with closing(outputs):
+    """Save each finished chunk as it arrives (unless its worker saved it), making the
+    saved chunks durable every :data:`CHECKPOINT_SECONDS` in a background thread; on any
+    exit (an interrupt, a failed save) close ``outputs`` at once, so that tasks still
+    queued are cancelled while the client is open."""
+    with closing(outputs), Checkpoints(store) as checkpoints:
         for output in outputs:
             if isinstance(output, ChunkOutput):
                 store.save(output.key, output.result, output.reported)
+            checkpoints.add(output.key)
             progress.advance(output.key[2] - output.key[1])
+
+
+class Checkpoints:
+    """Makes saved chunks durable (:meth:`WorkStore.make_durable`) in a background thread,
+    at most one batch at a time and at most every ``interval`` seconds, so that syncing
+    never holds up the driver.  Leaving the context waits for the batch in progress and
+    raises its error, if any; chunks not yet synced stay trusted within this boot."""
+
+    def __init__(self, store: WorkStore, interval: float | None = None):
+        self.store = store
+        self.interval = CHECKPOINT_SECONDS if interval is None else interval
+        self.waiting: list[ChunkKey] = []
+        self.started = time.monotonic()
+        self.running: concurrent.futures.Future | None = None
+        self.pool = concurrent.futures.ThreadPoolExecutor(1, "ensemble-checkpoint")
+
+    def __enter__(self) -> Checkpoints:
+        return self
+
+    def add(self, key: ChunkKey) -> None:
+        """Chunk ``key`` is saved; start a batch if it is time."""
+        self.waiting.append(key)
+        if self.running is not None:
+            if not self.running.done():
+                return
+            self.running.result()
+            self.running = None
+        if time.monotonic() - self.started >= self.interval:
+            self.running = self.pool.submit(self.store.make_durable, self.waiting)
+            self.waiting = []
+            self.started = time.monotonic()
+
+    def __exit__(self, *exc_info) -> None:
+        self.pool.shutdown(wait=True)
+        if self.running is not None and exc_info[0] is None:
+            self.running.result()
