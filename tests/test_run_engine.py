@@ -136,3 +136,20 @@ def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) 
     durable = (store.work / "durable-chunks").read_text().split()
     assert durable and set(durable) <= {path.name for path in store.work.glob("chunk-*")}
     assert "chunk-v0-0000000000-0000000006" in durable
+
+
+def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -> None:
+    """The engine's contract (ensemble/run/execute.py): a worker writes chunk after chunk
+    into the same arrays (ReportBuffers); each chunk has the bits it has in fresh arrays,
+    including a last, shorter chunk, whatever was left in the arrays before."""
+    from ensemble.integrate.compiled import ReportBuffers
+
+    scenario = load_scenario(write_scenario(tmp_path, members=40))
+    model = compile_model(scenario, scenario.variants[1])
+    buffers = ReportBuffers()
+    for key in [(1, 0, 16), (1, 16, 32), (1, 32, 40), (1, 0, 16)]:
+        reused = execute.compute_chunk(scenario, model, key, "compiled", 1, buffers)
+        fresh = execute.compute_chunk(scenario, model, key, "compiled", 1)
+        for name in ("state", "flow_count", "step_error", "observed_order", "status"):
+            np.testing.assert_array_equal(getattr(reused.result, name),
+                                          getattr(fresh.result, name), err_msg=name)

@@ -15,6 +15,7 @@ from __future__ import annotations
 import concurrent.futures
 import copyreg
 import sys
+import threading
 import time
 import types
 from collections.abc import Callable, Generator, Iterator, Mapping, Sequence
@@ -81,7 +82,7 @@ class ChunkOutput:
 
 def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
                   backend: str = DEFAULT_BACKEND,
-                  kernel_threads: int | None = None) -> ChunkOutput:
+                  kernel_threads: int | None = None, buffers=None) -> ChunkOutput:
     """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
 
     A pure function of its arguments: the same key gives the same bits in any process
@@ -89,7 +90,9 @@ def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
     :func:`~ensemble.integrate.check.integrate_chunk` treats members independently).
     ``kernel_threads`` sets the threads of the compiled backend's kernels in the calling
     thread (1 in a dask worker, whose siblings already use the other cores); None leaves
-    numba's default.
+    numba's default.  With ``buffers`` (see
+    :func:`~ensemble.integrate.check.integrate_chunk`) the trajectories are views of
+    them, to be used before the next chunk.
     """
     if kernel_threads is not None and backend == "compiled":
         from ensemble.integrate.compiled import set_kernel_threads
@@ -98,7 +101,8 @@ def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
     variant, start, end = key
     members = np.arange(start, end, dtype=np.int64)
     design = make_design(scenario, scenario.variants[variant], model, members)
-    result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
+    result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend,
+                             buffers)
     return ChunkOutput(key, result, dict(design.reported))
 
 
@@ -115,11 +119,28 @@ def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkK
     """:func:`compute_chunk`, then save the chunk into ``store`` here when this process
     sees the store's directory (it reads back ``token``, from :meth:`WorkStore.mark`),
     else hand the whole chunk back for the driver to save."""
-    output = compute_chunk(scenario, model, key, backend, kernel_threads)
     if not store.shares_directory(token):
-        return output
+        return compute_chunk(scenario, model, key, backend, kernel_threads)
+    output = compute_chunk(scenario, model, key, backend, kernel_threads,
+                           _thread_buffers(backend))
     store.save(output.key, output.result, output.reported)
     return ChunkSaved(key)
+
+
+_workspace = threading.local()
+
+
+def _thread_buffers(backend: str):
+    """This thread's :class:`~ensemble.integrate.compiled.ReportBuffers` (None for the
+    numpy backend): a worker's chunks are saved one after another, each before the next
+    is computed, so they can all be written into the same arrays."""
+    if backend != "compiled":
+        return None
+    if not hasattr(_workspace, "buffers"):
+        from ensemble.integrate.compiled import ReportBuffers
+
+        _workspace.buffers = ReportBuffers()
+    return _workspace.buffers
 
 
 def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
@@ -198,10 +219,12 @@ Finished = ChunkOutput | ChunkSaved
 
 def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
                 keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
-    """Compute the chunks one after another in this process, without dask.distributed."""
+    """Compute the chunks one after another in this process, without dask.distributed;
+    each output is valid until the next is asked for (they share buffers)."""
+    buffers = _thread_buffers(backend)
     for key in keys:
         try:
-            output = compute_chunk(scenario, models[key[0]], key, backend)
+            output = compute_chunk(scenario, models[key[0]], key, backend, None, buffers)
         except Exception as error:
             raise _chunk_failed(scenario, key, error) from error
         yield output
