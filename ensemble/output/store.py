@@ -50,14 +50,7 @@ import numpy as np
 import psutil
 
 from ensemble.integrate.check import ChunkResult
-from ensemble.output.dataset import (
-    STREAMED,
-    build_dataset,
-    create_streamed_variable,
-    encoding,
-    file_shape,
-)
-from ensemble.output.layout import ParameterInfo, ResultLayout
+from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
@@ -503,6 +496,8 @@ class WorkStore:
 
     def _write_result(self, keys: list[ChunkKey], target: Path) -> None:
         """Write the complete result file to ``target`` and fsync it."""
+        from ensemble.output.dataset import build_dataset, encoding   # xarray: here only
+
         layout = self.layout
         variables = self._gather_members(keys)
         status = variables["status"]
@@ -592,6 +587,8 @@ class WorkStore:
     def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
         """Append ``state`` and ``flow_count`` of every member to the file, chunk by
         chunk."""
+        from ensemble.output.dataset import create_streamed_variable, file_shape
+
         with netCDF4.Dataset(target, "a") as nc:
             for name in STREAMED:
                 variable = create_streamed_variable(nc, self.layout, name)
