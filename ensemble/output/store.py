@@ -51,6 +51,8 @@ import psutil
 
 from ensemble.integrate.check import ChunkResult
 from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
+from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
+                                       chunk_candidates, pilot_brackets, select)
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
@@ -71,6 +73,8 @@ TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
 BOOT_FILE = "boot"
 """File in each chunk directory naming the boot of the system that wrote it."""
+CANDIDATE_PARTS = ("below", "nans", "offsets", "values")
+"""Files ``<name>-<part>.npy`` of a chunk kept as candidates (:class:`Candidates`)."""
 JOURNAL = "durable-chunks"
 """File in the work directory listing, a name a line, the chunks made durable."""
 DEFAULT_BLOCK_BYTES = 128 * 2**20
@@ -126,6 +130,7 @@ class WorkStore:
         """Blocks of trajectories gathered by :meth:`finish` (for tests and tuning)."""
         self.largest_block_bytes = 0
         """Size of the largest of those blocks."""
+        self._brackets: dict[int, dict[str, Brackets]] = {}
 
     # ------------------------------------------------------------------ opening
 
@@ -329,7 +334,8 @@ class WorkStore:
         return end - first
 
     def save(self, key: ChunkKey, result: ChunkResult,
-             reported: Mapping[str, np.ndarray]) -> None:
+             reported: Mapping[str, np.ndarray],
+             brackets: Mapping[str, Brackets] | None = None) -> None:
         """Store one finished chunk (temporary name, then rename; see the module's note on
         durability and :meth:`make_durable`).
 
@@ -343,6 +349,9 @@ class WorkStore:
         result : the chunk's trajectories and diagnostics.
         reported : ``Design.reported`` of the chunk: name -> (M,) or (n_groups, M); every
             name in ``layout.parameters`` must be present (others are ignored).
+        brackets : keep of each trajectory only the candidates for the quantiles inside
+            these brackets (:meth:`brackets`; only for members past the pilot and a result
+            without members' trajectories), instead of every value.
 
         Raises
         ------
@@ -352,6 +361,9 @@ class WorkStore:
         """
         layout = self.layout
         count = self._check_key(key)
+        if brackets is not None and not 0 < self.pilot_members() <= key[1]:
+            raise ValueError(f"chunk {key}: only members past the pilot of a result "
+                             "without members' trajectories are kept as candidates")
         if not np.array_equal(result.members, np.arange(key[1], key[2])):
             raise ValueError(f"chunk {key} holds members {result.members[:3]}...")
         expected = {"state": (count, layout.n_states, layout.n_reports),
@@ -381,10 +393,13 @@ class WorkStore:
             temporary.mkdir()
             for name in STREAMED:
                 time_major = np.ascontiguousarray(getattr(result, name).transpose(2, 1, 0))
-                with open(temporary / f"{name}.npy", "wb") as handle:
-                    _preallocate(handle, time_major.nbytes + NPY_HEADER_ROOM)
-                    np.save(handle, time_major)
-                    handle.truncate()
+                if brackets is None:
+                    _write_npy(temporary / f"{name}.npy", time_major)
+                    continue
+                kept = chunk_candidates(time_major.reshape(-1, count),
+                                        in_summary(result.status), brackets[name])
+                for part in CANDIDATE_PARTS:
+                    _write_npy(temporary / f"{name}-{part}.npy", getattr(kept, part))
             np.savez(temporary / MEMBER_FILE, **per_member)
             (temporary / BOOT_FILE).write_text(boot_identity())
             if final.exists():
@@ -398,6 +413,44 @@ class WorkStore:
         except OSError as error:
             shutil.rmtree(temporary, ignore_errors=True)
             raise StoreWriteError(_describe(error, self.work)) from error
+
+    def pilot_members(self) -> int:
+        """Members at the start of each variant whose trajectories are kept whole and
+        give the brackets of the quantiles (:mod:`.selection`); the members after them
+        may be saved as candidates only.  0 (every member kept whole) when the result
+        holds the members' trajectories, when the ensemble is too small to gain, or when
+        the pilot's trajectories would take more than :data:`PILOT_BYTES`."""
+        layout = self.layout
+        cells = (layout.n_states + layout.n_flow_elements) * layout.n_reports
+        if (layout.scenario.output.members or layout.members < 4 * PILOT_MEMBERS
+                or cells * PILOT_MEMBERS * 8 > PILOT_BYTES):
+            return 0
+        return PILOT_MEMBERS
+
+    def brackets(self, variant: int) -> dict[str, Brackets] | None:
+        """The brackets of each trajectory's quantiles for ``variant``, from its pilot
+        members (the included ones); None while a pilot member is not saved, or without
+        a pilot.  The same saved pilot gives the same brackets."""
+        pilot = self.pilot_members()
+        if not pilot or self.pending([(variant, 0, pilot)]):
+            return None
+        if variant not in self._brackets:
+            pieces: dict[str, list[np.ndarray]] = {name: [] for name in STREAMED}
+            for key in self.saved():
+                if key[0] != variant or key[1] >= pilot:
+                    continue
+                directory = self._chunk_directory(key)
+                with np.load(directory / MEMBER_FILE) as members:
+                    chosen = in_summary(members["status"])
+                chosen[pilot - key[1]:] = False
+                for name in STREAMED:
+                    stored = np.load(directory / f"{name}.npy", mmap_mode="r")
+                    pieces[name].append(stored.reshape(-1, stored.shape[-1])[:, chosen])
+            probabilities = self.layout.scenario.output.quantiles
+            self._brackets[variant] = {
+                name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
+                for name in STREAMED}
+        return self._brackets[variant]
 
     def make_durable(self, keys: Sequence[ChunkKey]) -> None:
         """Put the saved chunks ``keys`` on stable storage (fsync every file) and list them
@@ -431,6 +484,8 @@ class WorkStore:
         directory = self._chunk_directory(key)
         if not directory.is_dir():
             raise KeyError(f"chunk {key} is not saved in {self.work}")
+        if not self._kept_whole(key):
+            raise KeyError(f"chunk {key} keeps candidates for the quantiles only")
         trajectories = {name: np.load(directory / f"{name}.npy").transpose(2, 1, 0)
                         for name in STREAMED}
         with np.load(directory / MEMBER_FILE) as members:
@@ -455,7 +510,7 @@ class WorkStore:
                                  + " not saved")
         return self.saved()
 
-    def finish(self) -> Path:
+    def finish(self, recompute: Callable[[ChunkKey], ChunkResult] | None = None) -> Path:
         """Write the result file and remove the work in progress.
 
         Every member of every variant must be saved.  Per-member metrics come from the
@@ -465,6 +520,9 @@ class WorkStore:
         written to a temporary name in the destination directory, fsynced and renamed to
         ``path`` with :func:`os.replace`; then ``<path>.partial`` is removed.  With
         ``output.members`` false the file leaves out ``state`` and ``flow_count``.
+        Chunks saved as candidates (:meth:`brackets`) give the same quantiles; for the
+        rare time and row whose ranks the pilot's brackets missed, ``recompute(key)``
+        (the chunk computed again, same bits) supplies the whole trajectories.
 
         Raises
         ------
@@ -474,7 +532,7 @@ class WorkStore:
         keys = self._check_complete()
         temporary = self.path.parent / f"{TEMP_PREFIX}{self.path.name}-{os.getpid()}"
         try:
-            self._write_result(keys, temporary)
+            self._write_result(keys, temporary, recompute)
             os.replace(temporary, self.path)
             _fsync_directory(self.path.parent)
         except OSError as error:
@@ -494,7 +552,8 @@ class WorkStore:
         shutil.rmtree(self.work, ignore_errors=True)
         return self.path
 
-    def _write_result(self, keys: list[ChunkKey], target: Path) -> None:
+    def _write_result(self, keys: list[ChunkKey], target: Path,
+                      recompute: Callable[[ChunkKey], ChunkResult] | None) -> None:
         """Write the complete result file to ``target`` and fsync it."""
         from ensemble.output.dataset import build_dataset, encoding   # xarray: here only
 
@@ -502,7 +561,7 @@ class WorkStore:
         variables = self._gather_members(keys)
         status = variables["status"]
         included = in_summary(status)
-        variables.update(self._trajectory_quantiles(keys, included))
+        variables.update(self._trajectory_quantiles(keys, included, recompute))
         variables.update(summary_quantiles(variables, status,
                                            layout.scenario.output.quantiles,
                                            layout.compare_index))
@@ -532,7 +591,8 @@ class WorkStore:
                     gathered[name][variant, first:end] = values
         return gathered
 
-    def _trajectory_quantiles(self, keys: list[ChunkKey], included: np.ndarray
+    def _trajectory_quantiles(self, keys: list[ChunkKey], included: np.ndarray,
+                              recompute: Callable[[ChunkKey], ChunkResult] | None = None
                               ) -> dict[str, np.ndarray]:
         """``<name>_quantile`` of each trajectory ``name``: (variant, quantile, rows,
         time) quantiles over the included members, gathered in blocks of times (and
@@ -572,17 +632,89 @@ class WorkStore:
             results[name][variant, :, row_range, times] = values.transpose(0, 2, 1)
             return block.nbytes
 
+        whole = [variant for variant in range(len(layout.variants))
+                 if all(self._kept_whole(key) for key in keys if key[0] == variant)]
         blocks = [(name, variant, times, row_range)
                   for name in STREAMED
-                  for variant in range(len(layout.variants))
+                  for variant in whole
                   for times, row_range in block_plan(int(included[variant].sum()),
                                                      rows[name], layout.n_reports,
                                                      self.block_bytes)]
         with ThreadPoolExecutor(FINISH_THREADS) as pool:
             sizes = list(pool.map(lambda block: reduce_block(*block), blocks))
+            for variant in set(range(len(layout.variants))) - set(whole):
+                for name in STREAMED:
+                    results[name][variant] = self._selected_quantiles(
+                        name, [key for key in keys if key[0] == variant],
+                        included[variant], pool, recompute)
         self.block_count += len(sizes)
         self.largest_block_bytes = max([self.largest_block_bytes, *sizes])
         return {f"{name}_quantile": result for name, result in results.items()}
+
+    def _kept_whole(self, key: ChunkKey) -> bool:
+        """True when the chunk holds every value of its trajectories (not candidates)."""
+        return (self._chunk_directory(key) / f"{STREAMED[0]}.npy").exists()
+
+    def _selected_quantiles(self, name: str, keys: list[ChunkKey], included: np.ndarray,
+                            pool: ThreadPoolExecutor,
+                            recompute: Callable[[ChunkKey], ChunkResult] | None
+                            ) -> np.ndarray:
+        """(quantile, rows, time) quantiles of trajectory ``name`` of one variant whose
+        chunks past the pilot are kept as candidates (:func:`.selection.select`), cells
+        in blocks of about ``block_bytes`` of candidates, on the pool's threads."""
+        layout = self.layout
+        probabilities = layout.scenario.output.quantiles
+        brackets = self.brackets(keys[0][0])[name]
+        parts = []
+        for key in keys:
+            directory = self._chunk_directory(key)
+            if self._kept_whole(key):
+                stored = np.load(directory / f"{name}.npy", mmap_mode="r")
+                parts.append(chunk_candidates(stored.reshape(-1, stored.shape[-1]),
+                                              included[key[1]:key[2]], brackets))
+            else:
+                parts.append(Candidates(*(np.load(directory / f"{name}-{part}.npy",
+                                                  mmap_mode="r")
+                                          for part in CANDIDATE_PARTS)))
+        cells, intervals = brackets.lower.shape
+        below = sum(np.asarray(part.below) for part in parts)
+        nans = sum(np.asarray(part.nans) for part in parts)
+        inside = sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts)
+        count = int(included.sum())
+        per_cell = 8 * max(1, int(inside.sum()) // cells)
+        step = max(1, self.block_bytes // per_cell)
+        spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
+        selected = list(pool.map(lambda span: select(parts, span, count, nans, below,
+                                                     inside, probabilities), spans))
+        values = np.concatenate([block for block, _ in selected], axis=1)
+        missed = np.flatnonzero(np.concatenate([lost for _, lost in selected]))
+        if missed.size:
+            values[:, missed] = self._recomputed_quantiles(name, keys, included, missed,
+                                                           recompute)
+        rows = layout.n_states if name == "state" else layout.n_flow_elements
+        return values.reshape(len(probabilities), layout.n_reports, rows).transpose(0, 2, 1)
+
+    def _recomputed_quantiles(self, name: str, keys: list[ChunkKey], included: np.ndarray,
+                              cells: np.ndarray,
+                              recompute: Callable[[ChunkKey], ChunkResult] | None
+                              ) -> np.ndarray:
+        """Quantiles of the cells whose ranks the brackets missed, from whole
+        trajectories: saved ones, and the others computed again."""
+        if recompute is None:
+            raise IncompleteWork(
+                f"{len(cells)} times and rows of {name!r} need chunks computed again "
+                "(their quantiles fell outside the pilot's brackets); finish the run "
+                "with the run engine")
+        values = []
+        for key in keys:
+            if self._kept_whole(key):
+                stored = np.load(self._chunk_directory(key) / f"{name}.npy", mmap_mode="r")
+            else:
+                stored = getattr(recompute(key), name).transpose(2, 1, 0)
+            values.append(np.asarray(stored.reshape(-1, key[2] - key[1])[cells]))
+        chosen = np.concatenate(values, axis=1)[:, included]
+        return quantiles(chosen, self.layout.scenario.output.quantiles, axis=1,
+                         overwrite_input=True)
 
     def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
         """Append ``state`` and ``flow_count`` of every member to the file, chunk by
@@ -692,6 +824,9 @@ def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
     return merged
 
 
+PILOT_BYTES = 512 * 2**20
+"""Largest size of a pilot's trajectories (:meth:`WorkStore.pilot_members`)."""
+
 NPY_HEADER_ROOM = 4096
 """Bytes reserved for the header of an ``.npy`` file beyond its data."""
 
@@ -711,6 +846,14 @@ def _preallocate(handle: BinaryIO, size: int) -> None:
         reserve(handle.fileno(), 0, size)
     except OSError:
         pass
+
+
+def _write_npy(path: Path, array: np.ndarray) -> None:
+    """``array`` as an ``.npy`` file, into space reserved at once."""
+    with open(path, "wb") as handle:
+        _preallocate(handle, array.nbytes + NPY_HEADER_ROOM)
+        np.save(handle, array)
+        handle.truncate()
 
 
 def boot_identity() -> str:

@@ -148,29 +148,41 @@ def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int =
 
 def quantiles_of_sorted(ordered: np.ndarray, probabilities: np.ndarray) -> np.ndarray:
     """Quantiles along the last axis of ``ordered``, sorted ascending along it (NaN last,
-    as numpy sorts), shaped (quantile, ...).
+    as numpy sorts), shaped (quantile, ...); NaN where the values hold a NaN.
 
     Hyndman and Fan (1996) definition 7, computed as ``numpy.quantile``'s default
-    "linear" method does, so the bits agree: virtual index ``(n - 1) p``; neighbours
-    ``floor`` and ``floor + 1`` (the last value from ``n - 1`` on); ``a + (b - a) g``
-    for a fraction g below 1/2, ``b - (b - a)(1 - g)`` from 1/2 on; NaN where the values
-    hold a NaN.
+    "linear" method does, so the bits agree (:func:`linear_ranks`, :func:`interpolate`).
     """
-    count = ordered.shape[-1]
+    below, above, fraction = linear_ranks(ordered.shape[-1], probabilities)
+    lower = np.moveaxis(ordered[..., below], -1, 0)
+    upper = np.moveaxis(ordered[..., above], -1, 0)
+    result = interpolate(lower, upper, fraction.reshape(-1, *([1] * (ordered.ndim - 1))))
+    result[:, np.isnan(ordered[..., -1])] = np.nan
+    return result
+
+
+def linear_ranks(count: int, probabilities: Sequence[float]
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The order statistics (0-based ranks among ``count`` values) that numpy's linear
+    quantile of each probability interpolates between, and the fraction of the way:
+    virtual index ``(count - 1) p``, neighbours ``floor`` and ``floor + 1``, both the
+    last rank from ``count - 1`` on."""
     virtual = (count - 1) * np.asarray(probabilities, dtype=np.float64)
     below = np.floor(virtual)
     above = below + 1
     beyond = virtual >= count - 1
     below[beyond] = count - 1
     above[beyond] = count - 1
-    fraction = (virtual - below).reshape(-1, *([1] * (ordered.ndim - 1)))
-    lower = np.moveaxis(ordered[..., below.astype(np.intp)], -1, 0)
-    upper = np.moveaxis(ordered[..., above.astype(np.intp)], -1, 0)
+    return below.astype(np.intp), above.astype(np.intp), virtual - below
+
+
+def interpolate(lower: np.ndarray, upper: np.ndarray, fraction: np.ndarray) -> np.ndarray:
+    """numpy's interpolation between neighbouring order statistics: ``a + (b - a) g`` for
+    a fraction g below 1/2, ``b - (b - a)(1 - g)`` from 1/2 on."""
     gap = upper - lower
     result = lower + gap * fraction
     np.subtract(upper, gap * (1 - fraction), out=result,
                 where=np.broadcast_to(fraction >= 0.5, result.shape))
-    result[:, np.isnan(ordered[..., -1])] = np.nan
     return result
 
 
