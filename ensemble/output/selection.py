@@ -25,7 +25,7 @@ reported, and the caller computes it from whole trajectories.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numba
@@ -183,13 +183,13 @@ class Candidates:
     nans : (cells,) int64 included NaN values.
     offsets : (cells * K + 1,) int64 start of each (cell, interval) in ``values``.
     values : the included values inside each interval, cell by cell, interval by
-        interval, in member order.
+        interval, in member order (None for a chunk whose values are read as needed).
     """
 
     below: np.ndarray
     nans: np.ndarray
     offsets: np.ndarray
-    values: np.ndarray
+    values: np.ndarray | None
 
 
 def chunk_candidates(cell_values: np.ndarray, included: np.ndarray,
@@ -214,8 +214,22 @@ def chunk_candidates(cell_values: np.ndarray, included: np.ndarray,
     return Candidates(below, nans, offsets, out[:-1])
 
 
+@numba.njit(cache=True, nogil=True)
+def _append_groups(values, offsets, cursor, out):
+    """Copy each group of one chunk (``values[offsets[g]:offsets[g + 1]]``, offsets
+    relative to ``values``) to ``out[cursor[g]:]`` and advance ``cursor[g]``."""
+    for group in range(offsets.shape[0] - 1):
+        start = cursor[group]
+        for i in range(offsets[group], offsets[group + 1]):
+            out[start] = values[i]
+            start += 1
+        cursor[group] = start
+
+
 def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarray,
-           below: np.ndarray, inside: np.ndarray, probabilities: Sequence[float]
+           below: np.ndarray, inside: np.ndarray, probabilities: Sequence[float],
+           buffer: np.ndarray | None = None,
+           read: Callable[[int, int, int], np.ndarray] | None = None
            ) -> tuple[np.ndarray, np.ndarray]:
     """Quantiles of the cells ``cells`` over all members from the chunks' candidates.
 
@@ -227,6 +241,10 @@ def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarr
     nans, below, inside : the chunks' counts summed, for all cells ((cells,) and
         (cells, K)).
     probabilities : the quantiles' probabilities.
+    buffer : float64 memory for the block's candidates, reused from block to block
+        (grown when short); default new memory.
+    read : ``read(i, start, stop)``, values ``start .. stop - 1`` of part i, for parts
+        whose values stay on disk (default: ``parts[i].values[start:stop]``).
 
     Returns
     -------
@@ -246,39 +264,31 @@ def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarr
     block_end = block_below + inside[cells][:, None, :]
     holds = ((block_below <= low_rank[None, :, None])
              & (high_rank[None, :, None] < block_end))       # (cell, quantile, K)
-    found = holds.any(axis=2)
     interval = holds.argmax(axis=2)
     has_nan = nans[cells] > 0
-    missed = ~found.all(axis=1) & ~has_nan
-    groups = _gather(parts, first * intervals, stop * intervals)
-    lower_values = np.full((n_cells, len(probabilities)), np.nan)
-    upper_values = np.full((n_cells, len(probabilities)), np.nan)
-    for cell in np.flatnonzero(~missed & ~has_nan):
-        for slot in np.unique(interval[cell]):
-            ordered = np.sort(groups(cell * intervals + slot))
-            chosen = interval[cell] == slot
-            offset = below[first + cell, slot]
-            lower_values[cell, chosen] = ordered[low_rank[chosen] - offset]
-            upper_values[cell, chosen] = ordered[high_rank[chosen] - offset]
-    values = interpolate(lower_values.T, upper_values.T, fraction[:, None])
-    keep = ~missed & ~has_nan
-    result[:, keep] = values[:, keep]
+    missed = ~holds.any(axis=2).all(axis=1) & ~has_nan
+    # every chunk's candidates of the block, group by group, then each group sorted
+    sizes = inside[cells].ravel()
+    starts = np.zeros(sizes.size + 1, np.int64)
+    np.cumsum(sizes, out=starts[1:])
+    out = (buffer[:starts[-1]] if buffer is not None and buffer.size >= starts[-1]
+           else np.empty(starts[-1]))
+    cursor = starts[:-1].copy()
+    for index, part in enumerate(parts):
+        offsets = np.asarray(part.offsets[first * intervals:stop * intervals + 1])
+        values = (read(index, offsets[0], offsets[-1]) if read is not None
+                  else part.values[offsets[0]:offsets[-1]])
+        _append_groups(values, offsets - offsets[0], cursor, out)
+    wanted = np.zeros((n_cells, intervals), bool)
+    good = ~missed & ~has_nan
+    wanted[np.flatnonzero(good)[:, None], interval[good]] = True
+    for group in np.flatnonzero(wanted.ravel()):
+        out[starts[group]:starts[group + 1]].sort()
+    # the order statistics: group start + rank - values below the interval
+    rows = np.flatnonzero(good)
+    base = starts[rows[:, None] * intervals + interval[rows]] - below[first + rows[:, None],
+                                                                       interval[rows]]
+    lower_values = out[base + low_rank[None, :]]
+    upper_values = out[base + high_rank[None, :]]
+    result[:, rows] = interpolate(lower_values.T, upper_values.T, fraction[:, None])
     return result, missed
-
-
-def _gather(parts: Sequence[Candidates], start: int, stop: int):
-    """A function giving, for a (cell, interval) slot in ``start .. stop - 1`` (relative
-    to ``start``), the candidates of every chunk together."""
-    values = []
-    slots = []
-    for part in parts:
-        offsets = part.offsets[start:stop + 1]
-        values.append(part.values[offsets[0]:offsets[-1]])
-        slots.append(np.repeat(np.arange(stop - start), np.diff(offsets)))
-    values = np.concatenate(values) if values else np.empty(0)
-    slots = np.concatenate(slots) if slots else np.empty(0, np.int64)
-    order = np.argsort(slots, kind="stable")
-    values = values[order]
-    bounds = np.zeros(stop - start + 1, np.int64)
-    np.cumsum(np.bincount(slots, minlength=stop - start), out=bounds[1:])
-    return lambda slot: values[bounds[slot]:bounds[slot + 1]]

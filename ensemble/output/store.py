@@ -436,6 +436,7 @@ class WorkStore:
             return None
         if variant not in self._brackets:
             pieces: dict[str, list[np.ndarray]] = {name: [] for name in STREAMED}
+            workspace = threading.local()
             for key in self.saved():
                 if key[0] != variant or key[1] >= pilot:
                     continue
@@ -444,8 +445,10 @@ class WorkStore:
                     chosen = in_summary(members["status"])
                 chosen[pilot - key[1]:] = False
                 for name in STREAMED:
-                    stored = np.load(directory / f"{name}.npy", mmap_mode="r")
-                    pieces[name].append(stored.reshape(-1, stored.shape[-1])[:, chosen])
+                    rows = self._cells(name)
+                    whole = _read_range(directory / f"{name}.npy", 0,
+                                        _reusable(workspace, "whole", (rows, chosen.size)))
+                    pieces[name].append(whole[:, chosen])
             probabilities = self.layout.scenario.output.quantiles
             self._brackets[variant] = {
                 name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
@@ -651,6 +654,12 @@ class WorkStore:
         self.largest_block_bytes = max([self.largest_block_bytes, *sizes])
         return {f"{name}_quantile": result for name, result in results.items()}
 
+    def _cells(self, name: str) -> int:
+        """Times times rows of trajectory ``name``."""
+        layout = self.layout
+        rows = layout.n_states if name == "state" else layout.n_flow_elements
+        return rows * layout.n_reports
+
     def _kept_whole(self, key: ChunkKey) -> bool:
         """True when the chunk holds every value of its trajectories (not candidates)."""
         return (self._chunk_directory(key) / f"{STREAMED[0]}.npy").exists()
@@ -665,18 +674,30 @@ class WorkStore:
         layout = self.layout
         probabilities = layout.scenario.output.quantiles
         brackets = self.brackets(keys[0][0])[name]
+        cells, intervals = brackets.lower.shape
+        workspace = threading.local()
         parts = []
+        sources: list[Path | None] = []
         for key in keys:
             directory = self._chunk_directory(key)
             if self._kept_whole(key):
-                stored = np.load(directory / f"{name}.npy", mmap_mode="r")
-                parts.append(chunk_candidates(stored.reshape(-1, stored.shape[-1]),
-                                              included[key[1]:key[2]], brackets))
+                whole = _read_range(directory / f"{name}.npy", 0,
+                                    _reusable(workspace, "whole", (cells, key[2] - key[1])))
+                parts.append(chunk_candidates(whole, included[key[1]:key[2]], brackets))
+                sources.append(None)
             else:
-                parts.append(Candidates(*(np.load(directory / f"{name}-{part}.npy",
-                                                  mmap_mode="r")
-                                          for part in CANDIDATE_PARTS)))
-        cells, intervals = brackets.lower.shape
+                parts.append(Candidates(*(np.load(directory / f"{name}-{part}.npy")
+                                          for part in CANDIDATE_PARTS[:-1]), values=None))
+                sources.append(directory / f"{name}-values.npy")
+
+        def read(index: int, start: int, stop: int) -> np.ndarray:
+            """Values ``start .. stop - 1`` of part ``index``, read into this thread's
+            buffer."""
+            if sources[index] is None:
+                return parts[index].values[start:stop]
+            return _read_range(sources[index], start,
+                               _reusable(workspace, "read", (stop - start,)))
+
         below = sum(np.asarray(part.below) for part in parts)
         nans = sum(np.asarray(part.nans) for part in parts)
         inside = sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts)
@@ -684,8 +705,12 @@ class WorkStore:
         per_cell = 8 * max(1, int(inside.sum()) // cells)
         step = max(1, self.block_bytes // per_cell)
         spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
-        selected = list(pool.map(lambda span: select(parts, span, count, nans, below,
-                                                     inside, probabilities), spans))
+        def select_block(span: slice) -> tuple[np.ndarray, np.ndarray]:
+            buffer = _reusable(workspace, "candidates", (int(inside[span].sum()),))
+            return select(parts, span, count, nans, below, inside, probabilities, buffer,
+                          read)
+
+        selected = list(pool.map(select_block, spans))
         values = np.concatenate([block for block, _ in selected], axis=1)
         missed = np.flatnonzero(np.concatenate([lost for _, lost in selected]))
         if missed.size:
@@ -743,18 +768,40 @@ def _reusable(workspace: threading.local, name: str, shape: tuple[int, ...]) -> 
     return buffer[:size].reshape(shape)
 
 
+def _npy_shape(handle: BinaryIO) -> tuple[int, ...]:
+    """Read the header of the ``.npy`` file open in ``handle`` (which is left at the
+    start of the data) and return the array's shape."""
+    version = np.lib.format.read_magic(handle)
+    shape, _, _ = (np.lib.format.read_array_header_1_0(handle) if version == (1, 0)
+                   else np.lib.format.read_array_header_2_0(handle))
+    return shape
+
+
+def _read_into(handle: BinaryIO, path: Path, first: int, out: np.ndarray) -> None:
+    """Read ``out.size`` float64 values of the open ``.npy`` file from flat index
+    ``first`` into the contiguous ``out`` (a read into memory already in use, rather
+    than a mapping of the file: cheaper where mapping pages costs, as on the test
+    machines)."""
+    handle.seek(handle.tell() + first * 8)
+    if handle.readinto(memoryview(out).cast("B")) != out.nbytes:
+        raise OSError(errno.EIO, f"{path} is shorter than its header says")
+
+
 def _read_slab(path: Path, times: slice, rows: slice, out: np.ndarray) -> None:
     """Read ``[times, rows]`` of the time-major float64 ``.npy`` file ``path`` into the
     contiguous ``out``: one read, as the slab is contiguous in the file when it spans
     whole rows or a single time (the blocks of :func:`block_plan`)."""
     with open(path, "rb") as handle:
-        version = np.lib.format.read_magic(handle)
-        shape, _, _ = (np.lib.format.read_array_header_1_0(handle) if version == (1, 0)
-                       else np.lib.format.read_array_header_2_0(handle))
-        n_rows, members = shape[1], shape[2]
-        handle.seek(handle.tell() + (times.start * n_rows + rows.start) * members * 8)
-        if handle.readinto(memoryview(out).cast("B")) != out.nbytes:
-            raise OSError(errno.EIO, f"{path} is shorter than its header says")
+        _, n_rows, members = _npy_shape(handle)
+        _read_into(handle, path, (times.start * n_rows + rows.start) * members, out)
+
+
+def _read_range(path: Path, first: int, out: np.ndarray) -> np.ndarray:
+    """``out`` filled with the flat values ``first ..`` of the ``.npy`` file ``path``."""
+    with open(path, "rb") as handle:
+        _npy_shape(handle)
+        _read_into(handle, path, first, out)
+    return out
 
 
 def block_plan(members: int, rows: int, times: int, block_bytes: int
