@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import concurrent.futures
 import copyreg
+import importlib
 import sys
 import threading
 import time
@@ -455,6 +456,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
             kernel_block(models[0], scenario, backend))
     keys = store.pending(plan_chunks(scenario, chunk, members=members))
     brackets = QuantileBrackets(store, enabled=finish is None)
+    # the result writer (xarray) is imported while the chunks compute, not after
+    threading.Thread(target=importlib.import_module, args=("ensemble.output.dataset",),
+                     name="ensemble-import-writer", daemon=True).start()
     progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
     try:
         if keys:
