@@ -162,7 +162,8 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     only candidates for the quantiles, and the file has the bits of a run that keeps
     every chunk whole; with a misleading pilot (its values inflated by a third, so the
     brackets miss) the missed cells are computed again from the chunks, with the same
-    bits.  A failure half-way and a resume change nothing either."""
+    bits.  A failure half-way and a resume change nothing either, nor a chunk whose
+    candidates were cut with other brackets."""
     import ensemble.output.store as store_module
 
     monkeypatch.chdir(tmp_path)
@@ -204,6 +205,9 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     monkeypatch.setattr(execute, "make_design", failing_make_design)
     with pytest.raises(RunFailed):
         api.run(scenario, workers=0, chunk=4000, progress=False)
+    # a chunk cut with other brackets (not expected) is computed again at the finish
+    tampered = sorted((tmp_path / "result.nc.partial").glob("chunk-*/state-brackets"))[-1]
+    tampered.write_text("other brackets")
     monkeypatch.setattr(execute, "make_design", real_make_design)
     resumed = api.run(scenario, workers=0, chunk=5000, resume=True, progress=False)
     assert kept and min(kept) < 1.0, "no chunk was kept as candidates"

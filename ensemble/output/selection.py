@@ -25,6 +25,7 @@ reported, and the caller computes it from whole trajectories.
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -52,6 +53,12 @@ class Brackets:
 
     lower: np.ndarray
     upper: np.ndarray
+
+    def digest(self) -> str:
+        """A fingerprint of the intervals (chunks record the brackets they were cut
+        with)."""
+        return hashlib.sha256(np.ascontiguousarray(self.lower).tobytes()
+                              + np.ascontiguousarray(self.upper).tobytes()).hexdigest()
 
 
 def pilot_brackets(pilot: np.ndarray, probabilities: Sequence[float]) -> Brackets:

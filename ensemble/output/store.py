@@ -400,6 +400,7 @@ class WorkStore:
                                         in_summary(result.status), brackets[name])
                 for part in CANDIDATE_PARTS:
                     _write_npy(temporary / f"{name}-{part}.npy", getattr(kept, part))
+                (temporary / f"{name}-brackets").write_text(brackets[name].digest())
             np.savez(temporary / MEMBER_FILE, **per_member)
             (temporary / BOOT_FILE).write_text(boot_identity())
             if final.exists():
@@ -660,6 +661,17 @@ class WorkStore:
         rows = layout.n_states if name == "state" else layout.n_flow_elements
         return rows * layout.n_reports
 
+    @staticmethod
+    def _recomputed(key: ChunkKey, name: str,
+                    recompute: Callable[[ChunkKey], ChunkResult] | None) -> np.ndarray:
+        """(cells, members) values of trajectory ``name`` of chunk ``key``, computed
+        again (the chunk keeps candidates only)."""
+        if recompute is None:
+            raise IncompleteWork(f"chunk {key} keeps candidates only and must be computed "
+                                 "again to finish; finish the run with the run engine")
+        values = getattr(recompute(key), name)
+        return np.ascontiguousarray(values.transpose(2, 1, 0)).reshape(-1, values.shape[0])
+
     def _kept_whole(self, key: ChunkKey) -> bool:
         """True when the chunk holds every value of its trajectories (not candidates)."""
         return (self._chunk_directory(key) / f"{STREAMED[0]}.npy").exists()
@@ -680,9 +692,13 @@ class WorkStore:
         sources: list[Path | None] = []
         for key in keys:
             directory = self._chunk_directory(key)
-            if self._kept_whole(key):
-                whole = _read_range(directory / f"{name}.npy", 0,
-                                    _reusable(workspace, "whole", (cells, key[2] - key[1])))
+            if self._kept_whole(key) or (directory / f"{name}-brackets").read_text() \
+                    != brackets.digest():
+                # whole, or candidates for other brackets (not expected: the pilot
+                # gives the same brackets every time): the whole values
+                whole = (_read_range(directory / f"{name}.npy", 0,
+                                     _reusable(workspace, "whole", (cells, key[2] - key[1])))
+                         if self._kept_whole(key) else self._recomputed(key, name, recompute))
                 parts.append(chunk_candidates(whole, included[key[1]:key[2]], brackets))
                 sources.append(None)
             else:
@@ -725,18 +741,13 @@ class WorkStore:
                               ) -> np.ndarray:
         """Quantiles of the cells whose ranks the brackets missed, from whole
         trajectories: saved ones, and the others computed again."""
-        if recompute is None:
-            raise IncompleteWork(
-                f"{len(cells)} times and rows of {name!r} need chunks computed again "
-                "(their quantiles fell outside the pilot's brackets); finish the run "
-                "with the run engine")
         values = []
         for key in keys:
             if self._kept_whole(key):
                 stored = np.load(self._chunk_directory(key) / f"{name}.npy", mmap_mode="r")
+                values.append(np.asarray(stored.reshape(-1, key[2] - key[1])[cells]))
             else:
-                stored = getattr(recompute(key), name).transpose(2, 1, 0)
-            values.append(np.asarray(stored.reshape(-1, key[2] - key[1])[cells]))
+                values.append(self._recomputed(key, name, recompute)[cells])
         chosen = np.concatenate(values, axis=1)[:, included]
         return quantiles(chosen, self.layout.scenario.output.quantiles, axis=1,
                          overwrite_input=True)
