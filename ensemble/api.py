@@ -78,15 +78,36 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     """
     import dataclasses
 
+    from ensemble.run.local import LocalStart
+
+    if not isinstance(scenario, Scenario):
+        scenario = load_scenario(scenario)
+    profile = cluster if not isinstance(cluster, (str, type(None))) else cluster_profile(
+        cluster if cluster is not None else scenario.compute.cluster)
+    local_workers = workers if workers is not None else scenario.compute.workers
+    on_this_machine = (local_workers != 0 and profile is None
+                       and (address or scenario.compute.address) is None)
+    # the local cluster starts while the rest of the pipeline is imported
+    started = LocalStart(local_workers) if on_this_machine else None
+    try:
+        return _run(scenario, started, output=output, chunk=chunk, workers=workers,
+                    address=address, resume=resume, force=force, progress=progress,
+                    backend=backend, history=history, profile=profile, shard=shard)
+    finally:
+        if started is not None:
+            started.close()
+
+
+def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume, force,
+         progress, backend, history, profile, shard) -> Path:
+    """:func:`run` once the scenario is loaded and any local cluster is starting."""
+    import dataclasses
+
     from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
     from ensemble.run.plan import fingerprint
     from ensemble.run.shards import Shard, engine_options, part_is_complete
 
-    if not isinstance(scenario, Scenario):
-        scenario = load_scenario(scenario)
     backend = backend or DEFAULT_BACKEND
-    profile = cluster if not isinstance(cluster, (str, type(None))) else cluster_profile(
-        cluster if cluster is not None else scenario.compute.cluster)
     part = Shard.parse(shard) if isinstance(shard, str) else shard
     if part is not None and output is None:
         output = default_part_path(scenario, part)
@@ -101,6 +122,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     return run_scenario(scenario, history=history, backend=backend,
                         chunk=chunk, workers=workers, address=address, cluster=profile,
                         resume=resume, force=force, progress=Progress(bar=progress),
+                        started=started,
                         **(engine_options(scenario, part, backend) if part else {}))
 
 

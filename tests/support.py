@@ -432,12 +432,13 @@ def fill(store, layout: ResultLayout, chunk: int) -> None:
 
 
 def write_scenario(directory: Path, *, members: int = 40, days: int = 30,
-                   method: str = "rk4", output: str = "result.nc") -> Path:
+                   method: str = "rk4", output: str = "result.nc",
+                   keep_members: bool = True) -> Path:
     """Write the illustrative SEIR town of :func:`ensemble.examples.seir_text`, with its
     ``no-change`` and ``distancing`` variants, into ``directory`` and return its path."""
     path = directory / "testtown.toml"
     path.write_text(seir_text(members=members, days=days, method=method, output=output,
-                              distancing=True, name="testtown",
+                              distancing=True, name="testtown", keep_members=keep_members,
                               title="Illustrative town, invented numbers"))
     return path
 

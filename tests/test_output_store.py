@@ -120,6 +120,24 @@ def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
     _assert_same_numbers(path, tmp_path / "reference.nc")
 
 
+def test_after_a_crash_of_the_system_only_durable_chunks_are_kept(tmp_path, layout):
+    """Chunks are not fsynced as they are saved, so a chunk written in an earlier boot
+    (the system crashed, its data may never have reached the disk) is recomputed unless
+    make_durable listed it; chunks of this boot are kept as they are."""
+    path = tmp_path / "r.nc"
+    store = _open(path, layout)
+    for key in [(0, 0, 3), (0, 3, 6), (1, 0, 3)]:
+        store.save(key, *made_up_members(layout, *key))
+    store.make_durable([(0, 0, 3)])
+    assert _open(path, layout, resume=True).saved() == [(0, 0, 3), (0, 3, 6), (1, 0, 3)]
+    for name in ("chunk-v0-0000000000-0000000003", "chunk-v0-0000000003-0000000006"):
+        (partial_path(path) / name / store_module.BOOT_FILE).write_text("an earlier boot")
+    resumed = _open(path, layout, resume=True)
+    assert resumed.saved() == [(0, 0, 3), (1, 0, 3)]
+    np.testing.assert_array_equal(resumed.load((0, 0, 3))[0].state,
+                                  made_up_members(layout, 0, 0, 3)[0].state)
+
+
 def test_without_resume_old_work_is_discarded(tmp_path, layout):
     path = tmp_path / "r.nc"
     _open(path, layout).save((0, 0, 3), *made_up_members(layout, 0, 0, 3))

@@ -124,3 +124,19 @@ def test_quantiles_of_nobody_are_nan():
     """With every member excluded there is nothing to summarise: NaN, not an error."""
     empty = quantiles(np.empty((0, 3, 4)), [0.1, 0.9], axis=0)
     assert empty.shape == (2, 3, 4) and np.isnan(empty).all()
+
+
+@pytest.mark.parametrize("count", [1, 2, 3, 10, 257, 4096])
+def test_quantiles_have_numpys_bits(count):
+    """Reference: ``numpy.quantile`` (default "linear", Hyndman and Fan 1996 definition 7),
+    bit for bit, on every axis, for probabilities at 0, 1, between and exactly on order
+    statistics, values spread over nine decades, and a NaN (which makes its column NaN)."""
+    rng = np.random.default_rng(count)
+    probabilities = [0.0, 0.025, 0.1, 0.25, 1 / 3, 0.5, 0.75, 0.975, 1.0]
+    values = rng.lognormal(size=(4, count, 3)) * 10.0 ** rng.integers(-3, 6, size=(4, 1, 3))
+    values[1, count // 2, 2] = np.nan
+    for axis in range(3):
+        expected = np.quantile(values, probabilities, axis=axis)
+        for overwrite in (False, True):
+            got = quantiles(values.copy(), probabilities, axis=axis, overwrite_input=overwrite)
+            np.testing.assert_array_equal(got, expected)

@@ -118,3 +118,98 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
                                            store))
     assert outputs == [execute.ChunkSaved((1, 0, 12))]
     assert store.saved() == [(0, 6, 12), (1, 0, 12)]
+
+
+def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) -> None:
+    """The store's contract (ensemble/output/store.py): chunks saved during a run reach the
+    durable list in the background, so a resume after a crash of the system keeps them.
+    With the interval at zero every chunk arriving while no batch runs starts one; leaving
+    waits for the last batch."""
+    monkeypatch.setattr(execute, "CHECKPOINT_SECONDS", 0.0)
+    scenario = load_scenario(write_scenario(tmp_path, members=12))
+    store = WorkStore.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
+                           force=False)
+    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
+    outputs = execute._in_process(scenario, models, keys, "numpy")
+    execute._save_all(store, outputs, execute.Progress(bar=False))
+    durable = (store.work / "durable-chunks").read_text().split()
+    assert durable and set(durable) <= {path.name for path in store.work.glob("chunk-*")}
+    assert "chunk-v0-0000000000-0000000006" in durable
+
+
+def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -> None:
+    """The engine's contract (ensemble/run/execute.py): a worker writes chunk after chunk
+    into the same arrays (ReportBuffers); each chunk has the bits it has in fresh arrays,
+    including a last, shorter chunk, whatever was left in the arrays before."""
+    from ensemble.integrate.compiled import ReportBuffers
+
+    scenario = load_scenario(write_scenario(tmp_path, members=40))
+    model = compile_model(scenario, scenario.variants[1])
+    buffers = ReportBuffers()
+    for key in [(1, 0, 16), (1, 16, 32), (1, 32, 40), (1, 0, 16)]:
+        reused = execute.compute_chunk(scenario, model, key, "compiled", 1, buffers)
+        fresh = execute.compute_chunk(scenario, model, key, "compiled", 1)
+        for name in ("state", "flow_count", "step_error", "observed_order", "status"):
+            np.testing.assert_array_equal(getattr(reused.result, name),
+                                          getattr(fresh.result, name), err_msg=name)
+
+
+@pytest.mark.parametrize("misleading", [False, True])
+def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypatch,
+                                                         misleading: bool) -> None:
+    """The store's contract (ensemble/output/selection.py): past the pilot, chunks keep
+    only candidates for the quantiles, and the file has the bits of a run that keeps
+    every chunk whole; with a misleading pilot (its values inflated by a third, so the
+    brackets miss) the missed cells are computed again from the chunks, with the same
+    bits.  A failure half-way and a resume change nothing either, nor a chunk whose
+    candidates were cut with other brackets."""
+    import ensemble.output.store as store_module
+
+    monkeypatch.chdir(tmp_path)
+    scenario = write_scenario(tmp_path, members=40_000, days=20, keep_members=False)
+    monkeypatch.setattr(store_module, "PILOT_BYTES", 0)
+    reference = api.run(scenario, output=tmp_path / "whole.nc", workers=0, chunk=4000,
+                        progress=False)
+
+    monkeypatch.setattr(store_module, "PILOT_BYTES", 2**30)
+    if misleading:
+        real_brackets = store_module.pilot_brackets
+        monkeypatch.setattr(store_module, "pilot_brackets",
+                            lambda pilot, probabilities: real_brackets(pilot * 1.3,
+                                                                       probabilities))
+    kept = []
+    real_candidates = store_module.chunk_candidates
+
+    def counting_candidates(values, included, brackets):
+        candidates = real_candidates(values, included, brackets)
+        kept.append(candidates.values.size / values.size)
+        return candidates
+
+    monkeypatch.setattr(store_module, "chunk_candidates", counting_candidates)
+    missed = []
+    real_recomputed = store_module.WorkStore._recomputed_quantiles
+
+    def counting_recomputed(self, name, keys, included, cells, recompute):
+        missed.append(len(cells))
+        return real_recomputed(self, name, keys, included, cells, recompute)
+
+    monkeypatch.setattr(store_module.WorkStore, "_recomputed_quantiles", counting_recomputed)
+    real_make_design = execute.make_design
+
+    def failing_make_design(scenario, variant, model, members):
+        if 21_000 in members and variant.name == "distancing":
+            raise FloatingPointError("an illustrative failure")
+        return real_make_design(scenario, variant, model, members)
+
+    monkeypatch.setattr(execute, "make_design", failing_make_design)
+    with pytest.raises(RunFailed):
+        api.run(scenario, workers=0, chunk=4000, progress=False)
+    # a chunk cut with other brackets (not expected) is computed again at the finish
+    tampered = sorted((tmp_path / "result.nc.partial").glob("chunk-*/state-brackets"))[-1]
+    tampered.write_text("other brackets")
+    monkeypatch.setattr(execute, "make_design", real_make_design)
+    resumed = api.run(scenario, workers=0, chunk=5000, resume=True, progress=False)
+    assert kept and min(kept) < 1.0, "no chunk was kept as candidates"
+    assert bool(missed) == misleading, "only a misleading pilot misses cells"
+    assert_same_numbers(resumed, reference)

@@ -168,7 +168,7 @@ def _integrator(backend: str):
 
 
 def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_reports: int,
-                    backend: str = "numpy") -> ChunkResult:
+                    backend: str = "numpy", buffers=None) -> ChunkResult:
     """Integrate ``design``'s members over ``n_reports - 1`` report intervals and check
     each member's step.
 
@@ -180,6 +180,10 @@ def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_repo
     backend : "numpy" (:func:`ensemble.integrate.stepper.integrate_fixed`) or
         "compiled" (``ensemble.integrate.compiled.integrate_fixed_compiled``, same
         signature and semantics).
+    buffers : an ``ensemble.integrate.compiled.ReportBuffers`` whose arrays the compiled
+        backend's runs write into (ignored by the numpy backend).  The trajectories of
+        the result are then views of them, valid until the next call with the same
+        buffers.
 
     Returns
     -------
@@ -195,8 +199,10 @@ def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_repo
 
     def run(refinement: int) -> Trajectory:
         step = float(Fraction(solver.step) / refinement)
+        reuse = ({"buffers": (buffers, f"refined {refinement}")}
+                 if buffers is not None and backend == "compiled" else {})
         return integrate(model, design, method, step, solver.steps_per_report * refinement,
-                         n_reports, solver.newton, check.atol)
+                         n_reports, solver.newton, check.atol, **reuse)
 
     result = run(1)
     status = result.status.copy()

@@ -29,7 +29,7 @@ import xarray as xr
 
 import ensemble
 from ensemble.integrate.check import STATUS_FLAGS, ChunkResult
-from ensemble.output.layout import ResultLayout
+from ensemble.output.layout import STREAMED, ResultLayout
 from ensemble.output.summary import (
     FLOW_METRICS,
     METRICS,
@@ -39,9 +39,6 @@ from ensemble.output.summary import (
     member_quantiles,
     summary_quantiles,
 )
-
-STREAMED = ("state", "flow_count")
-"""Variables with every member's trajectories, written chunk by chunk."""
 
 LABELLED_DIMS = ("variant", "compartment", "flow", "group")
 """Dimensions that carry a string label variable ``<dim>_name``."""

@@ -16,6 +16,10 @@ from ensemble.model.compile import CompiledModel, time_varying_parameters
 from ensemble.scenario.schema import Scenario
 
 
+STREAMED = ("state", "flow_count")
+"""Variables with every member's trajectories, written chunk by chunk."""
+
+
 @dataclass(frozen=True)
 class ParameterInfo:
     """A parameter reported per member as ``param_<name>``.

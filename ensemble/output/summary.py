@@ -126,12 +126,13 @@ def member_metrics(state: np.ndarray, flow_count: np.ndarray,
 def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int = 0,
               overwrite_input: bool = False) -> np.ndarray:
     """Quantiles of ``values`` over ``axis`` (numpy's default linear definition); the
-    quantile axis replaces ``axis`` at the front.  NaN where ``axis`` is empty.
+    quantile axis replaces ``axis`` at the front.  NaN where ``axis`` is empty or holds a
+    NaN.
 
-    With ``overwrite_input``, ``values`` is first sorted in place along ``axis``: numpy's
-    vectorised sort followed by its selection on sorted data takes about half the time
-    of the selection of a dozen ranks from unsorted data (measured on 200,000 members),
-    and the order statistics, hence the quantiles, are the same.
+    The values are sorted along ``axis`` (in place with ``overwrite_input``) and the
+    order statistics read off by :func:`quantiles_of_sorted`: numpy's vectorised sort
+    takes about a fifth of the time of ``numpy.quantile``'s selection of a dozen ranks
+    (measured on 200,000 members), and the numbers are the same.
     """
     probabilities = np.asarray(probabilities, dtype=np.float64)
     if values.shape[axis] == 0:
@@ -139,7 +140,50 @@ def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int =
         return np.full((len(probabilities), *shape), np.nan)
     if overwrite_input:
         values.sort(axis=axis)
-    return np.quantile(values, probabilities, axis=axis, overwrite_input=overwrite_input)
+        ordered = values
+    else:
+        ordered = np.sort(values, axis=axis)
+    return quantiles_of_sorted(np.moveaxis(ordered, axis, -1), probabilities)
+
+
+def quantiles_of_sorted(ordered: np.ndarray, probabilities: np.ndarray) -> np.ndarray:
+    """Quantiles along the last axis of ``ordered``, sorted ascending along it (NaN last,
+    as numpy sorts), shaped (quantile, ...); NaN where the values hold a NaN.
+
+    Hyndman and Fan (1996) definition 7, computed as ``numpy.quantile``'s default
+    "linear" method does, so the bits agree (:func:`linear_ranks`, :func:`interpolate`).
+    """
+    below, above, fraction = linear_ranks(ordered.shape[-1], probabilities)
+    lower = np.moveaxis(ordered[..., below], -1, 0)
+    upper = np.moveaxis(ordered[..., above], -1, 0)
+    result = interpolate(lower, upper, fraction.reshape(-1, *([1] * (ordered.ndim - 1))))
+    result[:, np.isnan(ordered[..., -1])] = np.nan
+    return result
+
+
+def linear_ranks(count: int, probabilities: Sequence[float]
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The order statistics (0-based ranks among ``count`` values) that numpy's linear
+    quantile of each probability interpolates between, and the fraction of the way:
+    virtual index ``(count - 1) p``, neighbours ``floor`` and ``floor + 1``, both the
+    last rank from ``count - 1`` on."""
+    virtual = (count - 1) * np.asarray(probabilities, dtype=np.float64)
+    below = np.floor(virtual)
+    above = below + 1
+    beyond = virtual >= count - 1
+    below[beyond] = count - 1
+    above[beyond] = count - 1
+    return below.astype(np.intp), above.astype(np.intp), virtual - below
+
+
+def interpolate(lower: np.ndarray, upper: np.ndarray, fraction: np.ndarray) -> np.ndarray:
+    """numpy's interpolation between neighbouring order statistics: ``a + (b - a) g`` for
+    a fraction g below 1/2, ``b - (b - a)(1 - g)`` from 1/2 on."""
+    gap = upper - lower
+    result = lower + gap * fraction
+    np.subtract(upper, gap * (1 - fraction), out=result,
+                where=np.broadcast_to(fraction >= 0.5, result.shape))
+    return result
 
 
 def member_quantiles(values: np.ndarray, probabilities: Sequence[float],

@@ -1,8 +1,22 @@
-"""Running a scenario: the chunk plan and fingerprint (:mod:`.plan`), and the engine that
-computes chunks on dask workers and saves them as they finish (:mod:`.execute`)."""
+"""Running a scenario: the chunk plan and fingerprint (:mod:`.plan`), the local cluster
+(:mod:`.local`), and the engine that computes chunks on dask workers and saves them as
+they finish (:mod:`.execute`).
 
-from ensemble.run.execute import RunFailed, compute_chunk, open_client, run_scenario
-from ensemble.run.plan import fingerprint, plan_chunks, shard_range
+The names below are imported from their modules when first used, so that importing a
+light module of this package (:mod:`.local`) does not import the whole pipeline.
+"""
 
-__all__ = ["RunFailed", "compute_chunk", "fingerprint", "open_client", "plan_chunks",
-           "run_scenario", "shard_range"]
+_EXPORTS = {"RunFailed": "execute", "compute_chunk": "execute", "open_client": "execute",
+            "run_scenario": "execute", "fingerprint": "plan", "plan_chunks": "plan",
+            "shard_range": "plan"}
+
+
+def __getattr__(name: str):
+    if name in _EXPORTS:
+        import importlib
+
+        return getattr(importlib.import_module(f"ensemble.run.{_EXPORTS[name]}"), name)
+    raise AttributeError(f"module 'ensemble.run' has no attribute {name!r}")
+
+
+__all__ = sorted(_EXPORTS)

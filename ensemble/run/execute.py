@@ -12,12 +12,12 @@ once and forgets it.  Memory stays bounded whatever the number of members.
 
 from __future__ import annotations
 
+import concurrent.futures
 import copyreg
-import logging
-import os
-import signal
+import importlib
 import sys
 import threading
+import time
 import types
 from collections.abc import Callable, Generator, Iterator, Mapping, Sequence
 from contextlib import closing, contextmanager
@@ -25,15 +25,16 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from distributed import Client, Future, LocalCluster, as_completed
-from distributed.diagnostics.plugin import WorkerPlugin
+from distributed import Client, Future, as_completed
 
 from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.integrate.codegen import block_size
 from ensemble.integrate.methods import METHODS
 from ensemble.model.compile import CompiledModel, compile_model
+from ensemble.output.selection import Brackets
 from ensemble.output.store import ChunkKey, ResultLayout, StoreWriteError, WorkStore
-from ensemble.run.clusters import THREAD_LIMITS, ClusterProfile, jobqueue_cluster
+from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
+from ensemble.run.local import LocalStart, available_cores
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
 from ensemble.scenario.schema import Scenario
@@ -44,15 +45,13 @@ run 5 to 13 times faster than the numpy reference and are cached on disk after t
 first compilation (``scripts/benchmark.py``).  ``--backend numpy`` selects the readable
 reference; the two agree to 1e-12 relative (``tests/test_compiled_backend.py``)."""
 
+CHECKPOINT_SECONDS = 60.0
+"""Seconds between two calls of :meth:`WorkStore.make_durable` on the chunks saved
+meanwhile: a crash of the operating system loses at most about this much work."""
+
 IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
 driver saves a finished chunk, few enough that unsaved results stay bounded."""
-
-SINGLE_THREAD_ENV = {name: "1" for name in THREAD_LIMITS}
-"""Environment of local worker processes: one worker process per core, so BLAS and numba
-inside a worker use one thread each and the cores are not oversubscribed (batch worker
-jobs export the same, :func:`ensemble.run.clusters.environment_lines`)."""
-
 
 def read_only(items: dict) -> types.MappingProxyType:
     """A read-only view of ``items`` (what a pickled read-only mapping becomes again)."""
@@ -85,7 +84,7 @@ class ChunkOutput:
 
 def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
                   backend: str = DEFAULT_BACKEND,
-                  kernel_threads: int | None = None) -> ChunkOutput:
+                  kernel_threads: int | None = None, buffers=None) -> ChunkOutput:
     """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
 
     A pure function of its arguments: the same key gives the same bits in any process
@@ -93,7 +92,9 @@ def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
     :func:`~ensemble.integrate.check.integrate_chunk` treats members independently).
     ``kernel_threads`` sets the threads of the compiled backend's kernels in the calling
     thread (1 in a dask worker, whose siblings already use the other cores); None leaves
-    numba's default.
+    numba's default.  With ``buffers`` (see
+    :func:`~ensemble.integrate.check.integrate_chunk`) the trajectories are views of
+    them, to be used before the next chunk.
     """
     if kernel_threads is not None and backend == "compiled":
         from ensemble.integrate.compiled import set_kernel_threads
@@ -102,7 +103,8 @@ def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
     variant, start, end = key
     members = np.arange(start, end, dtype=np.int64)
     design = make_design(scenario, scenario.variants[variant], model, members)
-    result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
+    result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend,
+                             buffers)
     return ChunkOutput(key, result, dict(design.reported))
 
 
@@ -115,15 +117,74 @@ class ChunkSaved:
 
 def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
                            store: WorkStore, token: str, backend: str = DEFAULT_BACKEND,
-                           kernel_threads: int | None = None) -> ChunkOutput | ChunkSaved:
-    """:func:`compute_chunk`, then save the chunk into ``store`` here when this process
-    sees the store's directory (it reads back ``token``, from :meth:`WorkStore.mark`),
-    else hand the whole chunk back for the driver to save."""
-    output = compute_chunk(scenario, model, key, backend, kernel_threads)
+                           kernel_threads: int | None = None,
+                           brackets: Mapping[str, Brackets] | None = None
+                           ) -> ChunkOutput | ChunkSaved:
+    """:func:`compute_chunk`, then save the chunk into ``store`` here (keeping only the
+    candidates inside ``brackets`` when given) when this process sees the store's
+    directory (it reads back ``token``, from :meth:`WorkStore.mark`), else hand the whole
+    chunk back for the driver to save."""
     if not store.shares_directory(token):
-        return output
-    store.save(output.key, output.result, output.reported)
+        return compute_chunk(scenario, model, key, backend, kernel_threads)
+    output = compute_chunk(scenario, model, key, backend, kernel_threads,
+                           _thread_buffers(backend))
+    store.save(output.key, output.result, output.reported, brackets)
     return ChunkSaved(key)
+
+
+class QuantileBrackets:
+    """Which chunks the run saves as candidates for the quantiles, with which brackets.
+
+    The first members of each variant (:meth:`WorkStore.pilot_members`) are saved whole;
+    once they all are, the store derives the variant's brackets from them, and every
+    chunk submitted after that keeps only its candidates (:mod:`ensemble.output.selection`):
+    a fraction of the trajectories, for the same quantiles.
+
+    Parameters
+    ----------
+    store : the run's store.
+    enabled : False to keep every chunk whole (a shard's part file needs them).
+    """
+
+    def __init__(self, store: WorkStore, enabled: bool = True):
+        self.store = store
+        self.pilot = store.pilot_members() if enabled else 0
+        self.ready: dict[int, Mapping[str, Brackets]] = {}
+        for variant in range(len(store.layout.variants)):
+            self._update(variant)
+
+    def _update(self, variant: int) -> None:
+        if self.pilot and variant not in self.ready:
+            found = self.store.brackets(variant)
+            if found is not None:
+                self.ready[variant] = found
+
+    def for_key(self, key: ChunkKey) -> Mapping[str, Brackets] | None:
+        """The brackets chunk ``key`` is saved with (None: kept whole)."""
+        if not self.pilot or key[1] < self.pilot:
+            return None
+        return self.ready.get(key[0])
+
+    def saved(self, key: ChunkKey) -> None:
+        """Chunk ``key`` is saved: derive its variant's brackets if the pilot is in."""
+        if key[1] < self.pilot:
+            self._update(key[0])
+
+
+_workspace = threading.local()
+
+
+def _thread_buffers(backend: str):
+    """This thread's :class:`~ensemble.integrate.compiled.ReportBuffers` (None for the
+    numpy backend): a worker's chunks are saved one after another, each before the next
+    is computed, so they can all be written into the same arrays."""
+    if backend != "compiled":
+        return None
+    if not hasattr(_workspace, "buffers"):
+        from ensemble.integrate.compiled import ReportBuffers
+
+        _workspace.buffers = ReportBuffers()
+    return _workspace.buffers
 
 
 def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
@@ -137,27 +198,24 @@ def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
 # --------------------------------------------------------------------------- executors
 
 
-def available_cores() -> int:
-    """Cores this process may run on."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # not Linux
-        return os.cpu_count() or 1
-
-
 @contextmanager
 def open_client(workers: int | None = None, address: str | None = None,
-                cluster: ClusterProfile | None = None) -> Iterator[Client]:
+                cluster: ClusterProfile | None = None, started: LocalStart | None = None
+                ) -> Iterator[Client]:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
     ----------
     workers : worker processes of a local cluster (default: one per core), each with one
-        thread and single-threaded numerical libraries (:data:`SINGLE_THREAD_ENV`).
+        thread and single-threaded numerical libraries
+        (:data:`ensemble.run.local.SINGLE_THREAD_ENV`).
     address : a running scheduler to connect to instead (``tcp://host:8786``); its
         workers are used as they are.
     cluster : a batch-system profile: worker jobs started by dask-jobqueue, kept at the
         profile's size and cancelled on leaving (:mod:`ensemble.run.clusters`).
+    started : a local cluster already being started (:class:`LocalStart`), used
+        instead of starting one (``workers`` is then ignored); on leaving, its closing
+        only begins (:meth:`LocalStart.release`): its owner closes it.
     """
     if cluster is not None:
         with jobqueue_cluster(cluster) as batch, Client(batch) as client:
@@ -170,31 +228,17 @@ def open_client(workers: int | None = None, address: str | None = None,
         finally:
             client.close()
         return
-    local = LocalCluster(
-        n_workers=workers or available_cores(), threads_per_worker=1, processes=True,
-        dashboard_address=":0", silence_logs=logging.ERROR, env=dict(SINGLE_THREAD_ENV),
-    )
+    if started is not None:
+        try:
+            yield started.client()
+        finally:
+            started.release()   # its owner waits for the close
+        return
+    local = LocalStart(workers)
     try:
-        with Client(local) as client:
-            client.register_plugin(LeaveInterruptsToDriver())
-            yield client
+        yield local.client()
     finally:
         local.close()
-
-
-class LeaveInterruptsToDriver(WorkerPlugin):
-    """Makes a local worker process ignore SIGINT.
-
-    Ctrl-C on a terminal reaches every process of the foreground group; the driver
-    answers it by closing the cluster, so the workers need not (and would only print
-    tracebacks).
-    """
-
-    name = "ensemble-leave-interrupts-to-driver"
-
-    def setup(self, worker) -> None:
-        if threading.current_thread() is threading.main_thread():
-            signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _dashboard_link(client: Client) -> str | None:
@@ -219,17 +263,20 @@ Finished = ChunkOutput | ChunkSaved
 
 def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
                 keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
-    """Compute the chunks one after another in this process, without dask.distributed."""
+    """Compute the chunks one after another in this process, without dask.distributed;
+    each output is valid until the next is asked for (they share buffers)."""
+    buffers = _thread_buffers(backend)
     for key in keys:
         try:
-            output = compute_chunk(scenario, models[key[0]], key, backend)
+            output = compute_chunk(scenario, models[key[0]], key, backend, None, buffers)
         except Exception as error:
             raise _chunk_failed(scenario, key, error) from error
         yield output
 
 
 def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledModel],
-                keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None
+                keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None,
+                brackets: QuantileBrackets | None = None
                 ) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
@@ -258,7 +305,9 @@ def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledMod
                                        backend, 1, key=task_key, pure=False)
             else:
                 future = client.submit(compute_and_save_chunk, scenario, models[key[0]],
-                                       key, store, token, backend, 1, key=task_key,
+                                       key, store, token, backend, 1,
+                                       brackets.for_key(key) if brackets else None,
+                                       key=task_key,
                                        pure=False)
             submitted[future] = key
             running.add(future)
@@ -342,7 +391,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                  address: str | None = None, cluster: ClusterProfile | None = None,
                  resume: bool = False, force: bool = False,
                  progress: Progress | None = None, members: tuple[int, int] | None = None,
-                 finish: Callable[[WorkStore], Path] | None = None) -> Path:
+                 finish: Callable[[WorkStore], Path] | None = None,
+                 started: LocalStart | None = None) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
@@ -370,6 +420,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         :mod:`ensemble.run.shards`); default all.
     finish : what to make of the store once every planned chunk is saved (default
         :meth:`WorkStore.finish`, the result file; a shard writes its part file).
+    started : the local cluster, already being started by the caller, to use when the
+        run goes to a local cluster (the caller closes it).
 
     Returns
     -------
@@ -403,31 +455,80 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
             cluster.max_workers if cluster else workers or available_cores(), backend,
             kernel_block(models[0], scenario, backend))
     keys = store.pending(plan_chunks(scenario, chunk, members=members))
+    brackets = QuantileBrackets(store, enabled=finish is None)
+    # the result writer (xarray) is imported while the chunks compute, not after
+    threading.Thread(target=importlib.import_module, args=("ensemble.output.dataset",),
+                     name="ensemble-import-writer", daemon=True).start()
     progress.start(len(keys), len(store.saved()), sum(end - start for _, start, end in keys))
     try:
         if keys:
             if workers == 0 and address is None and cluster is None:
-                _save_all(store, _in_process(scenario, models, keys, backend), progress)
+                _save_all(store, _in_process(scenario, models, keys, backend), progress,
+                          brackets)
             else:
-                with open_client(workers, address, cluster) as client:
+                with open_client(workers, address, cluster, started) as client:
                     dashboard = _dashboard_link(client)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend,
-                                                 store), progress)
+                                                 store, brackets), progress, brackets)
     finally:
         progress.close()
     progress.note(f"every chunk saved; writing {path}")
-    return finish(store) if finish is not None else store.finish()
+    if finish is not None:
+        return finish(store)
+    return store.finish(lambda key: compute_chunk(scenario, models[key[0]], key,
+                                                  backend).result)
 
 
 def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
-              progress: Progress) -> None:
-    """Save each finished chunk as it arrives (unless its worker saved it); on any exit
-    (an interrupt, a failed save) close ``outputs`` at once, so that tasks still queued
-    are cancelled while the client is open."""
-    with closing(outputs):
+              progress: Progress, brackets: QuantileBrackets | None = None) -> None:
+    """Save each finished chunk as it arrives (unless its worker saved it), making the
+    saved chunks durable every :data:`CHECKPOINT_SECONDS` in a background thread; on any
+    exit (an interrupt, a failed save) close ``outputs`` at once, so that tasks still
+    queued are cancelled while the client is open."""
+    with closing(outputs), Checkpoints(store) as checkpoints:
         for output in outputs:
             if isinstance(output, ChunkOutput):
-                store.save(output.key, output.result, output.reported)
+                store.save(output.key, output.result, output.reported,
+                           brackets.for_key(output.key) if brackets else None)
+            if brackets is not None:
+                brackets.saved(output.key)
+            checkpoints.add(output.key)
             progress.advance(output.key[2] - output.key[1])
+
+
+class Checkpoints:
+    """Makes saved chunks durable (:meth:`WorkStore.make_durable`) in a background thread,
+    at most one batch at a time and at most every ``interval`` seconds, so that syncing
+    never holds up the driver.  Leaving the context waits for the batch in progress and
+    raises its error, if any; chunks not yet synced stay trusted within this boot."""
+
+    def __init__(self, store: WorkStore, interval: float | None = None):
+        self.store = store
+        self.interval = CHECKPOINT_SECONDS if interval is None else interval
+        self.waiting: list[ChunkKey] = []
+        self.started = time.monotonic()
+        self.running: concurrent.futures.Future | None = None
+        self.pool = concurrent.futures.ThreadPoolExecutor(1, "ensemble-checkpoint")
+
+    def __enter__(self) -> Checkpoints:
+        return self
+
+    def add(self, key: ChunkKey) -> None:
+        """Chunk ``key`` is saved; start a batch if it is time."""
+        self.waiting.append(key)
+        if self.running is not None:
+            if not self.running.done():
+                return
+            self.running.result()
+            self.running = None
+        if time.monotonic() - self.started >= self.interval:
+            self.running = self.pool.submit(self.store.make_durable, self.waiting)
+            self.waiting = []
+            self.started = time.monotonic()
+
+    def __exit__(self, *exc_info) -> None:
+        self.pool.shutdown(wait=True)
+        if self.running is not None and exc_info[0] is None:
+            self.running.result()

@@ -1,0 +1,301 @@
+"""Exact quantiles over members from a fraction of their trajectories.
+
+A quantile over members needs, for every reported time and row of a trajectory (a
+*cell*), only the two order statistics that numpy's linear rule interpolates between
+(:func:`~ensemble.output.summary.linear_ranks`).  Keeping every member's value of every
+cell until the end costs gigabytes for large ensembles; this module keeps those near the
+ranks that matter and still gives numpy's bits.
+
+Brackets.  A pilot (the run's first members, kept whole) gives, for each cell and each
+probability p, the pilot's order statistics at ranks ``P p -/+ (Z sqrt(P p (1 - p)) + 2)``
+of its P values: the members' own p-quantile lies between them unless the pilot is off by
+Z standard deviations of a binomial count (normal approximation: about 1e-9 for
+:data:`MARGIN_SD` = 6; the members are drawn independently or stratified, so the pilot is
+a fair sample).  Overlapping intervals of a cell are merged.
+
+Candidates.  Every chunk then keeps, for each cell and interval, its members' values
+inside the interval, how many fall below it, and how many are NaN
+(:func:`chunk_candidates`).
+
+Selection.  Summed over chunks, the counts place each interval in the order of all
+members; when both ranks of a quantile fall inside one interval, its candidates, sorted,
+hold the exact order statistics (:func:`select`).  A cell whose ranks the pilot missed is
+reported, and the caller computes it from whole trajectories.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from ensemble.output.summary import interpolate, linear_ranks
+
+MARGIN_SD = 6.0
+"""Half-width of a bracket in standard deviations of the pilot's binomial rank count."""
+
+PILOT_MEMBERS = 8192
+"""Members of the pilot (the first members of each variant)."""
+
+
+@dataclass(frozen=True)
+class Brackets:
+    """Intervals of values kept for each cell.
+
+    Attributes
+    ----------
+    lower, upper : (cells, K) float64, each cell's disjoint intervals ``[lower, upper]`` in
+        increasing order; unused slots have ``lower = inf, upper = -inf`` (empty).
+    """
+
+    lower: np.ndarray
+    upper: np.ndarray
+
+    def digest(self) -> str:
+        """A fingerprint of the intervals (chunks record the brackets they were cut
+        with)."""
+        return hashlib.sha256(np.ascontiguousarray(self.lower).tobytes()
+                              + np.ascontiguousarray(self.upper).tobytes()).hexdigest()
+
+
+def pilot_brackets(pilot: np.ndarray, probabilities: Sequence[float]) -> Brackets:
+    """Brackets of each cell from the pilot's (cells, P) values, which are sorted in place
+    (NaN ignored; a cell with fewer than two numbers keeps every value)."""
+    pilot.sort(axis=1)
+    finite = np.isfinite(pilot).sum(axis=1)
+    probabilities = np.asarray(probabilities, dtype=np.float64)
+    cells = pilot.shape[0]
+    lower = np.full((cells, len(probabilities)), -np.inf)
+    upper = np.full((cells, len(probabilities)), np.inf)
+    for count in np.unique(finite[finite >= 2]):
+        rows = np.flatnonzero(finite == count)[:, None]
+        centre = count * probabilities
+        margin = MARGIN_SD * np.sqrt(count * probabilities * (1 - probabilities)) + 2
+        low_rank = np.floor(centre - margin).astype(np.int64)
+        high_rank = np.ceil(centre + margin).astype(np.int64)
+        low_kept = np.flatnonzero(low_rank >= 0)
+        high_kept = np.flatnonzero(high_rank <= count - 1)
+        lower[rows, low_kept] = pilot[rows, low_rank[low_kept]]
+        upper[rows, high_kept] = pilot[rows, high_rank[high_kept]]
+    return Brackets(*_merge_intervals(lower, upper))
+
+
+def _merge_intervals(lower: np.ndarray, upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's intervals sorted and merged where they overlap, padded with empty
+    ones."""
+    order = np.argsort(lower, axis=1, kind="stable")
+    lower = np.take_along_axis(lower, order, axis=1)
+    upper = np.take_along_axis(upper, order, axis=1)
+    merged_lower = np.full_like(lower, np.inf)
+    merged_upper = np.full_like(upper, -np.inf)
+    for row in range(lower.shape[0]):
+        slot = -1
+        for low, high in zip(lower[row], upper[row]):
+            if slot >= 0 and low <= merged_upper[row, slot]:
+                merged_upper[row, slot] = max(merged_upper[row, slot], high)
+            else:
+                slot += 1
+                merged_lower[row, slot], merged_upper[row, slot] = low, high
+    used = int((merged_lower != np.inf).sum(axis=1).max(initial=1))
+    return merged_lower[:, :used].copy(), merged_upper[:, :used].copy()
+
+
+@numba.njit(cache=True, nogil=True)
+def _slots(row, keep, lower, upper, used, ignored, slots):
+    """For each member: ``2 k + 1`` when its value lies in interval k, an even number
+    (``2 k``: between intervals k - 1 and k) otherwise, and ``ignored`` where ``keep`` is
+    0 (NaN values, members not included).  Loops over members innermost and without
+    branches, so the compiler vectorises them."""
+    members = row.shape[0]
+    for m in range(members):
+        slots[m] = 0
+    for k in range(used):
+        low = lower[k]
+        high = upper[k]
+        for m in range(members):
+            value = row[m]
+            slots[m] += (value >= low) + (value > high)
+    for m in range(members):
+        slots[m] = slots[m] * keep[m] + ignored * (1 - keep[m])
+
+
+@numba.njit(cache=True, nogil=True)
+def _keep(row, included, keep):
+    """1 for an included member with a number (not NaN), else 0; the count of included
+    NaN values."""
+    nans = 0
+    for m in range(row.shape[0]):
+        number = row[m] == row[m]
+        keep[m] = included[m] * number
+        nans += included[m] * (1 - number)
+    return nans
+
+
+@numba.njit(cache=True, nogil=True)
+def _count_candidates(values, included, lower, upper, used, below, inside, nans, keep):
+    """Per cell and interval: included values below it and inside it; per cell: included
+    NaN values.  Reductions over members innermost, vectorised."""
+    for c in range(values.shape[0]):
+        row = values[c]
+        nans[c] = _keep(row, included, keep)
+        for k in range(used[c]):
+            low = lower[c, k]
+            high = upper[c, k]
+            under = 0
+            within = 0
+            for m in range(row.shape[0]):
+                value = row[m]
+                under += keep[m] * (value < low)
+                within += keep[m] * ((value >= low) & (value <= high))
+            below[c, k] = under
+            inside[c, k] = within
+
+
+@numba.njit(cache=True, nogil=True)
+def _copy_candidates(values, included, lower, upper, used, offsets, out, slots):
+    """Copy the values inside each interval to ``out``, interval by interval in member
+    order, from ``offsets[c * K + k]`` on; every other value goes to the spare last
+    element of ``out`` (a write without a branch)."""
+    intervals = lower.shape[1]
+    ignored = 2 * intervals + 1
+    spare = out.shape[0] - 1
+    cursor = np.empty(ignored + 1, np.int64)
+    step = np.empty(ignored + 1, np.int64)
+    keep = np.empty(values.shape[1], np.int64)
+    for c in range(values.shape[0]):
+        row = values[c]
+        _keep(row, included, keep)
+        _slots(row, keep, lower[c], upper[c], used[c], ignored, slots)
+        cursor[:] = spare
+        step[:] = 0
+        for k in range(used[c]):
+            cursor[2 * k + 1] = offsets[c * intervals + k]
+            step[2 * k + 1] = 1
+        for m in range(row.shape[0]):
+            slot = slots[m]
+            out[cursor[slot]] = row[m]
+            cursor[slot] += step[slot]
+
+
+@dataclass(frozen=True)
+class Candidates:
+    """What a chunk keeps of one trajectory variable.
+
+    Attributes
+    ----------
+    below : (cells, K) int64 included values below each interval.
+    nans : (cells,) int64 included NaN values.
+    offsets : (cells * K + 1,) int64 start of each (cell, interval) in ``values``.
+    values : the included values inside each interval, cell by cell, interval by
+        interval, in member order (None for a chunk whose values are read as needed).
+    """
+
+    below: np.ndarray
+    nans: np.ndarray
+    offsets: np.ndarray
+    values: np.ndarray | None
+
+
+def chunk_candidates(cell_values: np.ndarray, included: np.ndarray,
+                     brackets: Brackets) -> Candidates:
+    """The candidates of a chunk's (cells, members) values; ``included`` marks the members
+    behind the quantiles."""
+    values = np.ascontiguousarray(cell_values, dtype=np.float64)
+    included = np.ascontiguousarray(included, dtype=np.int64)
+    cells, intervals = brackets.lower.shape
+    used = (brackets.lower != np.inf).sum(axis=1)
+    below = np.zeros((cells, intervals), np.int64)
+    inside = np.zeros((cells, intervals), np.int64)
+    nans = np.zeros(cells, np.int64)
+    slots = np.empty(values.shape[1], np.int64)
+    _count_candidates(values, included, brackets.lower, brackets.upper, used, below, inside,
+                      nans, slots)
+    offsets = np.zeros(cells * intervals + 1, np.int64)
+    np.cumsum(inside.ravel(), out=offsets[1:])
+    out = np.empty(int(offsets[-1]) + 1)
+    _copy_candidates(values, included, brackets.lower, brackets.upper, used, offsets, out,
+                     slots)
+    return Candidates(below, nans, offsets, out[:-1])
+
+
+@numba.njit(cache=True, nogil=True)
+def _append_groups(values, offsets, cursor, out):
+    """Copy each group of one chunk (``values[offsets[g]:offsets[g + 1]]``, offsets
+    relative to ``values``) to ``out[cursor[g]:]`` and advance ``cursor[g]``."""
+    for group in range(offsets.shape[0] - 1):
+        start = cursor[group]
+        for i in range(offsets[group], offsets[group + 1]):
+            out[start] = values[i]
+            start += 1
+        cursor[group] = start
+
+
+def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarray,
+           below: np.ndarray, inside: np.ndarray, probabilities: Sequence[float],
+           buffer: np.ndarray | None = None,
+           read: Callable[[int, int, int], np.ndarray] | None = None
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Quantiles of the cells ``cells`` over all members from the chunks' candidates.
+
+    Parameters
+    ----------
+    parts : every chunk's candidates.
+    cells : the block of cells to compute.
+    count : included members of the variant.
+    nans, below, inside : the chunks' counts summed, for all cells ((cells,) and
+        (cells, K)).
+    probabilities : the quantiles' probabilities.
+    buffer : float64 memory for the block's candidates, reused from block to block
+        (grown when short); default new memory.
+    read : ``read(i, start, stop)``, values ``start .. stop - 1`` of part i, for parts
+        whose values stay on disk (default: ``parts[i].values[start:stop]``).
+
+    Returns
+    -------
+    (quantile, block) values, and a (block,) mask of the cells whose ranks fell outside
+    every interval (their values are left NaN for the caller to compute).
+    """
+    first, stop = cells.start, cells.stop
+    intervals = below.shape[1]
+    n_cells = stop - first
+    probabilities = np.asarray(probabilities, dtype=np.float64)
+    result = np.full((len(probabilities), n_cells), np.nan)
+    missed = np.zeros(n_cells, bool)
+    if count == 0:
+        return result, missed
+    low_rank, high_rank, fraction = linear_ranks(count, probabilities)
+    block_below = below[cells][:, None, :]                  # (cell, 1, K)
+    block_end = block_below + inside[cells][:, None, :]
+    holds = ((block_below <= low_rank[None, :, None])
+             & (high_rank[None, :, None] < block_end))       # (cell, quantile, K)
+    interval = holds.argmax(axis=2)
+    has_nan = nans[cells] > 0
+    missed = ~holds.any(axis=2).all(axis=1) & ~has_nan
+    # every chunk's candidates of the block, group by group, then each group sorted
+    sizes = inside[cells].ravel()
+    starts = np.zeros(sizes.size + 1, np.int64)
+    np.cumsum(sizes, out=starts[1:])
+    out = (buffer[:starts[-1]] if buffer is not None and buffer.size >= starts[-1]
+           else np.empty(starts[-1]))
+    cursor = starts[:-1].copy()
+    for index, part in enumerate(parts):
+        offsets = np.asarray(part.offsets[first * intervals:stop * intervals + 1])
+        values = (read(index, offsets[0], offsets[-1]) if read is not None
+                  else part.values[offsets[0]:offsets[-1]])
+        _append_groups(values, offsets - offsets[0], cursor, out)
+    wanted = np.zeros((n_cells, intervals), bool)
+    good = ~missed & ~has_nan
+    wanted[np.flatnonzero(good)[:, None], interval[good]] = True
+    for group in np.flatnonzero(wanted.ravel()):
+        out[starts[group]:starts[group + 1]].sort()
+    # the order statistics: group start + rank - values below the interval
+    rows = np.flatnonzero(good)
+    base = starts[rows[:, None] * intervals + interval[rows]] - below[first + rows[:, None],
+                                                                       interval[rows]]
+    lower_values = out[base + low_rank[None, :]]
+    upper_values = out[base + high_rank[None, :]]
+    result[:, rows] = interpolate(lower_values.T, upper_values.T, fraction[:, None])
+    return result, missed

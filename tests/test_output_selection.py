@@ -1,0 +1,71 @@
+"""Exact quantiles from a fraction of the members' values (ensemble/output/selection.py).
+
+Reference: ``numpy.quantile`` (default "linear", Hyndman and Fan 1996, definition 7), bit
+for bit, over every member's values held in memory.  The margin of the brackets rests on
+the normal approximation of a binomial count (common practice, no source beyond any
+probability text).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from ensemble.output import selection
+from ensemble.output.selection import chunk_candidates, pilot_brackets, select
+
+PROBABILITIES = [0.0, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 1.0]
+
+
+def _cells(rng: np.random.Generator, members: int) -> np.ndarray:
+    """Cells of illustrative values: spread over decades, all equal, half equal, rounded
+    (many ties), one NaN, all NaN, and a two-humped one."""
+    values = rng.lognormal(size=(12, members)) * rng.integers(1, 1000, size=(12, 1))
+    values[3] = 7.0
+    values[4, : members // 2] = 1.0
+    values[5, 100] = np.nan
+    values[6] = np.nan
+    values[7] = np.round(values[7])
+    values[8] = np.where(rng.random(members) < 0.3, 1e4, 0.0) + rng.normal(size=members)
+    return values
+
+
+def _quantiles_from_candidates(values, included, pilot, chunk=1536):
+    brackets = pilot_brackets(values[:, :pilot][:, included[:pilot]].copy(), PROBABILITIES)
+    parts = [chunk_candidates(values[:, first:first + chunk], included[first:first + chunk],
+                              brackets) for first in range(0, values.shape[1], chunk)]
+    cells, intervals = brackets.lower.shape
+    below = sum(part.below for part in parts)
+    nans = sum(part.nans for part in parts)
+    inside = sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts)
+    result, missed = select(parts, slice(0, cells), int(included.sum()), nans, below, inside,
+                            PROBABILITIES)
+    kept = sum(part.values.size for part in parts) / values.size
+    return result, missed, kept
+
+
+def test_candidates_give_numpys_quantiles_from_a_fraction_of_the_values():
+    rng = np.random.default_rng(7)
+    values = _cells(rng, 40_000)
+    included = rng.random(values.shape[1]) > 0.05      # members left out of the summary
+    included[100] = True                               # the NaN counts
+    result, missed, kept = _quantiles_from_candidates(values, included, pilot=8192)
+    assert not missed.any()
+    np.testing.assert_array_equal(result, np.quantile(values[:, included], PROBABILITIES,
+                                                      axis=1))
+    assert kept < 0.5           # cells of equal values keep everything, the others ~30 %
+
+
+@pytest.mark.parametrize("margin", [0.0, 1.0])
+def test_narrow_brackets_report_their_misses_and_keep_the_rest_exact(monkeypatch, margin):
+    """With brackets far too narrow, the cells whose ranks fall outside are reported (for
+    the caller to compute from whole trajectories); every other cell is still exact."""
+    monkeypatch.setattr(selection, "MARGIN_SD", margin)
+    rng = np.random.default_rng(11)
+    values = _cells(rng, 20_000)
+    included = np.ones(values.shape[1], bool)
+    result, missed, _ = _quantiles_from_candidates(values, included, pilot=256)
+    assert missed.any()
+    expected = np.quantile(values, PROBABILITIES, axis=1)
+    np.testing.assert_array_equal(result[:, ~missed], expected[:, ~missed])
+    assert np.isnan(result[:, missed]).all()
