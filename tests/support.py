@@ -286,6 +286,36 @@ class Case:
         return np.array([float(t) for t in self.scenario.report_times()])
 
 
+def one_compartment(*, name: str, rate: str, k: float, days: float, step: float,
+                    report_every: float, solver_extra: str = "") -> str:
+    """Scenario text of one compartment X of 1,000 persons lost at ``rate`` (in X and the
+    parameter k), a single member: the test models with a known solution."""
+    return f"""
+[scenario]
+name = "{name}"
+days = {days}
+members = 1
+
+[model]
+compartments = ["X"]
+population = 1000
+initial = {{ X = "rest" }}
+
+[[model.flows]]
+name = "loss"
+from = "X"
+rate = "{rate}"
+
+[parameters]
+k = {k}
+
+[solver]
+step = {step}
+report_every = {report_every}
+{solver_extra}
+"""
+
+
 def load_case(tmp_path: Path, toml: str, name: str = "case") -> Case:
     """Write ``toml`` to ``tmp_path`` and load, compile and design all its members."""
     scenario = load_text(tmp_path, toml, name)

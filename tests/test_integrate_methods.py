@@ -17,31 +17,12 @@ import pytest
 from ensemble.integrate.methods import METHODS
 from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED,
                                        NON_FINITE, STEP_CHECK_FAILED)
-from support import IMPLICIT, load_case
+from support import IMPLICIT, load_case, one_compartment
 
-DECAY = """
-[scenario]
-name = "decay"
-days = {days}
-members = 1
-
-[model]
-compartments = ["X"]
-population = 1000
-initial = {{ X = "rest" }}
-
-[[model.flows]]
-name = "loss"
-from = "X"
-rate = "k * X"
-
-[parameters]
-k = {k}
-
-[solver]
-step = {step}
-report_every = 1
-"""
+def decay(days: float, k: float, step: float) -> str:
+    """x' = -k x from 1000 (illustrative)."""
+    return one_compartment(name="decay", rate="k * X", k=k, days=days, step=step,
+                           report_every=1)
 
 ORDERS = {"forward-euler": 1, "heun": 2, "rk4": 4, "backward-euler": 1, "trapezoid": 2}
 """Classical orders (HNW I sec. II.1 for the explicit tableaux; HW II sec. IV.3 for the
@@ -52,7 +33,7 @@ theta methods)."""
 def test_method_order_on_linear_decay(tmp_path, method):
     """y' = -y, y(0) = 1000, exact y(2) = 1000 exp(-2): the error at h and h/2 falls by
     2^p (HNW I, sec. II.3)."""
-    case = load_case(tmp_path, DECAY.format(days=2, k=1.0, step=0.1))
+    case = load_case(tmp_path, decay(days=2, k=1.0, step=0.1))
     assert METHODS[method].order == ORDERS[method]
     exact = 1000.0 * math.exp(-2.0)
     errors = [abs(case.run(method, step=h, steps_per_report=n).state[0, 0, -1] - exact)
@@ -69,7 +50,7 @@ def test_stability_at_h_lambda_minus_3(tmp_path, method, growth):
     """With h lambda = -3 each step multiplies y by the stability function R(-3) (HW II,
     sec. IV.2-IV.3): forward Euler grows (|R| = 2) and is flagged; backward Euler and the
     trapezoid (A-stable, Dahlquist 1963) stay bounded."""
-    case = load_case(tmp_path, DECAY.format(days=10, k=3.0, step=1))
+    case = load_case(tmp_path, decay(days=10, k=3.0, step=1))
     result = case.chunk(method)
     x = result.state[0, 0]
     np.testing.assert_allclose(x, 1000.0 * growth ** np.arange(11), rtol=1e-12)

@@ -19,7 +19,7 @@ from ensemble.integrate.compiled import integrate_fixed_compiled
 from ensemble.integrate.methods import METHODS
 from ensemble.integrate.status import NEWTON_NOT_CONVERGED
 from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS, integrate_fixed
-from support import load_case
+from support import load_case, one_compartment
 
 
 def _dense(pattern: list[set[int]]) -> np.ndarray:
@@ -128,30 +128,11 @@ def test_block_solve_matches_lapack_and_keeps_members_apart():
     assert np.array_equal(solution[:, :3], calm[:, :3])
 
 
-CURB = """
-[scenario]
-name = "curb"
-days = {step}
-members = 1
-
-[model]
-compartments = ["X"]
-population = 1000
-initial = {{ X = "rest" }}
-
-[[model.flows]]
-name = "loss"
-from = "X"
-rate = "k * X * X / 1000"
-
-[parameters]
-k = 1.0
-
-[solver]
-step = {step}
-report_every = {step}
-newton = {{ tol = 1e-12, max_iter = {max_iter} }}
-"""
+def curb(step: float, max_iter: int) -> str:
+    """x' = -k x^2 / 1000 from 1000 over one step (illustrative)."""
+    return one_compartment(name="curb", rate="k * X * X / 1000", k=1.0, days=step, step=step,
+                           report_every=step,
+                           solver_extra=f"newton = {{ tol = 1e-12, max_iter = {max_iter} }}")
 
 
 @pytest.mark.parametrize("backend", ["numpy", "compiled"])
@@ -169,7 +150,7 @@ def test_newton_iterates_by_hand(tmp_path, monkeypatch, backend, max_iter):
     monkeypatch.setenv("ENSEMBLE_KERNEL_CACHE", str(tmp_path / "kernels"))
     assert SHARED_MATRIX_ITERATIONS == 2
     h, k, x0 = 0.25, 1.0, 1000.0
-    case = load_case(tmp_path, CURB.format(step=h, max_iter=max_iter))
+    case = load_case(tmp_path, curb(step=h, max_iter=max_iter))
 
     def residual(w: float) -> float:
         return w - x0 + h * k * w * w / 1000.0
