@@ -29,9 +29,13 @@ an SEIR: the numpy backend does some 3e7 a second, the compiled kernels about te
 more).  Common practice, no source: tasks of 0.1-10 s amortise the scheduler's overhead of
 about a millisecond a task while keeping the load balanced."""
 
-MAX_CHUNK_BYTES = 32 * 2**20
-"""Largest trajectory block (states and flow counts of every member of a chunk) that one
-task hands back, so that a few chunks in flight per worker stay well inside memory."""
+MAX_CHUNK_BYTES = 96 * 2**20
+"""Largest trajectory block (states and flow counts of every member of a chunk) of one
+task: a worker holds two such blocks (the run and its check, :class:`~ensemble.integrate.compiled.ReportBuffers`) and
+one chunk at a time, so memory stays within a few hundred MB a worker, while tasks stay
+large enough that their fixed costs (scheduling, opening files, setting up the draws)
+fade (measured: 4,608-member SEIR chunks finish a 200,000-member run 7-10 % sooner than
+1,536-member ones)."""
 
 TASKS_PER_WORKER = 4
 """With the default chunk size, at least this many tasks per worker when there are enough
