@@ -38,8 +38,8 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         chunk: int | None = None, workers: int | None = None, address: str | None = None,
         resume: bool = False, force: bool = False, progress: bool | None = None,
         backend: str | None = None, history: str | None = None,
-        cluster: ClusterProfile | str | None = None, shard: Shard | str | None = None
-        ) -> Path:
+        cluster: ClusterProfile | str | None = None, shard: Shard | str | None = None,
+        processes: bool = False) -> Path:
     """Run every variant of a scenario and write its result file.
 
     Parameters
@@ -49,8 +49,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     output : result path, instead of the file's ``output.path``.
     chunk : members per task (default: the file's ``[compute] chunk``, else a size that
         gives tasks of a second or so and several per worker).
-    workers : worker processes on this machine (default: the file's, else one per core);
-        ``0`` computes everything in this process, without dask.distributed.
+    workers : workers on this machine (default: the file's, else one per core): threads
+        of this process, or worker processes with ``processes``; ``0`` computes
+        everything in this process, without dask.distributed.
     address : a running dask scheduler to use instead of a local cluster.
     resume : continue from ``<output>.partial`` (afresh if there is none; nothing to do
         if the result is complete with the same fingerprint).
@@ -64,6 +65,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         ``"local"`` is this machine.
     shard : ``"I/N"``: compute only shard I of N and write a part file to ``output``
         (default ``<result stem>.shard-I-of-N.nc``) for :func:`merge`.
+    processes : local workers in processes of their own (a worker that dies loses only
+        its task) instead of threads of this process (faster: nothing is copied between
+        processes or imported again).
 
     Returns
     -------
@@ -88,18 +92,19 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     on_this_machine = (local_workers != 0 and profile is None
                        and (address or scenario.compute.address) is None)
     # the local cluster starts while the rest of the pipeline is imported
-    started = LocalStart(local_workers) if on_this_machine else None
+    started = LocalStart(local_workers, processes) if on_this_machine else None
     try:
         return _run(scenario, started, output=output, chunk=chunk, workers=workers,
                     address=address, resume=resume, force=force, progress=progress,
-                    backend=backend, history=history, profile=profile, shard=shard)
+                    backend=backend, history=history, profile=profile, shard=shard,
+                    processes=processes)
     finally:
         if started is not None:
             started.close()
 
 
 def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume, force,
-         progress, backend, history, profile, shard) -> Path:
+         progress, backend, history, profile, shard, processes) -> Path:
     """:func:`run` once the scenario is loaded and any local cluster is starting."""
     import dataclasses
 
@@ -122,7 +127,7 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
     return run_scenario(scenario, history=history, backend=backend,
                         chunk=chunk, workers=workers, address=address, cluster=profile,
                         resume=resume, force=force, progress=Progress(bar=progress),
-                        started=started,
+                        started=started, processes=processes,
                         **(engine_options(scenario, part, backend) if part else {}))
 
 

@@ -56,8 +56,12 @@ def run(
         None, "--chunk", min=1, help="Members per task (changes no number of the result)."),
     workers: Optional[int] = typer.Option(
         None, "--workers", min=0,
-        help="Worker processes on this machine (default one per core; 0: no dask, "
-             "everything in this process)."),
+        help="Workers on this machine (default one per core): threads of this process, "
+             "or processes with --processes; 0: no dask, everything in this process."),
+    processes: bool = typer.Option(
+        False, "--processes",
+        help="Local workers in processes of their own (a worker that dies loses only its "
+             "task) instead of threads."),
     address: Optional[str] = typer.Option(
         None, "--address", help="A running dask scheduler to use, e.g. tcp://host:8786."),
     resume: bool = typer.Option(
@@ -104,7 +108,7 @@ def run(
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
                        address=address, resume=resume, force=force,
                        backend=backend.value if backend else None, history=history,
-                       cluster=profile or "local", shard=shard)
+                       cluster=profile or "local", shard=shard, processes=processes)
     except ResultExists as error:
         _stop(f"error: {error}; use --force to replace it", 2)
     except FingerprintMismatch as error:

@@ -27,7 +27,8 @@ def run_into(directory: Path, name: str, *, members: int = 40, days: int = 30,
 
 def test_chunk_size_workers_and_scheduler_change_no_bit(tmp_path: Path) -> None:
     """In this process with chunks of 7, 50 and all 40 members; on a running one-worker
-    scheduler given by address; on the default local cluster with two workers."""
+    scheduler given by address; on the default local cluster with two worker threads, and
+    with two worker processes."""
     reference = run_into(tmp_path, "in-process-7.nc", workers=0, chunk=7)
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
                       dashboard_address=None) as running:
@@ -37,7 +38,9 @@ def test_chunk_size_workers_and_scheduler_change_no_bit(tmp_path: Path) -> None:
         run_into(tmp_path, "in-process-50.nc", workers=0, chunk=50),
         run_into(tmp_path, "in-process-all.nc", workers=0, chunk=40),
         on_address,
-        run_into(tmp_path, "local-cluster-2-workers.nc", workers=2, chunk=7),
+        run_into(tmp_path, "local-cluster-2-threads.nc", workers=2, chunk=7),
+        run_into(tmp_path, "local-cluster-2-processes.nc", workers=2, chunk=7,
+                 processes=True),
     ]
     for other in others:
         assert_same_numbers(reference, other)
@@ -49,7 +52,8 @@ def test_a_killed_worker_does_not_lose_the_run(tmp_path: Path) -> None:
     process."""
     scenario = write_scenario(tmp_path, members=30, days=60)
     process = subprocess.Popen(
-        ensemble_command("run", scenario, "--workers", "2", "--chunk", "2"), cwd=tmp_path,
+        ensemble_command("run", scenario, "--workers", "2", "--processes", "--chunk", "2"),
+        cwd=tmp_path,
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
         victim = wait_for_busy_worker(process, tmp_path / "result.nc.partial")

@@ -42,7 +42,7 @@ from ensemble.model.compile import CompiledModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
 
-GENERATOR_VERSION = 2
+GENERATOR_VERSION = 3
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
 
@@ -670,6 +670,9 @@ class KernelSource:
             f"def integrate_block(m0, {arguments}):",
             '    """Integrate members m0 .. m0 + BLOCK - 1."""',
         ]
+        # two drivers of the same blocks (the same bits): blocks spread over numba's
+        # threads, or one after another in the calling thread, without the GIL and
+        # without numba's threading layer, for callers that are threads of their own
         driver = [
             "",
             "",
@@ -678,6 +681,13 @@ class KernelSource:
             '    """Integrate a padded chunk, blocks in parallel: see '
             'ensemble.integrate.compiled."""',
             "    for blk in prange(y0.shape[1] // BLOCK):",
+            f"        integrate_block(blk * BLOCK, {arguments})",
+            "",
+            "",
+            "@njit(nogil=True, cache=True, error_model='numpy', boundscheck=False)",
+            f"def integrate_serial({arguments}):",
+            '    """Integrate a padded chunk, block after block, in the calling thread."""',
+            "    for blk in range(y0.shape[1] // BLOCK):",
             f"        integrate_block(blk * BLOCK, {arguments})",
         ]
         return "\n".join(header + ["    " + line[4:] for line in body] + driver) + "\n"

@@ -13,10 +13,12 @@ processes compiling at once never see half a file; an existing file is never rew
 (numba keys its cache on the file's modification time).
 
 Threads.  The kernel spreads blocks of members over numba's threads.  A process that runs
-chunks alone should use every core (the default); a process that is one of several
-workers on the same machine (a dask worker) should use one thread: call
-:func:`set_kernel_threads` with 1 in the worker (or start it with ``NUMBA_NUM_THREADS=1``)
-so that workers times threads never exceeds the cores.
+chunks alone should use every core (the default); a worker that shares the machine with
+others (a dask worker thread or process) should use one thread: call
+:func:`set_kernel_threads` with 1 in it (or start it with ``NUMBA_NUM_THREADS=1``) so
+that workers times threads never exceeds the cores.  With one thread the kernel's serial
+driver runs the blocks in the calling thread without holding the GIL and without numba's
+threading layer, so several threads of one process may integrate at once.
 """
 
 from __future__ import annotations
@@ -195,7 +197,8 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
             knots = (np.rint(slot.days / step).astype(np.int64) if slot.between == "step"
                      else np.ascontiguousarray(slot.days, dtype=np.float64))
             schedules += [knots, _columns(values, columns)]
-        module.integrate(_columns(design.initial, columns),
+        kernel = module.integrate if kernel_threads() > 1 else module.integrate_serial
+        kernel(_columns(design.initial, columns),
                          _columns(design.parameters, columns), *schedules,
                          float(step), int(steps_per_report), int(n_reports), float(atol),
                          float(newton.tol), int(newton.max_iter), state, flow_count, status)

@@ -200,15 +200,14 @@ def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
 
 @contextmanager
 def open_client(workers: int | None = None, address: str | None = None,
-                cluster: ClusterProfile | None = None, started: LocalStart | None = None
-                ) -> Iterator[Client]:
+                cluster: ClusterProfile | None = None, started: LocalStart | None = None,
+                processes: bool = False) -> Iterator[Client]:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
     ----------
-    workers : worker processes of a local cluster (default: one per core), each with one
-        thread and single-threaded numerical libraries
-        (:data:`ensemble.run.local.SINGLE_THREAD_ENV`).
+    workers : workers of a local cluster (default: one per core): threads of this process,
+        or with ``processes`` worker processes (:class:`ensemble.run.local.LocalStart`).
     address : a running scheduler to connect to instead (``tcp://host:8786``); its
         workers are used as they are.
     cluster : a batch-system profile: worker jobs started by dask-jobqueue, kept at the
@@ -216,6 +215,7 @@ def open_client(workers: int | None = None, address: str | None = None,
     started : a local cluster already being started (:class:`LocalStart`), used
         instead of starting one (``workers`` is then ignored); on leaving, its closing
         only begins (:meth:`LocalStart.release`): its owner closes it.
+    processes : local workers in processes of their own instead of threads.
     """
     if cluster is not None:
         with jobqueue_cluster(cluster) as batch, Client(batch) as client:
@@ -234,7 +234,7 @@ def open_client(workers: int | None = None, address: str | None = None,
         finally:
             started.release()   # its owner waits for the close
         return
-    local = LocalStart(workers)
+    local = LocalStart(workers, processes)
     try:
         yield local.client()
     finally:
@@ -392,7 +392,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                  resume: bool = False, force: bool = False,
                  progress: Progress | None = None, members: tuple[int, int] | None = None,
                  finish: Callable[[WorkStore], Path] | None = None,
-                 started: LocalStart | None = None) -> Path:
+                 started: LocalStart | None = None, processes: bool = False) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
@@ -407,7 +407,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     backend : integration backend, ``"numpy"`` or ``"compiled"``.
     chunk : members per task; default from the file's ``[compute] chunk``, else
         :func:`~ensemble.run.plan.default_chunk`.
-    workers : worker processes of the local cluster (default one per core); ``0`` runs
+    workers : workers of the local cluster (default one per core); ``0`` runs
         every chunk in this process, without dask.distributed.
     address : a running dask scheduler to use instead of a local cluster.
     cluster : a batch-system profile whose worker jobs do the work instead of a local
@@ -422,6 +422,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         :meth:`WorkStore.finish`, the result file; a shard writes its part file).
     started : the local cluster, already being started by the caller, to use when the
         run goes to a local cluster (the caller closes it).
+    processes : local workers in processes of their own instead of threads of this one
+        (:mod:`ensemble.run.local`).
 
     Returns
     -------
@@ -466,7 +468,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                 _save_all(store, _in_process(scenario, models, keys, backend), progress,
                           brackets)
             else:
-                with open_client(workers, address, cluster, started) as client:
+                with open_client(workers, address, cluster, started, processes) as client:
                     dashboard = _dashboard_link(client)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
