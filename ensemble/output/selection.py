@@ -210,14 +210,14 @@ def chunk_candidates(cell_values: np.ndarray, included: np.ndarray,
     below = np.zeros((cells, intervals), np.int64)
     inside = np.zeros((cells, intervals), np.int64)
     nans = np.zeros(cells, np.int64)
-    slots = np.empty(values.shape[1], np.int64)
+    scratch = np.empty(values.shape[1], np.int64)     # one entry a member, reused per cell
     _count_candidates(values, included, brackets.lower, brackets.upper, used, below, inside,
-                      nans, slots)
+                      nans, scratch)
     offsets = np.zeros(cells * intervals + 1, np.int64)
     np.cumsum(inside.ravel(), out=offsets[1:])
     out = np.empty(int(offsets[-1]) + 1)
     _copy_candidates(values, included, brackets.lower, brackets.upper, used, offsets, out,
-                     slots)
+                     scratch)
     return Candidates(below, nans, offsets, out[:-1])
 
 
