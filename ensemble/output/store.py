@@ -86,6 +86,11 @@ FINISH_THREADS = min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaf
 blocks."""
 
 
+_derived_brackets: dict[tuple[str, str, int], dict[str, Brackets]] = {}
+"""Brackets derived in this process, by (work directory, fingerprint, variant): tasks get
+copies of the store, and a pilot gives the same brackets every time."""
+
+
 class OutputError(Exception):
     """Base of the output layer's errors."""
 
@@ -334,8 +339,7 @@ class WorkStore:
         return end - first
 
     def save(self, key: ChunkKey, result: ChunkResult,
-             reported: Mapping[str, np.ndarray],
-             brackets: Mapping[str, Brackets] | None = None) -> None:
+             reported: Mapping[str, np.ndarray], candidates: bool = False) -> None:
         """Store one finished chunk (temporary name, then rename; see the module's note on
         durability and :meth:`make_durable`).
 
@@ -349,9 +353,9 @@ class WorkStore:
         result : the chunk's trajectories and diagnostics.
         reported : ``Design.reported`` of the chunk: name -> (M,) or (n_groups, M); every
             name in ``layout.parameters`` must be present (others are ignored).
-        brackets : keep of each trajectory only the candidates for the quantiles inside
-            these brackets (:meth:`brackets`; only for members past the pilot and a result
-            without members' trajectories), instead of every value.
+        candidates : keep of each trajectory only the candidates for the quantiles
+            (:mod:`.selection`) when the chunk is past its variant's pilot and the pilot is
+            saved (:meth:`brackets`); otherwise, and by default, every value.
 
         Raises
         ------
@@ -361,9 +365,8 @@ class WorkStore:
         """
         layout = self.layout
         count = self._check_key(key)
-        if brackets is not None and not 0 < self.pilot_members() <= key[1]:
-            raise ValueError(f"chunk {key}: only members past the pilot of a result "
-                             "without members' trajectories are kept as candidates")
+        pilot = self.pilot_members()
+        brackets = self.brackets(key[0]) if candidates and 0 < pilot <= key[1] else None
         if not np.array_equal(result.members, np.arange(key[1], key[2])):
             raise ValueError(f"chunk {key} holds members {result.members[:3]}...")
         expected = {"state": (count, layout.n_states, layout.n_reports),
@@ -431,8 +434,14 @@ class WorkStore:
     def brackets(self, variant: int) -> dict[str, Brackets] | None:
         """The brackets of each trajectory's quantiles for ``variant``, from its pilot
         members (the included ones); None while a pilot member is not saved, or without
-        a pilot.  The same saved pilot gives the same brackets."""
+        a pilot.  The same saved pilot gives the same brackets, so processes that save
+        chunks into this directory may each derive them (once: they are kept)."""
         pilot = self.pilot_members()
+        known = (str(self.work.resolve()), self.layout.fingerprint, variant)
+        if known in _derived_brackets:      # a copy of this store in the same process
+            self._brackets[variant] = _derived_brackets[known]
+        if variant in self._brackets:
+            return self._brackets[variant]
         if not pilot or self.pending([(variant, 0, pilot)]):
             return None
         if variant not in self._brackets:
@@ -454,6 +463,7 @@ class WorkStore:
             self._brackets[variant] = {
                 name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
                 for name in STREAMED}
+            _derived_brackets[known] = self._brackets[variant]
         return self._brackets[variant]
 
     def make_durable(self, keys: Sequence[ChunkKey]) -> None:

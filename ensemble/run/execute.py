@@ -31,7 +31,6 @@ from ensemble.integrate.check import ChunkResult, integrate_chunk
 from ensemble.integrate.codegen import block_size
 from ensemble.integrate.methods import METHODS
 from ensemble.model.compile import CompiledModel, compile_model
-from ensemble.output.selection import Brackets
 from ensemble.output.store import ChunkKey, ResultLayout, StoreWriteError, WorkStore
 from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
 from ensemble.run.local import LocalStart, available_cores
@@ -117,58 +116,18 @@ class ChunkSaved:
 
 def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
                            store: WorkStore, token: str, backend: str = DEFAULT_BACKEND,
-                           kernel_threads: int | None = None,
-                           brackets: Mapping[str, Brackets] | None = None
+                           kernel_threads: int | None = None, candidates: bool = False
                            ) -> ChunkOutput | ChunkSaved:
-    """:func:`compute_chunk`, then save the chunk into ``store`` here (keeping only the
-    candidates inside ``brackets`` when given) when this process sees the store's
-    directory (it reads back ``token``, from :meth:`WorkStore.mark`), else hand the whole
-    chunk back for the driver to save."""
+    """:func:`compute_chunk`, then save the chunk into ``store`` here (as candidates for
+    the quantiles when ``candidates`` and its pilot is in, :meth:`WorkStore.save`) when
+    this process sees the store's directory (it reads back ``token``, from
+    :meth:`WorkStore.mark`), else hand the whole chunk back for the driver to save."""
     if not store.shares_directory(token):
         return compute_chunk(scenario, model, key, backend, kernel_threads)
     output = compute_chunk(scenario, model, key, backend, kernel_threads,
                            _thread_buffers(backend))
-    store.save(output.key, output.result, output.reported, brackets)
+    store.save(output.key, output.result, output.reported, candidates)
     return ChunkSaved(key)
-
-
-class QuantileBrackets:
-    """Which chunks the run saves as candidates for the quantiles, with which brackets.
-
-    The first members of each variant (:meth:`WorkStore.pilot_members`) are saved whole;
-    once they all are, the store derives the variant's brackets from them, and every
-    chunk submitted after that keeps only its candidates (:mod:`ensemble.output.selection`):
-    a fraction of the trajectories, for the same quantiles.
-
-    Parameters
-    ----------
-    store : the run's store.
-    enabled : False to keep every chunk whole (a shard's part file needs them).
-    """
-
-    def __init__(self, store: WorkStore, enabled: bool = True):
-        self.store = store
-        self.pilot = store.pilot_members() if enabled else 0
-        self.ready: dict[int, Mapping[str, Brackets]] = {}
-        for variant in range(len(store.layout.variants)):
-            self._update(variant)
-
-    def _update(self, variant: int) -> None:
-        if self.pilot and variant not in self.ready:
-            found = self.store.brackets(variant)
-            if found is not None:
-                self.ready[variant] = found
-
-    def for_key(self, key: ChunkKey) -> Mapping[str, Brackets] | None:
-        """The brackets chunk ``key`` is saved with (None: kept whole)."""
-        if not self.pilot or key[1] < self.pilot:
-            return None
-        return self.ready.get(key[0])
-
-    def saved(self, key: ChunkKey) -> None:
-        """Chunk ``key`` is saved: derive its variant's brackets if the pilot is in."""
-        if key[1] < self.pilot:
-            self._update(key[0])
 
 
 _workspace = threading.local()
@@ -276,8 +235,7 @@ def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
 
 def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledModel],
                 keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None,
-                brackets: QuantileBrackets | None = None
-                ) -> Generator[Finished, None, None]:
+                candidates: bool = False) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
     With ``store``, a worker that sees its directory (:meth:`WorkStore.mark`, checked by
@@ -305,8 +263,7 @@ def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledMod
                                        backend, 1, key=task_key, pure=False)
             else:
                 future = client.submit(compute_and_save_chunk, scenario, models[key[0]],
-                                       key, store, token, backend, 1,
-                                       brackets.for_key(key) if brackets else None,
+                                       key, store, token, backend, 1, candidates,
                                        key=task_key,
                                        pure=False)
             submitted[future] = key
@@ -457,7 +414,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
             cluster.max_workers if cluster else workers or available_cores(), backend,
             kernel_block(models[0], scenario, backend))
     keys = store.pending(plan_chunks(scenario, chunk, members=members))
-    brackets = QuantileBrackets(store, enabled=finish is None)
+    candidates = finish is None     # a shard's part file needs every value
     # the result writer (xarray) is imported while the chunks compute, not after
     threading.Thread(target=importlib.import_module, args=("ensemble.output.dataset",),
                      name="ensemble-import-writer", daemon=True).start()
@@ -466,14 +423,14 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         if keys:
             if workers == 0 and address is None and cluster is None:
                 _save_all(store, _in_process(scenario, models, keys, backend), progress,
-                          brackets)
+                          candidates)
             else:
                 with open_client(workers, address, cluster, started, processes) as client:
                     dashboard = _dashboard_link(client)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend,
-                                                 store, brackets), progress, brackets)
+                                                 store, candidates), progress, candidates)
     finally:
         progress.close()
     progress.note(f"every chunk saved; writing {path}")
@@ -484,18 +441,16 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
 
 
 def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
-              progress: Progress, brackets: QuantileBrackets | None = None) -> None:
-    """Save each finished chunk as it arrives (unless its worker saved it), making the
-    saved chunks durable every :data:`CHECKPOINT_SECONDS` in a background thread; on any
+              progress: Progress, candidates: bool = False) -> None:
+    """Save each finished chunk as it arrives (unless its worker saved it; as candidates
+    for the quantiles with ``candidates``, :meth:`WorkStore.save`), making the saved
+    chunks durable every :data:`CHECKPOINT_SECONDS` in a background thread; on any
     exit (an interrupt, a failed save) close ``outputs`` at once, so that tasks still
     queued are cancelled while the client is open."""
     with closing(outputs), Checkpoints(store) as checkpoints:
         for output in outputs:
             if isinstance(output, ChunkOutput):
-                store.save(output.key, output.result, output.reported,
-                           brackets.for_key(output.key) if brackets else None)
-            if brackets is not None:
-                brackets.saved(output.key)
+                store.save(output.key, output.result, output.reported, candidates)
             checkpoints.add(output.key)
             progress.advance(output.key[2] - output.key[1])
 
