@@ -80,8 +80,6 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     ensemble.run.RunFailed, ensemble.output.StoreWriteError, OSError : the run failed;
         finished chunks are kept for ``resume`` (exit 1).
     """
-    import dataclasses
-
     from ensemble.run.local import LocalStart
 
     if not isinstance(scenario, Scenario):

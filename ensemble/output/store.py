@@ -87,8 +87,8 @@ blocks."""
 
 
 _derived_brackets: dict[tuple[str, str, int], dict[str, Brackets]] = {}
-"""Brackets derived in this process, by (work directory, fingerprint, variant): tasks get
-copies of the store, and a pilot gives the same brackets every time."""
+"""Brackets derived in this process, by (work directory, fingerprint, variant): tasks work
+on copies of the store, and a saved pilot gives the same brackets every time."""
 
 
 class OutputError(Exception):
@@ -135,7 +135,6 @@ class WorkStore:
         """Blocks of trajectories gathered by :meth:`finish` (for tests and tuning)."""
         self.largest_block_bytes = 0
         """Size of the largest of those blocks."""
-        self._brackets: dict[int, dict[str, Brackets]] = {}
 
     # ------------------------------------------------------------------ opening
 
@@ -434,37 +433,35 @@ class WorkStore:
     def brackets(self, variant: int) -> dict[str, Brackets] | None:
         """The brackets of each trajectory's quantiles for ``variant``, from its pilot
         members (the included ones); None while a pilot member is not saved, or without
-        a pilot.  The same saved pilot gives the same brackets, so processes that save
-        chunks into this directory may each derive them (once: they are kept)."""
-        pilot = self.pilot_members()
+        a pilot.  The same saved pilot gives the same brackets, so every process that
+        saves chunks into this directory derives them once (:data:`_derived_brackets`)."""
         known = (str(self.work.resolve()), self.layout.fingerprint, variant)
-        if known in _derived_brackets:      # a copy of this store in the same process
-            self._brackets[variant] = _derived_brackets[known]
-        if variant in self._brackets:
-            return self._brackets[variant]
+        if known in _derived_brackets:
+            return _derived_brackets[known]
+        pilot = self.pilot_members()
         if not pilot or self.pending([(variant, 0, pilot)]):
             return None
-        if variant not in self._brackets:
-            pieces: dict[str, list[np.ndarray]] = {name: [] for name in STREAMED}
-            workspace = threading.local()
-            for key in self.saved():
-                if key[0] != variant or key[1] >= pilot:
-                    continue
-                directory = self._chunk_directory(key)
-                with np.load(directory / MEMBER_FILE) as members:
-                    chosen = in_summary(members["status"])
-                chosen[pilot - key[1]:] = False
-                for name in STREAMED:
-                    rows = self._cells(name)
-                    whole = _read_range(directory / f"{name}.npy", 0,
-                                        _reusable(workspace, "whole", (rows, chosen.size)))
-                    pieces[name].append(whole[:, chosen])
-            probabilities = self.layout.scenario.output.quantiles
-            self._brackets[variant] = {
-                name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
-                for name in STREAMED}
-            _derived_brackets[known] = self._brackets[variant]
-        return self._brackets[variant]
+        pieces: dict[str, list[np.ndarray]] = {name: [] for name in STREAMED}
+        whole = np.empty(0)
+        for key in self.saved():
+            if key[0] != variant or key[1] >= pilot:
+                continue
+            directory = self._chunk_directory(key)
+            with np.load(directory / MEMBER_FILE) as members:
+                chosen = in_summary(members["status"])
+            chosen[pilot - key[1]:] = False
+            for name in STREAMED:
+                shape = (self._cells(name), chosen.size)
+                if whole.size < math.prod(shape):
+                    whole = np.empty(math.prod(shape))
+                values = _read_range(directory / f"{name}.npy", 0,
+                                     whole[:math.prod(shape)].reshape(shape))
+                pieces[name].append(values[:, chosen])
+        probabilities = self.layout.scenario.output.quantiles
+        _derived_brackets[known] = {
+            name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
+            for name in STREAMED}
+        return _derived_brackets[known]
 
     def make_durable(self, keys: Sequence[ChunkKey]) -> None:
         """Put the saved chunks ``keys`` on stable storage (fsync every file) and list them

@@ -101,7 +101,8 @@ class LocalStart:
                                    dashboard_address=":0", silence_logs=logging.ERROR)
         try:
             client = Client(cluster)
-            client.register_plugin(WarmWorker())
+            if processes:   # thread workers share the driver's imports and signals
+                client.register_plugin(WarmWorker())
         except BaseException:
             cluster.close()
             raise
