@@ -16,6 +16,7 @@ import pytest
 import xarray as xr
 
 from ensemble.output import store as store_module
+from ensemble.output.selection import pilot_brackets
 from ensemble.output.store import (
     FingerprintMismatch,
     IncompleteWork,
@@ -26,6 +27,7 @@ from ensemble.output.store import (
     partial_path,
     result_fingerprint,
 )
+from ensemble.output.summary import in_summary
 from support import fill, grouped_scenario, layout_of, made_up_members
 
 
@@ -275,3 +277,28 @@ def test_finish_gathers_thousands_of_members_in_small_blocks(tmp_path):
             expected = np.quantile(dataset.state.values[v][keep[v]],
                                    dataset["quantile"].values, axis=0)
             np.testing.assert_array_equal(dataset.state_quantile.values[v], expected)
+
+
+def test_brackets_derived_block_by_block_equal_those_of_the_whole_pilot(tmp_path,
+                                                                         monkeypatch):
+    """The store reads its pilot a few cells at a time (excluded members as NaN); the
+    brackets equal :func:`pilot_brackets` of the included pilot members held in memory at
+    once (the selection's own contract, ensemble/output/selection.py)."""
+    pilot = 1000
+    layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
+    monkeypatch.setattr(store_module, "PILOT_MEMBERS", pilot)
+    monkeypatch.setattr(store_module, "PILOT_BLOCK_BYTES", 3 * pilot * 8)
+    store = _open(tmp_path / "r.nc", layout)
+    assert store.pilot_members() == pilot
+    for first in (0, 600):
+        store.save((1, first, first + 600), *made_up_members(layout, 1, first, first + 600))
+    assert store.brackets(0) is None                    # variant 0 has no pilot yet
+    result, _ = made_up_members(layout, 1, 0, pilot)
+    included = in_summary(result.status)
+    assert not included.all()                           # members 1 and 2 are left out
+    derived = store.brackets(1)
+    for name in ("state", "flow_count"):
+        values = getattr(result, name).transpose(2, 1, 0).reshape(-1, pilot)
+        expected = pilot_brackets(values[:, included].copy(), layout.scenario.output.quantiles)
+        np.testing.assert_array_equal(derived[name].lower, expected.lower)
+        np.testing.assert_array_equal(derived[name].upper, expected.upper)

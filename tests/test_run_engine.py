@@ -174,15 +174,15 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
 
     monkeypatch.setattr(store_module, "PILOT_BYTES", 2**30)
     if misleading:
-        real_brackets = store_module.pilot_brackets
-        monkeypatch.setattr(store_module, "pilot_brackets",
-                            lambda pilot, probabilities: real_brackets(pilot * 1.3,
-                                                                       probabilities))
+        real_ranges = store_module.pilot_ranges
+        monkeypatch.setattr(store_module, "pilot_ranges",
+                            lambda pilot, probabilities: real_ranges(pilot * 1.3,
+                                                                     probabilities))
     kept = []
     real_candidates = store_module.chunk_candidates
 
-    def counting_candidates(values, included, brackets):
-        candidates = real_candidates(values, included, brackets)
+    def counting_candidates(values, included, brackets, out=None):
+        candidates = real_candidates(values, included, brackets, out)
         kept.append(candidates.values.size / values.size)
         return candidates
 

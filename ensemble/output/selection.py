@@ -64,6 +64,14 @@ class Brackets:
 def pilot_brackets(pilot: np.ndarray, probabilities: Sequence[float]) -> Brackets:
     """Brackets of each cell from the pilot's (cells, P) values, which are sorted in place
     (NaN ignored; a cell with fewer than two numbers keeps every value)."""
+    return merged_brackets(*pilot_ranges(pilot, probabilities))
+
+
+def pilot_ranges(pilot: np.ndarray, probabilities: Sequence[float]
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """(cells, len(probabilities)) lower and upper ends of each quantile's interval from
+    the pilot's (cells, P) values, which are sorted in place; a cell may be split into
+    blocks of rows (:func:`merged_brackets` merges the intervals of each cell)."""
     pilot.sort(axis=1)
     finite = np.isfinite(pilot).sum(axis=1)
     probabilities = np.asarray(probabilities, dtype=np.float64)
@@ -80,104 +88,100 @@ def pilot_brackets(pilot: np.ndarray, probabilities: Sequence[float]) -> Bracket
         high_kept = np.flatnonzero(high_rank <= count - 1)
         lower[rows, low_kept] = pilot[rows, low_rank[low_kept]]
         upper[rows, high_kept] = pilot[rows, high_rank[high_kept]]
-    return Brackets(*_merge_intervals(lower, upper))
+    return lower, upper
 
 
-def _merge_intervals(lower: np.ndarray, upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Each row's intervals sorted and merged where they overlap, padded with empty
-    ones."""
+def merged_brackets(lower: np.ndarray, upper: np.ndarray) -> Brackets:
+    """Brackets whose cells hold the intervals ``[lower, upper]`` (rows of (cells, K)
+    arrays), sorted and merged where they overlap, padded with empty ones."""
     order = np.argsort(lower, axis=1, kind="stable")
     lower = np.take_along_axis(lower, order, axis=1)
     upper = np.take_along_axis(upper, order, axis=1)
     merged_lower = np.full_like(lower, np.inf)
     merged_upper = np.full_like(upper, -np.inf)
+    used = _merge_sorted(lower, upper, merged_lower, merged_upper)
+    return Brackets(merged_lower[:, :used].copy(), merged_upper[:, :used].copy())
+
+
+@numba.njit(cache=True, nogil=True)
+def _merge_sorted(lower, upper, merged_lower, merged_upper):
+    """Each row's intervals (sorted by lower end) merged where they overlap, into the
+    rows of ``merged_*``; the most intervals a row kept (at least 1)."""
+    most = 1
     for row in range(lower.shape[0]):
         slot = -1
-        for low, high in zip(lower[row], upper[row]):
+        for k in range(lower.shape[1]):
+            low = lower[row, k]
+            high = upper[row, k]
             if slot >= 0 and low <= merged_upper[row, slot]:
                 merged_upper[row, slot] = max(merged_upper[row, slot], high)
             else:
                 slot += 1
-                merged_lower[row, slot], merged_upper[row, slot] = low, high
-    used = int((merged_lower != np.inf).sum(axis=1).max(initial=1))
-    return merged_lower[:, :used].copy(), merged_upper[:, :used].copy()
+                merged_lower[row, slot] = low
+                merged_upper[row, slot] = high
+        most = max(most, slot + 1)
+    return most
 
 
 @numba.njit(cache=True, nogil=True)
-def _slots(row, keep, lower, upper, used, ignored, slots):
-    """For each member: ``2 k + 1`` when its value lies in interval k, an even number
-    (``2 k``: between intervals k - 1 and k) otherwise, and ``ignored`` where ``keep`` is
-    0 (NaN values, members not included).  Loops over members innermost and without
-    branches, so the compiler vectorises them."""
-    members = row.shape[0]
-    for m in range(members):
-        slots[m] = 0
-    for k in range(used):
-        low = lower[k]
-        high = upper[k]
-        for m in range(members):
-            value = row[m]
-            slots[m] += (value >= low) + (value > high)
-    for m in range(members):
-        slots[m] = slots[m] * keep[m] + ignored * (1 - keep[m])
+def _cut(values, included, lower, upper, used, below, nans, offsets, out):
+    """Cut each cell's row of ``values`` into its candidates, cell after cell.
 
-
-@numba.njit(cache=True, nogil=True)
-def _keep(row, included, keep):
-    """1 for an included member with a number (not NaN), else 0; the count of included
-    NaN values."""
-    nans = 0
-    for m in range(row.shape[0]):
-        number = row[m] == row[m]
-        keep[m] = included[m] * number
-        nans += included[m] * (1 - number)
-    return nans
-
-
-@numba.njit(cache=True, nogil=True)
-def _count_candidates(values, included, lower, upper, used, below, inside, nans, keep):
-    """Per cell and interval: included values below it and inside it; per cell: included
-    NaN values.  Reductions over members innermost, vectorised."""
-    for c in range(values.shape[0]):
+    For every member a slot: ``2 k + 1`` when its value lies in interval k, an even
+    number (``2 k``: between intervals k - 1 and k) otherwise, and an ignored slot for
+    NaN values and members not included (loops over members innermost and without
+    branches, so the compiler vectorises them).  The slots' counts give ``below`` and
+    ``nans``; the members of the odd slots are copied to ``out`` interval by interval
+    from ``offsets[c * K + k]`` on, in member order.  Returns how many values were
+    kept."""
+    cells, members = values.shape
+    intervals = lower.shape[1]
+    ignored = 2 * intervals + 2
+    slots = np.empty(members, np.int32)
+    chosen = np.empty(members + 1, np.int32)
+    cursor = np.empty(intervals, np.int64)
+    kept = 0
+    for c in range(cells):
         row = values[c]
-        nans[c] = _keep(row, included, keep)
+        for m in range(members):
+            slots[m] = 0
         for k in range(used[c]):
             low = lower[c, k]
             high = upper[c, k]
+            for m in range(members):
+                value = row[m]
+                slots[m] += (value >= low) + (value > high)
+        missing = 0
+        for m in range(members):
+            value = row[m]
+            keep = included[m] & (value == value)
+            missing += included[m] & (value != value)
+            slots[m] = slots[m] * keep + ignored * (1 - keep)
+        nans[c] = missing
+        # counts by reductions over members, then the kept members' indices in order
+        for k in range(used[c]):
             under = 0
             within = 0
-            for m in range(row.shape[0]):
-                value = row[m]
-                under += keep[m] * (value < low)
-                within += keep[m] * ((value >= low) & (value <= high))
+            for m in range(members):
+                under += slots[m] < 2 * k + 1
+                within += slots[m] == 2 * k + 1
             below[c, k] = under
-            inside[c, k] = within
-
-
-@numba.njit(cache=True, nogil=True)
-def _copy_candidates(values, included, lower, upper, used, offsets, out, slots):
-    """Copy the values inside each interval to ``out``, interval by interval in member
-    order, from ``offsets[c * K + k]`` on; every other value goes to the spare last
-    element of ``out`` (a write without a branch)."""
-    intervals = lower.shape[1]
-    ignored = 2 * intervals + 1
-    spare = out.shape[0] - 1
-    cursor = np.empty(ignored + 1, np.int64)
-    step = np.empty(ignored + 1, np.int64)
-    keep = np.empty(values.shape[1], np.int64)
-    for c in range(values.shape[0]):
-        row = values[c]
-        _keep(row, included, keep)
-        _slots(row, keep, lower[c], upper[c], used[c], ignored, slots)
-        cursor[:] = spare
-        step[:] = 0
-        for k in range(used[c]):
-            cursor[2 * k + 1] = offsets[c * intervals + k]
-            step[2 * k + 1] = 1
-        for m in range(row.shape[0]):
-            slot = slots[m]
-            out[cursor[slot]] = row[m]
-            cursor[slot] += step[slot]
+            offsets[c * intervals + k] = kept
+            cursor[k] = kept
+            kept += within
+        for k in range(used[c], intervals):
+            offsets[c * intervals + k] = kept
+        found = 0
+        for m in range(members):
+            chosen[found] = m
+            found += slots[m] & 1
+        for i in range(found):
+            m = chosen[i]
+            k = slots[m] >> 1
+            out[cursor[k]] = row[m]
+            cursor[k] += 1
+    offsets[cells * intervals] = kept
+    return kept
 
 
 @dataclass(frozen=True)
@@ -199,26 +203,24 @@ class Candidates:
     values: np.ndarray | None
 
 
-def chunk_candidates(cell_values: np.ndarray, included: np.ndarray,
-                     brackets: Brackets) -> Candidates:
+def chunk_candidates(cell_values: np.ndarray, included: np.ndarray, brackets: Brackets,
+                     out: np.ndarray | None = None) -> Candidates:
     """The candidates of a chunk's (cells, members) values; ``included`` marks the members
-    behind the quantiles."""
+    behind the quantiles.  ``out`` (float64, at least ``cell_values.size + 1`` long, e.g.
+    a buffer reused from chunk to chunk) receives the kept values, which the result then
+    views; only the part written is touched, so an unused tail costs no memory."""
     values = np.ascontiguousarray(cell_values, dtype=np.float64)
     included = np.ascontiguousarray(included, dtype=np.int64)
     cells, intervals = brackets.lower.shape
     used = (brackets.lower != np.inf).sum(axis=1)
     below = np.zeros((cells, intervals), np.int64)
-    inside = np.zeros((cells, intervals), np.int64)
     nans = np.zeros(cells, np.int64)
-    scratch = np.empty(values.shape[1], np.int64)     # one entry a member, reused per cell
-    _count_candidates(values, included, brackets.lower, brackets.upper, used, below, inside,
-                      nans, scratch)
-    offsets = np.zeros(cells * intervals + 1, np.int64)
-    np.cumsum(inside.ravel(), out=offsets[1:])
-    out = np.empty(int(offsets[-1]) + 1)
-    _copy_candidates(values, included, brackets.lower, brackets.upper, used, offsets, out,
-                     scratch)
-    return Candidates(below, nans, offsets, out[:-1])
+    offsets = np.empty(cells * intervals + 1, np.int64)
+    if out is None or out.size <= values.size:
+        out = np.empty(values.size + 1)
+    kept = _cut(values, included, brackets.lower, brackets.upper, used, below, nans, offsets,
+                out)
+    return Candidates(below, nans, offsets, out[:kept])
 
 
 @numba.njit(cache=True, nogil=True)

@@ -52,7 +52,8 @@ import psutil
 from ensemble.integrate.check import ChunkResult
 from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
-                                       chunk_candidates, pilot_brackets, select)
+                                       chunk_candidates, merged_brackets, pilot_ranges,
+                                       select)
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
@@ -89,6 +90,13 @@ blocks."""
 _derived_brackets: dict[tuple[str, str, int], dict[str, Brackets]] = {}
 """Brackets derived in this process, by (work directory, fingerprint, variant): tasks work
 on copies of the store, and a saved pilot gives the same brackets every time."""
+
+_deriving = threading.Lock()
+"""Held while a thread derives brackets: the others wait for its result rather than
+derive the same again."""
+
+_saving = threading.local()
+"""Each thread's buffers for saving chunks, reused from chunk to chunk."""
 
 
 class OutputError(Exception):
@@ -399,7 +407,8 @@ class WorkStore:
                     _write_npy(temporary / f"{name}.npy", time_major)
                     continue
                 kept = chunk_candidates(time_major.reshape(-1, count),
-                                        in_summary(result.status), brackets[name])
+                                        in_summary(result.status), brackets[name],
+                                        _reusable(_saving, "kept", (time_major.size + 1,)))
                 for part in CANDIDATE_PARTS:
                     _write_npy(temporary / f"{name}-{part}.npy", getattr(kept, part))
                 (temporary / f"{name}-brackets").write_text(brackets[name].digest())
@@ -441,27 +450,39 @@ class WorkStore:
         pilot = self.pilot_members()
         if not pilot or self.pending([(variant, 0, pilot)]):
             return None
-        pieces: dict[str, list[np.ndarray]] = {name: [] for name in STREAMED}
-        whole = np.empty(0)
-        for key in self.saved():
-            if key[0] != variant or key[1] >= pilot:
-                continue
-            directory = self._chunk_directory(key)
-            with np.load(directory / MEMBER_FILE) as members:
-                chosen = in_summary(members["status"])
-            chosen[pilot - key[1]:] = False
-            for name in STREAMED:
-                shape = (self._cells(name), chosen.size)
-                if whole.size < math.prod(shape):
-                    whole = np.empty(math.prod(shape))
-                values = _read_range(directory / f"{name}.npy", 0,
-                                     whole[:math.prod(shape)].reshape(shape))
-                pieces[name].append(values[:, chosen])
-        probabilities = self.layout.scenario.output.quantiles
-        _derived_brackets[known] = {
-            name: pilot_brackets(np.concatenate(pieces[name], axis=1), probabilities)
-            for name in STREAMED}
+        with _deriving:
+            if known not in _derived_brackets:
+                _derived_brackets[known] = {name: self._pilot_brackets(name, variant, pilot)
+                                            for name in STREAMED}
         return _derived_brackets[known]
+
+    def _pilot_brackets(self, name: str, variant: int, pilot: int) -> Brackets:
+        """The brackets of trajectory ``name`` from the saved pilot of ``variant``, cells
+        in blocks of about :data:`PILOT_BLOCK_BYTES` (excluded members' values are read
+        as NaN, which the brackets ignore)."""
+        keys = [key for key in self.saved() if key[0] == variant and key[1] < pilot]
+        included = {}
+        for key in keys:
+            with np.load(self._chunk_directory(key) / MEMBER_FILE) as members:
+                included[key] = in_summary(members["status"])
+        cells = self._cells(name)
+        step = max(1, PILOT_BLOCK_BYTES // (8 * pilot))
+        workspace = threading.local()
+        pieces = []
+        for first in range(0, cells, step):
+            stop = min(first + step, cells)
+            block = _reusable(workspace, "pilot", (stop - first, pilot))
+            for key in keys:
+                span = slice(key[1], min(key[2], pilot))
+                stored = _read_range(self._chunk_directory(key) / f"{name}.npy",
+                                     first * (key[2] - key[1]),
+                                     _reusable(workspace, "chunk", (stop - first,
+                                                                    key[2] - key[1])))
+                block[:, span] = stored[:, :span.stop - span.start]
+                block[:, span][:, ~included[key][:span.stop - span.start]] = np.nan
+            pieces.append(pilot_ranges(block, self.layout.scenario.output.quantiles))
+        return merged_brackets(np.concatenate([low for low, _ in pieces]),
+                               np.concatenate([high for _, high in pieces]))
 
     def make_durable(self, keys: Sequence[ChunkKey]) -> None:
         """Put the saved chunks ``keys`` on stable storage (fsync every file) and list them
@@ -891,6 +912,9 @@ def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
 
 PILOT_BYTES = 512 * 2**20
 """Largest size of a pilot's trajectories (:meth:`WorkStore.pilot_members`)."""
+
+PILOT_BLOCK_BYTES = 16 * 2**20
+"""Pilot values sorted at once when brackets are derived (:meth:`WorkStore.brackets`)."""
 
 NPY_HEADER_ROOM = 4096
 """Bytes reserved for the header of an ``.npy`` file beyond its data."""
