@@ -22,7 +22,8 @@ numbers are invented, illustrative only.
 
 Usage::
 
-    python scripts/benchmark.py [--members 20480] [--run-members 200000] [--skip-run]
+    python scripts/benchmark.py [--members 20480] [--run-members 200000]
+                                [--skip-run | --run-only]
 """
 
 from __future__ import annotations
@@ -491,11 +492,16 @@ def main() -> int:
                         help="members of the SEIR measurements (the 16-group use 1/8)")
     parser.add_argument("--run-members", type=int, default=200_000)
     parser.add_argument("--skip-run", action="store_true", help="skip the end-to-end run")
+    parser.add_argument("--run-only", action="store_true",
+                        help="only the end-to-end run (and the reference it is compared to)")
     options = parser.parse_args()
     print(f"numba threads: {numba.get_num_threads()}, cores: {psutil.cpu_count()}")
     with tempfile.TemporaryDirectory(prefix="ensemble-benchmark-") as temporary:
         directory = Path(temporary)
         seir = Case(directory, "seir", seir_scenario(options.members), options.members)
+        if options.run_only:
+            report_end_to_end(directory, options.run_members, seir, seir.reference_rate())
+            return 0
         reference = report_model("SEIR", seir, 20, seir.subset(min(options.members, 4096)))
         age_members = max(BLOCK, options.members // 8 // BLOCK * BLOCK)
         age = Case(directory, "age", age_scenario(age_members, "rk4"), age_members)
