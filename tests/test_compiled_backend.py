@@ -18,9 +18,10 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from ensemble.integrate.check import INVALID_START, NON_FINITE
+from ensemble.integrate.check import INVALID_START, NON_FINITE, step_error
 from ensemble.integrate.compiled import (integrate_fixed_compiled, kernel_path,
-                                         kernel_threads, load_kernel, set_kernel_threads)
+                                         kernel_threads, load_kernel, set_kernel_threads,
+                                         step_error_compiled)
 from ensemble.integrate.codegen import KernelSource
 from ensemble.integrate.methods import METHODS
 from ensemble.integrate.stepper import integrate_fixed
@@ -196,6 +197,31 @@ def test_compiled_matches_numpy_reference(two_group, method):
     assert compiled.status[3] == INVALID_START
     assert compiled.status[5] & NON_FINITE
     assert np.isfinite(compiled.state[[0, 1, 2, 4]]).all()
+
+
+@pytest.mark.parametrize("method", ["forward-euler", "rk4", "backward-euler"])
+def test_step_check_compared_in_the_kernel_has_the_bits_of_step_error(two_group, method):
+    """The refined run compared with the run at h as it goes gives the bits of
+    :func:`ensemble.integrate.check.step_error` on the two stored runs (Richardson's
+    estimate), NaN for the invalid and the blown-up member, and the refined run's status
+    bits; members need not fill the last block."""
+    scenario, model, design = two_group
+    solver = scenario.solver
+    coarse = _run(integrate_fixed_compiled, scenario, model, design, method)
+    half = float(solver.step) / 2
+    refined = _run(integrate_fixed_compiled, scenario, model, design, method, step=half)
+    with np.errstate(all="ignore"):
+        expected = step_error(coarse.state, refined.state, 2, METHODS[method].order, 1e-3,
+                              solver.check.atol)
+    error, status = step_error_compiled(
+        model, design, METHODS[method], half, int(round(float(solver.report_every) / half)),
+        scenario.n_reports, solver.newton, solver.check.atol, coarse.state, 2,
+        METHODS[method].order, 1e-3)
+    assert design.members.size % load_kernel(model, METHODS[method])[1].block != 0
+    assert np.array_equal(error, expected, equal_nan=True)
+    assert np.isnan(error[[3, 5]]).all() and np.isfinite(np.delete(error, [3, 5])).all()
+    assert (error > 0).any()
+    np.testing.assert_array_equal(status, refined.status)
 
 
 def test_compiled_rk4_matches_scipy(tmp_path, cache):

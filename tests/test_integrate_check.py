@@ -198,8 +198,8 @@ def test_blockwise_reductions_match_whole_array_formulas(report_major):
     else:
         runs = [run[:members] for run in runs]
     coarse, fine, finest = runs
-    expected_error = (np.abs(coarse - fine) / (1.0 - 2.0 ** -4)
-                      / (0.01 + 1e-3 * np.abs(fine))).max(axis=(1, 2))
+    expected_error = (np.abs(coarse - fine)
+                      / ((1.0 - 2.0 ** -4) * (0.01 + 1e-3 * np.abs(fine)))).max(axis=(1, 2))
     np.testing.assert_array_equal(step_error(coarse, fine, 2, 4, 1e-3, 0.01), expected_error)
     d1 = np.abs(coarse - fine).max(axis=(1, 2))
     d2 = np.abs(fine - finest).max(axis=(1, 2))

@@ -104,10 +104,12 @@ def step_error(coarse: np.ndarray, fine: np.ndarray, refine: int, order: int,
                rtol: float, atol: float) -> np.ndarray:
     """Scaled Richardson estimate of the error of ``coarse`` per member.
 
-    ``max over states and times of |x_h - x_{h/r}| / (1 - r^-p) / (atol + rtol |x_{h/r}|)``
+    ``max over states and times of |x_h - x_{h/r}| / ((1 - r^-p) (atol + rtol |x_{h/r}|))``
     for (M, n_states, n_reports) trajectories at h and h/r; NaN for a member with a
     non-finite value in either.  Computed block by block on member-last rows with
-    preallocated buffers (each value is the same elementwise expression).
+    preallocated buffers (each value is the same elementwise expression; the compiled
+    backend's kernels do the same operations in the same order,
+    :func:`ensemble.integrate.compiled.step_error_compiled`).
     """
     coarse_rows, fine_rows = _member_last(coarse, fine)
     gain = 1.0 - float(refine) ** -order
@@ -117,9 +119,9 @@ def step_error(coarse: np.ndarray, fine: np.ndarray, refine: int, order: int,
         scale = np.abs(fine_rows[start:stop])
         np.multiply(rtol, scale, out=scale)
         np.add(atol, scale, out=scale)
+        np.multiply(gain, scale, out=scale)
         np.subtract(coarse_rows[start:stop], fine_rows[start:stop], out=error)
         np.abs(error, out=error)
-        np.divide(error, gain, out=error)
         np.divide(error, scale, out=error)
 
     return _blockwise_max(*fine_rows.shape, fill)[0]
@@ -152,6 +154,15 @@ def observed_order(coarse: np.ndarray, fine: np.ndarray, finest: np.ndarray, ref
     return np.where(d2 > floor, order, np.nan)
 
 
+def _compiled_backend():
+    """The module of the compiled backend."""
+    try:
+        return importlib.import_module("ensemble.integrate.compiled")
+    except ImportError as error:
+        raise RuntimeError("the compiled integration backend is not available "
+                           f"({error}); use backend='numpy'") from error
+
+
 def _integrator(backend: str):
     """The ``integrate_fixed`` of ``backend`` ("numpy" or "compiled")."""
     if backend == "numpy":
@@ -159,12 +170,7 @@ def _integrator(backend: str):
     if backend != "compiled":
         raise ValueError(f"unknown integration backend {backend!r}: "
                          "expected 'numpy' or 'compiled'")
-    try:
-        module = importlib.import_module("ensemble.integrate.compiled")
-        return module.integrate_fixed_compiled
-    except (ImportError, AttributeError) as error:
-        raise RuntimeError("the compiled integration backend is not available "
-                           f"({error}); use backend='numpy'") from error
+    return _compiled_backend().integrate_fixed_compiled
 
 
 def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_reports: int,
@@ -197,19 +203,26 @@ def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_repo
     method = METHODS[solver.method]
     check = solver.check
 
+    def arguments(refinement: int) -> tuple:
+        return (model, design, method, float(Fraction(solver.step) / refinement),
+                solver.steps_per_report * refinement, n_reports, solver.newton, check.atol)
+
     def run(refinement: int) -> Trajectory:
-        step = float(Fraction(solver.step) / refinement)
         reuse = ({"buffers": (buffers, f"refined {refinement}")}
                  if buffers is not None and backend == "compiled" else {})
-        return integrate(model, design, method, step, solver.steps_per_report * refinement,
-                         n_reports, solver.newton, check.atol, **reuse)
+        return integrate(*arguments(refinement), **reuse)
 
     result = run(1)
     status = result.status.copy()
     members = len(design.members)
     error = np.full(members, np.nan)
     order = np.full(members, np.nan)
-    if check.enabled:
+    if check.enabled and check.levels == 2 and backend == "compiled":
+        # compared in the kernel as the refined run goes: the bits of step_error below
+        error, refined_status = _compiled_backend().step_error_compiled(
+            *arguments(check.refine), result.state, check.refine, method.order, check.rtol)
+        status |= refined_status
+    elif check.enabled:
         refined = run(check.refine)
         status |= refined.status
         with np.errstate(all="ignore"):
@@ -221,6 +234,7 @@ def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_repo
             noise = NEWTON_TOL_FACTOR * solver.newton.tol if method.implicit else 0.0
             order = observed_order(result.state, refined.state, finest.state, check.refine,
                                    noise)
+    if check.enabled:
         failed = ~(error <= 1.0) & ((status & INVALID_START) == 0)
         status[failed] |= STEP_CHECK_FAILED
     return ChunkResult(members=np.asarray(design.members), state=result.state,

@@ -42,7 +42,7 @@ from ensemble.model.compile import CompiledModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
 
-GENERATOR_VERSION = 3
+GENERATOR_VERSION = 4
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
 
@@ -602,9 +602,17 @@ class KernelSource:
         emit("    for b in range(BLOCK):")
         emit("        for s in range(N_STATES):")
         emit("            y[s, b] = y0[s, m0 + b]")
-        emit("            state_out[0, s, m0 + b] = y0[s, m0 + b]")
-        emit("        for f in range(N_FLOWS):")
-        emit("            flow_out[0, f, m0 + b] = math.nan")
+        emit("    if compare:")
+        emit("        for b in range(min(BLOCK, reference.shape[2] - m0)):")
+        emit("            error_out[m0 + b] = -math.inf")
+        body += self._compare(" " * 8, "0")
+        emit("    else:")
+        emit("        for b in range(BLOCK):")
+        emit("            for s in range(N_STATES):")
+        emit("                state_out[0, s, m0 + b] = y0[s, m0 + b]")
+        emit("            for f in range(N_FLOWS):")
+        emit("                flow_out[0, f, m0 + b] = math.nan")
+        emit("    for b in range(BLOCK):")
         emit("        low = False")
         emit("        for s in range(N_STATES):")
         emit("            low = low or y0[s, m0 + b] < -atol")
@@ -661,7 +669,8 @@ class KernelSource:
             header.append("")
         arguments = ", ".join(["y0", "p", *self._schedule_arguments(), "h", "steps_per_report",
                                "n_reports", "atol", "newton_tol", "newton_max_iter",
-                               "state_out", "flow_out", "status"])
+                               "state_out", "flow_out", "status", "compare", "reference",
+                               "rtol", "gain", "error_out"])
         # the block's work is its own function, so numba's parallel pass (slow to compile)
         # sees only the small driver loop
         header += [
@@ -982,18 +991,40 @@ class KernelSource:
         return lines
 
     def _report(self, indent: str) -> list[str]:
-        """At each reported time: store state and flow counts, set the status bits."""
+        """At each reported time: store state and flow counts (or, comparing, fold the
+        scaled differences from ``reference`` into ``error_out``), set the status bits.
+        Each loop over members is straight-line code, so the compiler vectorises it."""
         n = self.model.n_states
-        lines = [f"{indent}for b in range(BLOCK):",
-                 f"{indent}    m = m0 + b",
-                 f"{indent}    low = False"]
+        lines = [f"{indent}if compare:"]
+        lines += self._compare(indent + "    ", "k")
+        lines += [f"{indent}else:",
+                  f"{indent}    for b in range(BLOCK):",
+                  f"{indent}        m = m0 + b"]
         for s in range(n):
-            lines.append(f"{indent}    state_out[k, {s}, m] = y[{s}, b]")
+            lines.append(f"{indent}        state_out[k, {s}, m] = y[{s}, b]")
+        lines.append(f"{indent}        for f in range(N_FLOWS):")
+        lines.append(f"{indent}            flow_out[k, f, m] = fc[f, b]")
+        lines += [f"{indent}for b in range(BLOCK):",
+                  f"{indent}    m = m0 + b",
+                  f"{indent}    low = False"]
+        for s in range(n):
             lines.append(f"{indent}    low = low or y[{s}, b] < -atol")
-        lines.append(f"{indent}    for f in range(N_FLOWS):")
-        lines.append(f"{indent}        flow_out[k, f, m] = fc[f, b]")
         lines.append(f"{indent}    if low:")
         lines.append(f"{indent}        status[m] |= BELOW_NEGATIVE_ATOL")
         lines.append(f"{indent}    if bad[b]:")
         lines.append(f"{indent}        status[m] |= NON_FINITE")
+        return lines
+
+    def _compare(self, indent: str, report: str) -> list[str]:
+        """Fold each member's scaled difference from ``reference`` at report ``report``
+        into ``error_out`` (members past the reference's are padding): the operations of
+        :func:`ensemble.integrate.check.step_error` in its order, so the same bits, and
+        NaN once any value is NaN, as its maximum gives."""
+        lines = [f"{indent}for b in range(min(BLOCK, reference.shape[2] - m0)):",
+                 f"{indent}    error = error_out[m0 + b]"]
+        for s in range(self.model.n_states):
+            lines += [f"{indent}    scale = atol + rtol * abs(y[{s}, b])",
+                      f"{indent}    error = _max(error, abs(reference[{report}, {s}, m0 + b]"
+                      f" - y[{s}, b]) / (gain * scale))"]
+        lines.append(f"{indent}    error_out[m0 + b] = error")
         return lines

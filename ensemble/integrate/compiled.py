@@ -151,6 +151,12 @@ class ReportBuffers:
         return held
 
 
+_NO_REPORTS = np.empty((0, 0, 0))
+_NO_MEMBERS = np.empty(0)
+"""Arrays for the kernel's arguments its mode does not use (outputs, or reference and
+error)."""
+
+
 def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Method,
                              step: float, steps_per_report: int, n_reports: int,
                              newton: Newton, atol: float,
@@ -172,10 +178,7 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
     """
     module, source = load_kernel(model, method)
     members = design.members.shape[0]
-    invalid = np.asarray(design.invalid_start, dtype=bool)
-    valid = np.flatnonzero(~invalid)
-    block = source.block
-    padded = max(1, -(-members // block)) * block
+    padded = max(1, -(-members // source.block)) * source.block
     if buffers is None:
         state = np.empty((n_reports, model.n_states, padded))
         flow_count = np.empty((n_reports, model.n_flow_elements, padded))
@@ -183,11 +186,73 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
     else:
         state, flow_count, status = buffers[0].arrays(
             buffers[1], n_reports, model.n_states, model.n_flow_elements, padded)
+    invalid = _launch(module, model, design, step, steps_per_report, n_reports, newton,
+                      atol, padded, status, (state, flow_count))
+    if invalid.any():
+        state[:, :, :members][:, :, invalid] = np.nan
+        flow_count[:, :, :members][:, :, invalid] = np.nan
+    return Trajectory(state=state[:, :, :members].transpose(2, 1, 0),
+                      flow_count=flow_count[:, :, :members].transpose(2, 1, 0),
+                      status=status[:members])
+
+
+def step_error_compiled(model: CompiledModel, design: Design, method: Method, step: float,
+                        steps_per_report: int, n_reports: int, newton: Newton, atol: float,
+                        coarse: np.ndarray, refine: int, order: int, rtol: float
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Integrate ``design``'s members at ``step`` (the step check's h / refine) and
+    compare them with the trajectories ``coarse`` of the run at h as they go, keeping
+    nothing but the comparison.
+
+    Gives the bits of :func:`ensemble.integrate.check.step_error` applied to
+    :func:`integrate_fixed_compiled`'s trajectories (the kernel does its operations in
+    its order), without writing the refined run's reports and reading them again.
+
+    Parameters
+    ----------
+    coarse : (M, n_states, n_reports) states of the run at h.
+    refine, order, rtol : the step check's refinement, the method's order and the check's
+        relative tolerance (its absolute one is ``atol``).
+
+    Returns
+    -------
+    (error, status) : (M,) scaled Richardson estimates (NaN for a member with a non-finite
+        value in either run) and the refined run's status bits.
+    """
+    module, source = load_kernel(model, method)
+    members = design.members.shape[0]
+    padded = max(1, -(-members // source.block)) * source.block
+    reference = np.ascontiguousarray(coarse.transpose(2, 1, 0))
+    error = np.empty(padded)
+    status = np.empty(padded, np.uint8)
+    invalid = _launch(module, model, design, step, steps_per_report, n_reports, newton,
+                      atol, padded, status, None,
+                      (reference, rtol, 1.0 - float(refine) ** -order, error))
+    error = error[:members]
+    error[invalid] = np.nan
+    return error, status[:members]
+
+
+def _launch(module: ModuleType, model: CompiledModel, design: Design, step: float,
+            steps_per_report: int, n_reports: int, newton: Newton, atol: float,
+            padded: int, status: np.ndarray,
+            outputs: tuple[np.ndarray, np.ndarray] | None,
+            compare: tuple[np.ndarray, float, float, np.ndarray] | None = None
+            ) -> np.ndarray:
+    """Run ``module``'s kernel on ``design`` padded to ``padded`` members, writing
+    ``outputs`` (state, flow_count) or, with ``compare`` (reference, rtol, gain, error),
+    the comparison; ``status`` gets the status bits.  Returns the mask of members with an
+    impossible drawn start (their status is INVALID_START; their values are the caller's
+    to blank)."""
+    members = design.members.shape[0]
+    invalid = np.asarray(design.invalid_start, dtype=bool)
+    valid = np.flatnonzero(~invalid)
     status[:] = 0
     if not valid.size:
-        state[:] = 0.0
-        flow_count[:] = 0.0
-    if valid.size:
+        if outputs is not None:
+            for array in outputs:
+                array[:] = 0.0
+    else:
         columns: np.ndarray | None = None
         if valid.size < padded:
             columns = np.full(padded, valid[0])
@@ -197,15 +262,13 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
             knots = (np.rint(slot.days / step).astype(np.int64) if slot.between == "step"
                      else np.ascontiguousarray(slot.days, dtype=np.float64))
             schedules += [knots, _columns(values, columns)]
+        state, flow_count = outputs if outputs is not None else (_NO_REPORTS, _NO_REPORTS)
+        reference, rtol, gain, error = (compare if compare is not None
+                                        else (_NO_REPORTS, 0.0, 1.0, _NO_MEMBERS))
         kernel = module.integrate if kernel_threads() > 1 else module.integrate_serial
-        kernel(_columns(design.initial, columns),
-                         _columns(design.parameters, columns), *schedules,
-                         float(step), int(steps_per_report), int(n_reports), float(atol),
-                         float(newton.tol), int(newton.max_iter), state, flow_count, status)
-    if valid.size < members:
-        state[:, :, :members][:, :, invalid] = np.nan
-        flow_count[:, :, :members][:, :, invalid] = np.nan
-        status[:members][invalid] = INVALID_START
-    return Trajectory(state=state[:, :, :members].transpose(2, 1, 0),
-                      flow_count=flow_count[:, :, :members].transpose(2, 1, 0),
-                      status=status[:members])
+        kernel(_columns(design.initial, columns), _columns(design.parameters, columns),
+               *schedules, float(step), int(steps_per_report), int(n_reports), float(atol),
+               float(newton.tol), int(newton.max_iter), state, flow_count, status,
+               compare is not None, reference, float(rtol), float(gain), error)
+    status[:members][invalid] = INVALID_START
+    return invalid
