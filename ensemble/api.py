@@ -39,7 +39,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         resume: bool = False, force: bool = False, progress: bool | None = None,
         backend: str | None = None, history: str | None = None,
         cluster: ClusterProfile | str | None = None, shard: Shard | str | None = None,
-        processes: bool = False) -> Path:
+        processes: bool = False, dashboard: bool = False) -> Path:
     """Run every variant of a scenario and write its result file.
 
     Parameters
@@ -68,6 +68,8 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     processes : local workers in processes of their own (a worker that dies loses only
         its task) instead of threads of this process (faster: nothing is copied between
         processes or imported again).
+    dashboard : serve dask's dashboard from the local cluster (its address is printed);
+        off by default, as it takes about half a second to start.
 
     Returns
     -------
@@ -90,7 +92,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     on_this_machine = (local_workers != 0 and profile is None
                        and (address or scenario.compute.address) is None)
     # the local cluster starts while the rest of the pipeline is imported
-    started = LocalStart(local_workers, processes) if on_this_machine else None
+    started = LocalStart(local_workers, processes, dashboard) if on_this_machine else None
     try:
         return _run(scenario, started, output=output, chunk=chunk, workers=workers,
                     address=address, resume=resume, force=force, progress=progress,
@@ -106,7 +108,8 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
     """:func:`run` once the scenario is loaded and any local cluster is starting."""
     import dataclasses
 
-    from ensemble.run.execute import DEFAULT_BACKEND, Progress, run_scenario
+    from ensemble.run.execute import (DEFAULT_BACKEND, Progress, fewer_collections,
+                                      run_scenario)
     from ensemble.run.plan import fingerprint
     from ensemble.run.shards import Shard, engine_options, part_is_complete
 
@@ -122,11 +125,12 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
     if part is not None and resume and not force and part_is_complete(
             output, fingerprint(scenario, backend), part):
         return Path(output)
-    return run_scenario(scenario, history=history, backend=backend,
-                        chunk=chunk, workers=workers, address=address, cluster=profile,
-                        resume=resume, force=force, progress=Progress(bar=progress),
-                        started=started, processes=processes,
-                        **(engine_options(scenario, part, backend) if part else {}))
+    with fewer_collections():
+        return run_scenario(scenario, history=history, backend=backend,
+                            chunk=chunk, workers=workers, address=address, cluster=profile,
+                            resume=resume, force=force, progress=Progress(bar=progress),
+                            started=started, processes=processes,
+                            **(engine_options(scenario, part, backend) if part else {}))
 
 
 def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:

@@ -65,6 +65,9 @@ def run(
         False, "--processes",
         help="Local workers in processes of their own (a worker that dies loses only its "
              "task) instead of threads."),
+    dashboard: bool = typer.Option(
+        False, "--dashboard",
+        help="Serve dask's dashboard from the local cluster and print its address."),
     address: Optional[str] = typer.Option(
         None, "--address", help="A running dask scheduler to use, e.g. tcp://host:8786."),
     resume: bool = typer.Option(
@@ -111,7 +114,8 @@ def run(
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
                        address=address, resume=resume, force=force,
                        backend=backend.value if backend else None, history=history,
-                       cluster=profile or "local", shard=shard, processes=processes)
+                       cluster=profile or "local", shard=shard, processes=processes,
+                       dashboard=dashboard)
     except ResultExists as error:
         _stop(f"error: {error}; use --force to replace it", 2)
     except FingerprintMismatch as error:

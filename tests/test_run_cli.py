@@ -67,7 +67,7 @@ def reference_result(tmp_path: Path, **settings: int) -> Path:
 
 def test_run_writes_result_and_reports(tmp_path: Path) -> None:
     scenario = write_scenario(tmp_path, members=12)
-    done = run_cli("run", scenario, "--workers", "1", cwd=tmp_path)
+    done = run_cli("run", scenario, "--workers", "1", "--dashboard", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     assert (tmp_path / "result.nc").is_file()
     assert not (tmp_path / "result.nc.partial").exists()

@@ -213,3 +213,19 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     assert kept and min(kept) < 1.0, "no chunk was kept as candidates"
     assert bool(missed) == misleading, "only a misleading pilot misses cells"
     assert_same_numbers(resumed, reference)
+
+
+def test_the_collector_is_set_back_after_a_run_even_a_failed_one():
+    """During a run the collector skips the objects alive at its start and collects young
+    objects less often; afterwards (also after an error) it is as it was (the engine's own
+    contract, ensemble/run/execute.py)."""
+    import gc
+
+    before = gc.get_threshold()
+    assert gc.get_freeze_count() == 0
+    with pytest.raises(RuntimeError):
+        with execute.fewer_collections():
+            assert gc.get_freeze_count() > 0
+            assert gc.get_threshold() == (execute.COLLECTION_THRESHOLD, *before[1:])
+            raise RuntimeError("an illustrative failure")
+    assert gc.get_threshold() == before and gc.get_freeze_count() == 0

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import concurrent.futures
 import copyreg
+import gc
 import importlib
 import sys
 import threading
@@ -341,6 +342,32 @@ class Progress:
 
 
 # ------------------------------------------------------------------------------ engine
+
+
+COLLECTION_THRESHOLD = 50_000
+"""Allocations between two collections of the youngest objects during a run (Python's
+default is 700)."""
+
+
+@contextmanager
+def fewer_collections() -> Iterator[None]:
+    """Run the body with the cyclic garbage collector mostly out of the way.
+
+    The objects alive on entry (the imported modules of numba, scipy and dask, over a
+    million) are moved out of the collector's reach (``gc.freeze``) and the youngest
+    generation is collected every :data:`COLLECTION_THRESHOLD` allocations: a run's tasks
+    allocate many short-lived objects, and each collection holds the interpreter lock
+    that the threads saving chunks need (measured: 0.5 s of collections in a
+    200,000-member run, 0.15 s this way).  Both settings are restored on exit.
+    """
+    thresholds = gc.get_threshold()
+    gc.freeze()
+    gc.set_threshold(COLLECTION_THRESHOLD, *thresholds[1:])
+    try:
+        yield
+    finally:
+        gc.set_threshold(*thresholds)
+        gc.unfreeze()
 
 
 def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BACKEND,

@@ -80,25 +80,30 @@ class LocalStart:
         ``processes`` worker processes, each with one thread and single-threaded numerical
         libraries (:data:`SINGLE_THREAD_ENV`).
     processes : workers in processes of their own instead of threads of this one.
+    dashboard : serve dask's dashboard on a free port (its web server and plots take
+        about half a second to start, measured on the test machines: worth it for a run
+        one watches, not for a short one).
     """
 
-    def __init__(self, workers: int | None = None, processes: bool = False):
+    def __init__(self, workers: int | None = None, processes: bool = False,
+                 dashboard: bool = False):
         self._pool = ThreadPoolExecutor(1, "ensemble-local-cluster")
         self._started: Future = self._pool.submit(self._start, workers or available_cores(),
-                                                  processes)
+                                                  processes, ":0" if dashboard else None)
         self._closing: Future | None = None
 
     @staticmethod
-    def _start(workers: int, processes: bool) -> tuple[LocalCluster, Client]:
+    def _start(workers: int, processes: bool, dashboard: str | None
+               ) -> tuple[LocalCluster, Client]:
         if processes:
             with dask.config.set(KEEP_FREED_MEMORY):
                 cluster = LocalCluster(
                     n_workers=workers, threads_per_worker=1, processes=True,
-                    dashboard_address=":0", silence_logs=logging.ERROR,
+                    dashboard_address=dashboard, silence_logs=logging.ERROR,
                     env=dict(SINGLE_THREAD_ENV))
         else:
             cluster = LocalCluster(n_workers=1, threads_per_worker=workers, processes=False,
-                                   dashboard_address=":0", silence_logs=logging.ERROR)
+                                   dashboard_address=dashboard, silence_logs=logging.ERROR)
         try:
             client = Client(cluster)
             if processes:   # thread workers share the driver's imports and signals
