@@ -30,7 +30,6 @@ import warnings
 from collections.abc import Iterator, Mapping, Sequence
 
 import numpy as np
-from scipy.stats import qmc
 
 from ensemble.sampling.distributions import needs_draw
 from ensemble.scenario.schema import Distribution, Scenario
@@ -162,6 +161,8 @@ def _sobol_columns(seed: int, columns: tuple[ColumnKey, ...], keys: Sequence[Col
         raise ValueError(f"columns {missing} are not among the scenario's uncertain columns")
     if not keys:
         return {}
+    from scipy.stats import qmc     # here only: scipy.stats takes half a second to import
+
     points = np.empty((members.size, len(columns)))
     for first, rows in _runs(members):
         engine = qmc.Sobol(len(columns), scramble=True, bits=SOBOL_BITS,
