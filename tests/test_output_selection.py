@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 
 from ensemble.output import selection
-from ensemble.output.selection import chunk_candidates, pilot_brackets, select
+from ensemble.output.selection import (chunk_candidates, pilot_brackets, recut,
+                                       refined_brackets, select)
 
 PROBABILITIES = [0.0, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 1.0]
 
@@ -69,3 +70,58 @@ def test_narrow_brackets_report_their_misses_and_keep_the_rest_exact(monkeypatch
     expected = np.quantile(values, PROBABILITIES, axis=1)
     np.testing.assert_array_equal(result[:, ~missed], expected[:, ~missed])
     assert np.isnan(result[:, missed]).all()
+
+
+def _summed(parts, brackets):
+    cells, intervals = brackets.lower.shape
+    return (sum(part.below for part in parts), sum(part.nans for part in parts),
+            sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts))
+
+
+def test_refined_brackets_from_the_first_members_keep_quantiles_exact():
+    """Brackets refined from the first 16,000 members (pilot whole, the rest cut with the
+    pilot's brackets) lie inside the pilot's, keep fewer values, and chunks cut with the
+    pilot's brackets and cut again (recut) give, with those cut with the refined ones,
+    numpy.quantile's bits; a recut chunk holds exactly what cutting it with the refined
+    brackets holds."""
+    rng = np.random.default_rng(5)
+    values = _cells(rng, 60_000)
+    included = rng.random(values.shape[1]) > 0.05
+    included[100] = True
+    pilot, stage, chunk = 4096, 16_000, 2000
+    coarse = pilot_brackets(values[:, :pilot][:, included[:pilot]].copy(), PROBABILITIES)
+    early = [chunk_candidates(values[:, first:first + chunk], included[first:first + chunk],
+                              coarse) for first in range(0, stage, chunk)]
+    below, nans, inside = _summed(early, coarse)
+    fine = refined_brackets(early, int(included[:stage].sum()), nans, below, inside, coarse,
+                            PROBABILITIES, block_cells=5)
+    for cell in range(fine.lower.shape[0]):
+        for low, high in zip(fine.lower[cell], fine.upper[cell]):
+            if low <= high:
+                assert ((coarse.lower[cell] <= low) & (high <= coarse.upper[cell])).any()
+    again = [recut(part, coarse, fine) for part in early]
+    direct = chunk_candidates(values[:, :chunk], included[:chunk], fine)
+    for name in ("below", "nans", "offsets", "values"):
+        np.testing.assert_array_equal(getattr(again[0], name), getattr(direct, name))
+    late = [chunk_candidates(values[:, first:first + chunk], included[first:first + chunk],
+                             fine) for first in range(stage, values.shape[1], chunk)]
+    parts = again + late
+    below, nans, inside = _summed(parts, fine)
+    result, missed = select(parts, slice(0, fine.lower.shape[0]), int(included.sum()), nans,
+                            below, inside, PROBABILITIES)
+    assert not missed.any()
+    np.testing.assert_array_equal(result, np.quantile(values[:, included], PROBABILITIES,
+                                                      axis=1))
+    coarse_kept = sum(part.values.size for part in early) / (stage * values.shape[0])
+    fine_kept = sum(part.values.size for part in late) / ((60_000 - stage) * values.shape[0])
+    assert fine_kept < 0.7 * coarse_kept
+
+
+def test_recut_refuses_brackets_outside_the_coarse_ones():
+    rng = np.random.default_rng(3)
+    values = rng.normal(size=(2, 3000))
+    coarse = pilot_brackets(values[:, :1000].copy(), [0.5])
+    part = chunk_candidates(values[:, 1000:2000], np.ones(1000, bool), coarse)
+    wider = selection.Brackets(coarse.lower - 1.0, coarse.upper)
+    with pytest.raises(ValueError, match="not inside"):
+        recut(part, coarse, wider)

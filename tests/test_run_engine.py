@@ -155,18 +155,23 @@ def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -
                                           getattr(fresh.result, name), err_msg=name)
 
 
+@pytest.mark.parametrize("refine_pilots", [4, 2], ids=["pilot-brackets", "refined"])
 @pytest.mark.parametrize("misleading", [False, True])
 def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypatch,
-                                                         misleading: bool) -> None:
+                                                         misleading: bool,
+                                                         refine_pilots: int) -> None:
     """The store's contract (ensemble/output/selection.py): past the pilot, chunks keep
     only candidates for the quantiles, and the file has the bits of a run that keeps
     every chunk whole; with a misleading pilot (its values inflated by a third, so the
     brackets miss) the missed cells are computed again from the chunks, with the same
     bits.  A failure half-way and a resume change nothing either, nor a chunk whose
-    candidates were cut with other brackets."""
+    candidates were cut with other brackets.  With refined brackets (from the first two
+    pilots' worth of members; 40,000 members are too few for four), the chunks after them
+    are cut with those and the ones before cut again at the finish."""
     import ensemble.output.store as store_module
 
     monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(store_module, "REFINE_PILOTS", refine_pilots)
     scenario = write_scenario(tmp_path, members=40_000, days=20, keep_members=False)
     monkeypatch.setattr(store_module, "PILOT_BYTES", 0)
     reference = api.run(scenario, output=tmp_path / "whole.nc", workers=0, chunk=4000,
@@ -195,6 +200,14 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
         return real_recomputed(self, name, keys, included, cells, recompute)
 
     monkeypatch.setattr(store_module.WorkStore, "_recomputed_quantiles", counting_recomputed)
+    recut = []
+    real_recut = store_module.recut
+
+    def counting_recut(part, coarse, fine):
+        recut.append(part)
+        return real_recut(part, coarse, fine)
+
+    monkeypatch.setattr(store_module, "recut", counting_recut)
     real_make_design = execute.make_design
 
     def failing_make_design(scenario, variant, model, members):
@@ -205,6 +218,8 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     monkeypatch.setattr(execute, "make_design", failing_make_design)
     with pytest.raises(RunFailed):
         api.run(scenario, workers=0, chunk=4000, progress=False)
+    refined = sorted((tmp_path / "result.nc.partial").glob("refined-brackets-*"))
+    assert bool(refined) == (refine_pilots == 2)
     # a chunk cut with other brackets (not expected) is computed again at the finish
     tampered = sorted((tmp_path / "result.nc.partial").glob("chunk-*/state-brackets"))[-1]
     tampered.write_text("other brackets")
@@ -212,6 +227,7 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     resumed = api.run(scenario, workers=0, chunk=5000, resume=True, progress=False)
     assert kept and min(kept) < 1.0, "no chunk was kept as candidates"
     assert bool(missed) == misleading, "only a misleading pilot misses cells"
+    assert bool(recut) == (refine_pilots == 2), "chunks cut with the pilot's brackets"
     assert_same_numbers(resumed, reference)
 
 

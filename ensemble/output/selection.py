@@ -235,21 +235,20 @@ def _append_groups(values, offsets, cursor, out):
         cursor[group] = start
 
 
-def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarray,
-           below: np.ndarray, inside: np.ndarray, probabilities: Sequence[float],
-           buffer: np.ndarray | None = None,
-           read: Callable[[int, int, int], np.ndarray] | None = None
-           ) -> tuple[np.ndarray, np.ndarray]:
-    """Quantiles of the cells ``cells`` over all members from the chunks' candidates.
+def order_statistics(parts: Sequence[Candidates], cells: slice, below: np.ndarray,
+                     inside: np.ndarray, ranks: np.ndarray,
+                     buffer: np.ndarray | None = None,
+                     read: Callable[[int, int, int], np.ndarray] | None = None
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Order statistics of the cells ``cells`` over all members from the chunks'
+    candidates.
 
     Parameters
     ----------
-    parts : every chunk's candidates.
-    cells : the block of cells to compute.
-    count : included members of the variant.
-    nans, below, inside : the chunks' counts summed, for all cells ((cells,) and
-        (cells, K)).
-    probabilities : the quantiles' probabilities.
+    parts : every chunk's candidates (cut with the same brackets).
+    cells : the block of cells.
+    below, inside : the chunks' counts summed, for all cells ((cells, K)).
+    ranks : (block, R) 0-based ranks wanted in each cell of the block.
     buffer : float64 memory for the block's candidates, reused from block to block
         (grown when short); default new memory.
     read : ``read(i, start, stop)``, values ``start .. stop - 1`` of part i, for parts
@@ -257,26 +256,17 @@ def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarr
 
     Returns
     -------
-    (quantile, block) values, and a (block,) mask of the cells whose ranks fell outside
-    every interval (their values are left NaN for the caller to compute).
+    (values, found) : (block, R) the values at those ranks, and whether each rank fell
+        inside an interval (where not, its value is NaN).
     """
     first, stop = cells.start, cells.stop
     intervals = below.shape[1]
-    n_cells = stop - first
-    probabilities = np.asarray(probabilities, dtype=np.float64)
-    result = np.full((len(probabilities), n_cells), np.nan)
-    missed = np.zeros(n_cells, bool)
-    if count == 0:
-        return result, missed
-    low_rank, high_rank, fraction = linear_ranks(count, probabilities)
-    block_below = below[cells][:, None, :]                  # (cell, 1, K)
+    block_below = below[cells][:, None, :]                   # (cell, 1, K)
     block_end = block_below + inside[cells][:, None, :]
-    holds = ((block_below <= low_rank[None, :, None])
-             & (high_rank[None, :, None] < block_end))       # (cell, quantile, K)
-    interval = holds.argmax(axis=2)
-    has_nan = nans[cells] > 0
-    missed = ~holds.any(axis=2).all(axis=1) & ~has_nan
-    # every chunk's candidates of the block, group by group, then each group sorted
+    holds = (block_below <= ranks[:, :, None]) & (ranks[:, :, None] < block_end)
+    found = holds.any(axis=2)
+    interval = holds.argmax(axis=2)                          # (cell, rank)
+    # every chunk's candidates of the block, group by group, then the groups used sorted
     sizes = inside[cells].ravel()
     starts = np.zeros(sizes.size + 1, np.int64)
     np.cumsum(sizes, out=starts[1:])
@@ -288,16 +278,150 @@ def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarr
         values = (read(index, offsets[0], offsets[-1]) if read is not None
                   else part.values[offsets[0]:offsets[-1]])
         _append_groups(values, offsets - offsets[0], cursor, out)
-    wanted = np.zeros((n_cells, intervals), bool)
-    good = ~missed & ~has_nan
-    wanted[np.flatnonzero(good)[:, None], interval[good]] = True
-    for group in np.flatnonzero(wanted.ravel()):
+    rows, columns = np.nonzero(found)
+    groups = rows * intervals + interval[rows, columns]
+    for group in np.unique(groups):
         out[starts[group]:starts[group + 1]].sort()
-    # the order statistics: group start + rank - values below the interval
+    # the order statistic: group start + rank - values below the interval
+    result = np.full(ranks.shape, np.nan)
+    result[rows, columns] = out[starts[groups] + ranks[rows, columns]
+                                - below[first + rows, interval[rows, columns]]]
+    return result, found
+
+
+def select(parts: Sequence[Candidates], cells: slice, count: int, nans: np.ndarray,
+           below: np.ndarray, inside: np.ndarray, probabilities: Sequence[float],
+           buffer: np.ndarray | None = None,
+           read: Callable[[int, int, int], np.ndarray] | None = None
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Quantiles of the cells ``cells`` over all members from the chunks' candidates.
+
+    Parameters
+    ----------
+    parts, cells, below, inside, buffer, read : as for :func:`order_statistics`.
+    count : included members of the variant.
+    nans : the chunks' NaN counts summed, for all cells ((cells,)).
+    probabilities : the quantiles' probabilities.
+
+    Returns
+    -------
+    (quantile, block) values, and a (block,) mask of the cells whose ranks fell outside
+    every interval (their values are left NaN for the caller to compute).
+    """
+    n_cells = cells.stop - cells.start
+    result = np.full((len(probabilities), n_cells), np.nan)
+    if count == 0:
+        return result, np.zeros(n_cells, bool)
+    low_rank, high_rank, fraction = linear_ranks(count, probabilities)
+    ranks = np.broadcast_to(np.concatenate([low_rank, high_rank]), (n_cells,
+                                                                     2 * low_rank.size))
+    values, found = order_statistics(parts, cells, below, inside, ranks, buffer, read)
+    has_nan = nans[cells] > 0
+    good = found.all(axis=1) & ~has_nan
+    missed = ~found.all(axis=1) & ~has_nan
     rows = np.flatnonzero(good)
-    base = starts[rows[:, None] * intervals + interval[rows]] - below[first + rows[:, None],
-                                                                       interval[rows]]
-    lower_values = out[base + low_rank[None, :]]
-    upper_values = out[base + high_rank[None, :]]
-    result[:, rows] = interpolate(lower_values.T, upper_values.T, fraction[:, None])
+    quantile_count = low_rank.size
+    result[:, rows] = interpolate(values[rows, :quantile_count].T,
+                                  values[rows, quantile_count:].T, fraction[:, None])
     return result, missed
+
+
+def refined_brackets(parts: Sequence[Candidates], count: int, nans: np.ndarray,
+                     below: np.ndarray, inside: np.ndarray, coarse: Brackets,
+                     probabilities: Sequence[float], block_cells: int,
+                     buffer: np.ndarray | None = None,
+                     read: Callable[[int, int, int], np.ndarray] | None = None) -> Brackets:
+    """Narrower brackets from the first S members (``count`` of them included), cut with
+    ``coarse``: for each cell and probability the interval between their order statistics
+    at the ranks :func:`pilot_ranges` takes for S values, where both lie inside one coarse
+    interval; a cell where one does not (or with fewer than two numbers) keeps its coarse
+    intervals.  So every new interval lies inside a coarse one, and chunks cut with the
+    coarse brackets can be cut again with these (:func:`recut`).  Cells go in blocks of
+    ``block_cells``; ``buffer`` (grown when short, then kept) holds a block's
+    candidates."""
+    cells = coarse.lower.shape[0]
+    probabilities = np.asarray(probabilities, dtype=np.float64)
+    quantile_count = probabilities.size
+    width = max(quantile_count, coarse.lower.shape[1])
+    lower = np.full((cells, width), np.inf)
+    upper = np.full((cells, width), -np.inf)
+    for first in range(0, cells, block_cells):
+        span = slice(first, min(first + block_cells, cells))
+        needed = int(inside[span].sum())
+        if buffer is None or buffer.size < needed:
+            buffer = np.empty(needed)                   # kept for the next blocks
+        numbers = (count - nans[span]).astype(np.float64)[:, None]      # (cell, 1)
+        centre = numbers * probabilities
+        margin = MARGIN_SD * np.sqrt(numbers * probabilities * (1 - probabilities)) + 2
+        low_rank = np.floor(centre - margin).astype(np.int64)
+        high_rank = np.ceil(centre + margin).astype(np.int64)
+        values, found = order_statistics(
+            parts, span, below, inside,
+            np.concatenate([np.maximum(low_rank, 0),
+                            np.minimum(high_rank, numbers.astype(np.int64) - 1)], axis=1),
+            buffer, read)
+        low = np.where(low_rank >= 0, values[:, :quantile_count], -np.inf)
+        high = np.where(high_rank <= numbers - 1, values[:, quantile_count:], np.inf)
+        known = ((found[:, :quantile_count] | (low_rank < 0))
+                 & (found[:, quantile_count:] | (high_rank > numbers - 1)))
+        coarse_low = coarse.lower[span][:, None, :]
+        coarse_high = coarse.upper[span][:, None, :]
+        contained = ((coarse_low <= low[:, :, None]) & (high[:, :, None] <= coarse_high)
+                     ).any(axis=2)
+        refined = (known & contained).all(axis=1) & (numbers[:, 0] >= 2)
+        rows = np.arange(span.start, span.stop)
+        lower[rows[refined], :quantile_count] = low[refined]
+        upper[rows[refined], :quantile_count] = high[refined]
+        kept = rows[~refined]
+        lower[kept, :coarse.lower.shape[1]] = coarse.lower[kept]
+        upper[kept, :coarse.lower.shape[1]] = coarse.upper[kept]
+    return merged_brackets(lower, upper)
+
+
+@numba.njit(cache=True, nogil=True)
+def _recut(values, offsets, below, coarse_lower, coarse_upper, lower, upper,
+           new_offsets, new_below, out):
+    """Cut each cell's candidates of the coarse intervals again with the finer
+    ``lower``/``upper`` (each inside one coarse interval); returns values kept, or -1
+    when a fine interval lies inside no coarse one."""
+    cells, coarse_count = coarse_lower.shape
+    fine_count = lower.shape[1]
+    kept = 0
+    for c in range(cells):
+        for j in range(fine_count):
+            new_offsets[c * fine_count + j] = kept
+            low = lower[c, j]
+            high = upper[c, j]
+            if low > high:          # an empty slot
+                continue
+            k = 0
+            while k < coarse_count and not (coarse_lower[c, k] <= low
+                                            and high <= coarse_upper[c, k]):
+                k += 1
+            if k == coarse_count:
+                return -1
+            under = below[c, k]
+            for i in range(offsets[c * coarse_count + k], offsets[c * coarse_count + k + 1]):
+                value = values[i]
+                under += value < low
+                out[kept] = value                       # kept only if inside: no branch
+                kept += (value >= low) & (value <= high)
+            new_below[c, j] = under
+    new_offsets[cells * fine_count] = kept
+    return kept
+
+
+def recut(part: Candidates, coarse: Brackets, fine: Brackets) -> Candidates:
+    """The candidates a chunk cut with ``coarse`` (``part``, values loaded) would have
+    had if cut with ``fine``, every interval of which lies inside a coarse one
+    (:func:`refined_brackets`): the same arrays as :func:`chunk_candidates` with
+    ``fine`` on the chunk's whole values."""
+    cells, intervals = fine.lower.shape
+    below = np.zeros((cells, intervals), np.int64)
+    offsets = np.empty(cells * intervals + 1, np.int64)
+    out = np.empty(part.values.size + 1)
+    kept = _recut(np.asarray(part.values), np.asarray(part.offsets), np.asarray(part.below),
+                  coarse.lower, coarse.upper, fine.lower, fine.upper, offsets, below, out)
+    if kept < 0:
+        raise ValueError("the fine brackets are not inside the coarse ones")
+    return Candidates(below, np.asarray(part.nans), offsets, out[:kept].copy())

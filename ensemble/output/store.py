@@ -53,7 +53,7 @@ from ensemble.integrate.check import ChunkResult
 from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
                                        chunk_candidates, merged_brackets, pilot_ranges,
-                                       select)
+                                       recut, refined_brackets, select)
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
@@ -90,6 +90,10 @@ blocks."""
 _derived_brackets: dict[tuple[str, str, int], dict[str, Brackets]] = {}
 """Brackets derived in this process, by (work directory, fingerprint, variant): tasks work
 on copies of the store, and a saved pilot gives the same brackets every time."""
+
+_unrefined: set[tuple[str, str, int, str]] = set()
+"""Variants (keys as in :data:`_derived_brackets`) whose first members include a chunk cut
+with brackets other than the pilot's (not expected): they keep the pilot's brackets."""
 
 _deriving = threading.Lock()
 """Held while a thread derives brackets: the others wait for its result rather than
@@ -372,8 +376,7 @@ class WorkStore:
         """
         layout = self.layout
         count = self._check_key(key)
-        pilot = self.pilot_members()
-        brackets = self.brackets(key[0]) if candidates and 0 < pilot <= key[1] else None
+        brackets = self._cutting_brackets(key) if candidates else None
         if not np.array_equal(result.members, np.arange(key[1], key[2])):
             raise ValueError(f"chunk {key} holds members {result.members[:3]}...")
         expected = {"state": (count, layout.n_states, layout.n_reports),
@@ -456,15 +459,112 @@ class WorkStore:
                                             for name in STREAMED}
         return _derived_brackets[known]
 
+    def refine_members(self) -> int:
+        """Members at the start of each variant whose candidates give refined brackets
+        (:func:`.selection.refined_brackets`, half as wide as the pilot's); the chunks
+        that start after them are cut with those.  0 (the pilot's brackets throughout)
+        without a pilot or when the ensemble is too small to gain."""
+        refine = REFINE_PILOTS * self.pilot_members()
+        return refine if refine and self.layout.members >= 2 * refine else 0
+
+    def _refined_path(self, variant: int) -> Path:
+        return self.work / f"{REFINED_PREFIX}v{variant}.npz"
+
+    def _refined_key(self, variant: int) -> tuple[str, str, int, str]:
+        return (str(self.work.resolve()), self.layout.fingerprint, variant, "refined")
+
+    def refined(self, variant: int) -> dict[str, Brackets] | None:
+        """The refined brackets of ``variant`` if they are in the work directory."""
+        known = self._refined_key(variant)
+        if known not in _derived_brackets:
+            try:
+                with np.load(self._refined_path(variant)) as stored:
+                    _derived_brackets[known] = {
+                        name: Brackets(stored[f"{name}_lower"], stored[f"{name}_upper"])
+                        for name in STREAMED}
+            except FileNotFoundError:
+                return None
+        return _derived_brackets[known]
+
+    def _cutting_brackets(self, key: ChunkKey) -> dict[str, Brackets] | None:
+        """The brackets to cut chunk ``key`` with: None (keep it whole) in its variant's
+        pilot or while the pilot is not saved; the refined brackets past
+        :meth:`refine_members` once they are known or can be derived without waiting
+        (the first members all saved, no other thread deriving); else the pilot's."""
+        variant, first, _ = key
+        pilot = self.pilot_members()
+        if not 0 < pilot <= first:
+            return None
+        coarse = self.brackets(variant)
+        refine = self.refine_members()
+        if coarse is None or not 0 < refine <= first:
+            return coarse
+        known = self.refined(variant)
+        if known is not None:
+            return known
+        if (self._refined_key(variant) in _unrefined or self.pending([(variant, 0, refine)])
+                or not _deriving.acquire(blocking=False)):
+            return coarse
+        try:
+            if self.refined(variant) is None:
+                self._derive_refined(variant, refine, coarse)
+        finally:
+            _deriving.release()
+        return self.refined(variant) or coarse
+
+    def _derive_refined(self, variant: int, refine: int, coarse: dict[str, Brackets]
+                        ) -> None:
+        """Derive ``variant``'s refined brackets from its chunks that start before member
+        ``refine`` and store them in the work directory (written aside and linked into
+        place, so that the first process to finish wins and every process uses the same
+        brackets, also after a resume)."""
+        keys = [key for key in self.saved() if key[0] == variant and key[1] < refine]
+        usable = {None, *(brackets.digest() for brackets in coarse.values())}
+        if any((None if self._kept_whole(key) else
+                (self._chunk_directory(key) / f"{name}-brackets").read_text()) not in usable
+               for key in keys for name in STREAMED):
+            _unrefined.add(self._refined_key(variant))  # cut with other brackets: keep these
+            return
+        included = np.zeros(self.layout.members, bool)
+        for key in keys:
+            included[key[1]:key[2]] = self._included(key)
+        count = int(included.sum())
+        workspace = threading.local()
+        arrays = {}
+        for name in STREAMED:
+            parts, read = self._candidate_parts(name, keys, included, coarse[name],
+                                                coarse[name], workspace, None)
+            below, nans, inside = _summed_counts(parts, coarse[name])
+            per_cell = 8 * max(1, int(inside.sum()) // len(inside))
+            fine = refined_brackets(parts, count, nans, below, inside, coarse[name],
+                                    self.layout.scenario.output.quantiles,
+                                    max(1, self.block_bytes // per_cell), None, read)
+            arrays[f"{name}_lower"], arrays[f"{name}_upper"] = fine.lower, fine.upper
+        final = self._refined_path(variant)
+        temporary = self.work / f"{TEMP_PREFIX}{final.name}-{os.getpid()}"
+        try:
+            with open(temporary, "wb") as handle:
+                np.savez(handle, **arrays)
+            try:
+                os.link(temporary, final)
+            except FileExistsError:
+                pass                # another process stored them first
+        except OSError as error:
+            raise StoreWriteError(_describe(error, self.work)) from error
+        finally:
+            temporary.unlink(missing_ok=True)
+
+    def _included(self, key: ChunkKey) -> np.ndarray:
+        """The members of chunk ``key`` behind the quantiles."""
+        with np.load(self._chunk_directory(key) / MEMBER_FILE) as members:
+            return in_summary(members["status"])
+
     def _pilot_brackets(self, name: str, variant: int, pilot: int) -> Brackets:
         """The brackets of trajectory ``name`` from the saved pilot of ``variant``, cells
         in blocks of about :data:`PILOT_BLOCK_BYTES` (excluded members' values are read
         as NaN, which the brackets ignore)."""
         keys = [key for key in self.saved() if key[0] == variant and key[1] < pilot]
-        included = {}
-        for key in keys:
-            with np.load(self._chunk_directory(key) / MEMBER_FILE) as members:
-                included[key] = in_summary(members["status"])
+        included = {key: self._included(key) for key in keys}
         cells = self._cells(name)
         step = max(1, PILOT_BLOCK_BYTES // (8 * pilot))
         workspace = threading.local()
@@ -709,46 +809,25 @@ class WorkStore:
                             recompute: Callable[[ChunkKey], ChunkResult] | None
                             ) -> np.ndarray:
         """(quantile, rows, time) quantiles of trajectory ``name`` of one variant whose
-        chunks past the pilot are kept as candidates (:func:`.selection.select`), cells
-        in blocks of about ``block_bytes`` of candidates, on the pool's threads."""
+        chunks past the pilot are kept as candidates (:func:`.selection.select`), cut with
+        the refined brackets where there are some, cells in blocks of about
+        ``block_bytes`` of candidates, on the pool's threads."""
         layout = self.layout
         probabilities = layout.scenario.output.quantiles
-        brackets = self.brackets(keys[0][0])[name]
-        cells, intervals = brackets.lower.shape
+        variant = keys[0][0]
+        coarse = self.brackets(variant)[name]
+        refined = self.refined(variant)
+        brackets = refined[name] if refined is not None else coarse
         workspace = threading.local()
-        parts = []
-        sources: list[Path | None] = []
-        for key in keys:
-            directory = self._chunk_directory(key)
-            if self._kept_whole(key) or (directory / f"{name}-brackets").read_text() \
-                    != brackets.digest():
-                # whole, or candidates for other brackets (not expected: the pilot
-                # gives the same brackets every time): the whole values
-                whole = (_read_range(directory / f"{name}.npy", 0,
-                                     _reusable(workspace, "whole", (cells, key[2] - key[1])))
-                         if self._kept_whole(key) else self._recomputed(key, name, recompute))
-                parts.append(chunk_candidates(whole, included[key[1]:key[2]], brackets))
-                sources.append(None)
-            else:
-                parts.append(Candidates(*(np.load(directory / f"{name}-{part}.npy")
-                                          for part in CANDIDATE_PARTS[:-1]), values=None))
-                sources.append(directory / f"{name}-values.npy")
-
-        def read(index: int, start: int, stop: int) -> np.ndarray:
-            """Values ``start .. stop - 1`` of part ``index``, read into this thread's
-            buffer."""
-            if sources[index] is None:
-                return parts[index].values[start:stop]
-            return _read_range(sources[index], start,
-                               _reusable(workspace, "read", (stop - start,)))
-
-        below = sum(np.asarray(part.below) for part in parts)
-        nans = sum(np.asarray(part.nans) for part in parts)
-        inside = sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts)
+        parts, read = self._candidate_parts(name, keys, included, brackets, coarse,
+                                            workspace, recompute, pool)
+        below, nans, inside = _summed_counts(parts, brackets)
+        cells = brackets.lower.shape[0]
         count = int(included.sum())
         per_cell = 8 * max(1, int(inside.sum()) // cells)
         step = max(1, self.block_bytes // per_cell)
         spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
+
         def select_block(span: slice) -> tuple[np.ndarray, np.ndarray]:
             buffer = _reusable(workspace, "candidates", (int(inside[span].sum()),))
             return select(parts, span, count, nans, below, inside, probabilities, buffer,
@@ -762,6 +841,51 @@ class WorkStore:
                                                            recompute)
         rows = layout.n_states if name == "state" else layout.n_flow_elements
         return values.reshape(len(probabilities), layout.n_reports, rows).transpose(0, 2, 1)
+
+    def _candidate_parts(self, name: str, keys: list[ChunkKey], included: np.ndarray,
+                         brackets: Brackets, coarse: Brackets, workspace: threading.local,
+                         recompute: Callable[[ChunkKey], ChunkResult] | None,
+                         pool: ThreadPoolExecutor | None = None
+                         ) -> tuple[list[Candidates],
+                                    Callable[[int, int, int], np.ndarray]]:
+        """Every chunk of ``keys`` (of one variant, whose members behind the quantiles
+        ``included`` marks) as candidates cut with ``brackets``, and the ``read`` of
+        :func:`.selection.order_statistics`: chunks cut with them stay on disk, those cut
+        with the ``coarse`` brackets are cut again, whole ones are cut here, and any other
+        (not expected) is computed again; on the ``pool``'s threads if given."""
+        cells = self._cells(name)
+        digest = brackets.digest()
+
+        def prepare(key: ChunkKey) -> tuple[Candidates, Path | None]:
+            directory = self._chunk_directory(key)
+            cut_with = (None if self._kept_whole(key)
+                        else (directory / f"{name}-brackets").read_text())
+            if cut_with == digest:
+                return (Candidates(*(np.load(directory / f"{name}-{part}.npy")
+                                     for part in CANDIDATE_PARTS[:-1]), values=None),
+                        directory / f"{name}-values.npy")
+            if cut_with is not None and cut_with == coarse.digest():
+                return recut(Candidates(*(np.load(directory / f"{name}-{part}.npy")
+                                          for part in CANDIDATE_PARTS)),
+                             coarse, brackets), None
+            whole = (_read_range(directory / f"{name}.npy", 0,
+                                 _reusable(workspace, "whole", (cells, key[2] - key[1])))
+                     if cut_with is None else self._recomputed(key, name, recompute))
+            return chunk_candidates(whole, included[key[1]:key[2]], brackets), None
+
+        prepared = list(pool.map(prepare, keys) if pool is not None else map(prepare, keys))
+        parts = [part for part, _ in prepared]
+        sources = [source for _, source in prepared]
+
+        def read(index: int, start: int, stop: int) -> np.ndarray:
+            """Values ``start .. stop - 1`` of part ``index``, read into this thread's
+            buffer."""
+            if sources[index] is None:
+                return parts[index].values[start:stop]
+            return _read_range(sources[index], start,
+                               _reusable(workspace, "read", (stop - start,)))
+
+        return parts, read
 
     def _recomputed_quantiles(self, name: str, keys: list[ChunkKey], included: np.ndarray,
                               cells: np.ndarray,
@@ -913,6 +1037,12 @@ def _merge(spans: list[tuple[int, int]]) -> list[tuple[int, int]]:
 PILOT_BYTES = 512 * 2**20
 """Largest size of a pilot's trajectories (:meth:`WorkStore.pilot_members`)."""
 
+REFINE_PILOTS = 4
+"""The refined brackets come from the first ``REFINE_PILOTS`` pilots' worth of members
+(:meth:`WorkStore.refine_members`): half as wide as the pilot's."""
+
+REFINED_PREFIX = "refined-brackets-"
+
 PILOT_BLOCK_BYTES = 16 * 2**20
 """Pilot values sorted at once when brackets are derived (:meth:`WorkStore.brackets`)."""
 
@@ -935,6 +1065,16 @@ def _preallocate(handle: BinaryIO, size: int) -> None:
         reserve(handle.fileno(), 0, size)
     except OSError:
         pass
+
+
+def _summed_counts(parts: Sequence[Candidates], brackets: Brackets
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(below, nans, inside) of the chunks' candidates summed: (cells, K), (cells,) and
+    (cells, K)."""
+    cells, intervals = brackets.lower.shape
+    return (sum(np.asarray(part.below) for part in parts),
+            sum(np.asarray(part.nans) for part in parts),
+            sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts))
 
 
 def _write_npy(path: Path, array: np.ndarray) -> None:
