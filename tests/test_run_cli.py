@@ -175,3 +175,11 @@ def test_interrupt_exits_130_and_keeps_finished_work(tmp_path: Path, signal_numb
     assert "--resume" in err and "Traceback" not in err
     assert not (tmp_path / "result.nc").exists()
     assert chunk_entries(tmp_path / "result.nc.partial")
+
+
+def test_without_dashboard_no_address_is_printed(tmp_path: Path) -> None:
+    """The dashboard is served and announced only when asked for (--dashboard)."""
+    scenario = write_scenario(tmp_path, members=12)
+    done = run_cli("run", scenario, "--workers", "1", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "dashboard" not in done.stderr

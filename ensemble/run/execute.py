@@ -453,7 +453,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                           candidates)
             else:
                 with open_client(workers, address, cluster, started, processes) as client:
-                    dashboard = _dashboard_link(client)
+                    local = address is None and cluster is None
+                    dashboard = (_dashboard_link(client) if not local or started is not None
+                                 and started.dashboard else None)
                     if dashboard:
                         progress.note(f"dask dashboard at {dashboard}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend,

@@ -87,6 +87,7 @@ class LocalStart:
 
     def __init__(self, workers: int | None = None, processes: bool = False,
                  dashboard: bool = False):
+        self.dashboard = dashboard
         self._pool = ThreadPoolExecutor(1, "ensemble-local-cluster")
         self._started: Future = self._pool.submit(self._start, workers or available_cores(),
                                                   processes, ":0" if dashboard else None)
