@@ -443,16 +443,21 @@ class TreeWatch:
         self.peak = max(self.peak, tree_rss(self.root))
 
 
-def report_end_to_end(directory: Path, members: int, case: Case, reference: float) -> None:
-    """``ensemble run`` on ``members`` SEIR members against (d) doing the same steps, with
-    the times at which the run's progress lines appear (planned, every chunk saved).  The
-    reference rate is the faster of (d) measured before (``reference``) and right after the
-    run on ``case``: the machine's speed drifts, and the faster reference gives the
-    stricter ratio."""
-    path = directory / "run.toml"
-    path.write_text(seir_scenario(members))
-    command = [sys.executable, "-m", "ensemble", "run", str(path), "--force",
-               "--backend", "compiled", "--output", str(directory / "run.nc")]
+@dataclasses.dataclass
+class RunMeasure:
+    """One ``ensemble run`` subprocess: wall time, progress lines, memory and CPU."""
+
+    wall: float
+    lines: list[tuple[float, str]]
+    watch: TreeWatch
+    returncode: int
+
+    def seen(self, text: str) -> str:
+        return next((f"{at:5.1f} s" for at, line in self.lines if text in line), "  -  ")
+
+
+def measure_run(command: list[str], directory: Path) -> RunMeasure:
+    """Run ``command`` in ``directory``, sampling its process tree."""
     lines: list[tuple[float, str]] = []
     began = time.monotonic()
     process = subprocess.Popen(command, cwd=directory, stdout=subprocess.DEVNULL,
@@ -466,21 +471,36 @@ def report_end_to_end(directory: Path, members: int, case: Case, reference: floa
         time.sleep(0.1)
     wall = time.monotonic() - began
     reader.join()
+    return RunMeasure(wall, lines, watch, process.returncode)
 
-    def seen(text: str) -> str:
-        return next((f"{at:5.1f} s" for at, line in lines if text in line), "  -  ")
 
+def report_end_to_end(directory: Path, members: int, case: Case, reference: float,
+                      repeats: int = 3) -> None:
+    """``ensemble run`` on ``members`` SEIR members against (d) doing the same steps, with
+    the times at which the run's progress lines appear (planned, every chunk saved); the
+    fastest of ``repeats`` runs, as every figure here is a best of a few.  The reference
+    rate is the faster of (d) measured before (``reference``) and right after the runs
+    on ``case``: the machine's speed drifts, and the faster reference gives the stricter
+    ratio."""
+    path = directory / "run.toml"
+    path.write_text(seir_scenario(members))
+    command = [sys.executable, "-m", "ensemble", "run", str(path), "--force",
+               "--backend", "compiled", "--output", str(directory / "run.nc")]
+    runs = [measure_run(command, directory) for _ in range(repeats)]
+    best = min(runs, key=lambda run: run.wall)
+    wall, watch = best.wall, best.watch
     reference = max(reference, case.reference_rate())
     # the run at h and the step check at h/2: 1 + 2 = 3 times the steps of one run
     steps = DAYS * STEPS_PER_REPORT
     reference_seconds = members * steps * 3 / reference
     print(f"\n== end to end: ensemble run --backend compiled, {members} SEIR members, "
           "members = false, step check on (h and h/2) ==")
-    print(f"exit status {process.returncode}, wall {wall:.1f} s, peak memory of the process "
-          f"tree {watch.peak / 1e9:.2f} GB (goal < 2 GB), CPU time of the tree "
-          f"{sum(watch.cpu.values()):.1f} s on {psutil.cpu_count()} cores")
-    print(f"chunks planned at {seen('chunks to compute')}, every chunk saved at "
-          f"{seen('every chunk saved')}, result written at {wall:5.1f} s")
+    print(f"exit status {best.returncode}, wall {wall:.1f} s (fastest of "
+          f"{', '.join(f'{run.wall:.1f}' for run in runs)} s), peak memory of the process "
+          f"tree {max(run.watch.peak for run in runs) / 1e9:.2f} GB (goal < 2 GB), CPU time "
+          f"of the tree {sum(watch.cpu.values()):.1f} s on {psutil.cpu_count()} cores")
+    print(f"chunks planned at {best.seen('chunks to compute')}, every chunk saved at "
+          f"{best.seen('every chunk saved')}, result written at {wall:5.1f} s")
     print(f"reference kernel (d) for the same integrations: {reference_seconds:.2f} s "
           "(the faster of its rates before and after the run)")
     print(f"ratio run / reference: {wall / reference_seconds:6.1f}   (target <= 5)")
