@@ -7,6 +7,7 @@ interrupted.
 from __future__ import annotations
 
 import atexit
+import logging
 import os
 import sys
 from collections.abc import Iterator
@@ -29,8 +30,14 @@ class Backend(str, Enum):
     compiled = "compiled"
 
 
-def _interrupt_on_sigterm(signum: int, frame: object) -> None:
-    """Treat SIGTERM like Ctrl-C: stop, keep finished work, exit 130."""
+def _interrupt(signum: int, frame: object) -> None:
+    """Ctrl-C or SIGTERM: stop, keep finished work, exit 130.
+
+    The interrupt may land inside a call that dask's event loop thread is serving, whose
+    clean-up callbacks can then fail and log tracebacks (distributed 2026.8: ``sync``'s
+    ``cancel`` reads a name not yet bound); the run is being abandoned, so those logs are
+    silenced and the one-line message stays the only output."""
+    logging.getLogger("tornado.application").setLevel(logging.CRITICAL)
     raise KeyboardInterrupt
 
 
@@ -84,7 +91,6 @@ def run(
         help="Run only shard I of N (0-based) into a part file for `ensemble merge`."),
 ) -> None:
     """Run every variant of SCENARIO and write the result file."""
-    import logging
     import shlex
     import signal
     import time
@@ -96,7 +102,8 @@ def run(
     from ensemble.run.execute import RunFailed
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
-    signal.signal(signal.SIGTERM, _interrupt_on_sigterm)
+    signal.signal(signal.SIGTERM, _interrupt)
+    signal.signal(signal.SIGINT, _interrupt)
     began = time.monotonic()
     history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
     with _fail_on_invalid():

@@ -3,8 +3,9 @@ units, attributes, chunking and compression.
 
 Every variable of the result file is described here once (:func:`variable_spec`), and
 every way of making a result uses it: :func:`build_dataset` for the variables that fit
-in memory (written by xarray), :func:`create_streamed_variable` for the trajectories of
-every member (written chunk by chunk with netCDF4), and :func:`dataset_from_results` for
+in memory (written by xarray), :func:`create_variable` for the variables added later
+with netCDF4 (the trajectories of every member, chunk by chunk, and their quantiles,
+:func:`append_variables`), and :func:`dataset_from_results` for
 a whole ensemble held in memory (:func:`ensemble.api.simulate`).  Arrays arrive with the model's flat
 rows (``c * n_groups + g`` for states, ``f * n_groups + g`` for flows) and leave with
 separate compartment/flow and group dimensions, ``group`` just before ``time`` and
@@ -20,6 +21,7 @@ version 1.10: section 3.1 (units "1" for counts), 4.4 (time coordinate), 6.1.1
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
@@ -340,9 +342,8 @@ def encoding(layout: ResultLayout, dataset: xr.Dataset) -> dict[str, dict[str, o
     return result
 
 
-def create_streamed_variable(nc: netCDF4.Dataset, layout: ResultLayout,
-                             name: str) -> netCDF4.Variable:
-    """Create ``state`` or ``flow_count`` in an open netCDF-4 file that already has the
+def create_variable(nc: netCDF4.Dataset, layout: ResultLayout, name: str) -> netCDF4.Variable:
+    """Create data variable ``name`` in an open netCDF-4 file that already has the
     dimensions and label variables (written by xarray from :func:`build_dataset`), with
     the attributes, chunks and compression that xarray would give it."""
     spec = variable_spec(layout, name)
@@ -352,9 +353,20 @@ def create_streamed_variable(nc: netCDF4.Dataset, layout: ResultLayout,
         name, spec.dtype, spec.dims, fill_value=enc.get("_FillValue", False),
         chunksizes=enc["chunksizes"], zlib=bool(enc.get("zlib", False)),
         complevel=int(enc.get("complevel", 4)), shuffle=bool(enc.get("shuffle", False)))
-    labels = [f"{d}_name" for d in spec.dims if d in LABELLED_DIMS and f"{d}_name" in nc.variables]
+    labels = sorted(f"{d}_name" for d in spec.dims
+                    if d in LABELLED_DIMS and f"{d}_name" in nc.variables)
     variable.setncatts({**spec.attrs, "coordinates": " ".join(labels)})
     return variable
+
+
+def append_variables(path: str | os.PathLike[str], layout: ResultLayout,
+                     variables: Mapping[str, np.ndarray]) -> None:
+    """Add data variables (arrays as for :func:`build_dataset`) to a result file written
+    from :func:`build_dataset` without them."""
+    with netCDF4.Dataset(path, "a") as nc:
+        for name, array in variables.items():
+            create_variable(nc, layout, name)[:] = file_shape(layout, name, array).astype(
+                variable_spec(layout, name).dtype, copy=False)
 
 
 def with_label_indexes(dataset: xr.Dataset) -> xr.Dataset:

@@ -687,21 +687,27 @@ class WorkStore:
     def _write_result(self, keys: list[ChunkKey], target: Path,
                       recompute: Callable[[ChunkKey], ChunkResult] | None) -> None:
         """Write the complete result file to ``target`` and fsync it."""
-        from ensemble.output.dataset import build_dataset, encoding   # xarray: here only
+        from ensemble.output.dataset import (append_variables, build_dataset,  # xarray
+                                             encoding)                         # here only
 
         layout = self.layout
         variables = self._gather_members(keys)
         status = variables["status"]
         included = in_summary(status)
-        variables.update(self._trajectory_quantiles(keys, included, recompute))
         variables.update(summary_quantiles(variables, status,
                                            layout.scenario.output.quantiles,
                                            layout.compare_index))
         dataset = build_dataset(layout, variables)
         del variables
-        dataset.to_netcdf(target, format="NETCDF4", engine="netcdf4",
-                          encoding=encoding(layout, dataset))
+        # the file is written (netCDF releases the interpreter lock while it compresses)
+        # while the trajectories' quantiles are selected, then they are added to it
+        with ThreadPoolExecutor(1, "ensemble-result-writer") as writer:
+            written = writer.submit(dataset.to_netcdf, target, format="NETCDF4",
+                                    engine="netcdf4", encoding=encoding(layout, dataset))
+            trajectory_quantiles = self._trajectory_quantiles(keys, included, recompute)
+            written.result()
         dataset.close()
+        append_variables(target, layout, trajectory_quantiles)
         if layout.scenario.output.members:
             self._stream_trajectories(keys, target)
         with open(target, "rb") as handle:
@@ -907,11 +913,11 @@ class WorkStore:
     def _stream_trajectories(self, keys: list[ChunkKey], target: Path) -> None:
         """Append ``state`` and ``flow_count`` of every member to the file, chunk by
         chunk."""
-        from ensemble.output.dataset import create_streamed_variable, file_shape
+        from ensemble.output.dataset import create_variable, file_shape
 
         with netCDF4.Dataset(target, "a") as nc:
             for name in STREAMED:
-                variable = create_streamed_variable(nc, self.layout, name)
+                variable = create_variable(nc, self.layout, name)
                 for key in keys:
                     variant, first, end = key
                     stored = np.load(self._chunk_directory(key) / f"{name}.npy")
