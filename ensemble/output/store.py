@@ -515,9 +515,9 @@ class WorkStore:
     def _derive_refined(self, variant: int, refine: int, coarse: dict[str, Brackets]
                         ) -> None:
         """Derive ``variant``'s refined brackets from its chunks that start before member
-        ``refine`` and store them in the work directory (written aside and linked into
-        place, so that the first process to finish wins and every process uses the same
-        brackets, also after a resume)."""
+        ``refine`` and store them in the work directory (synced, written aside and linked
+        into place, so that the first process to finish wins and every process uses the
+        same brackets, also after a resume or a crash of the machine)."""
         keys = [key for key in self.saved() if key[0] == variant and key[1] < refine]
         usable = {None, *(brackets.digest() for brackets in coarse.values())}
         if any((None if self._kept_whole(key) else
@@ -543,10 +543,10 @@ class WorkStore:
         final = self._refined_path(variant)
         temporary = self.work / f"{TEMP_PREFIX}{final.name}-{os.getpid()}"
         try:
-            with open(temporary, "wb") as handle:
-                np.savez(handle, **arrays)
+            _write_durably(temporary, lambda handle: np.savez(handle, **arrays))
             try:
                 os.link(temporary, final)
+                _fsync_directory(self.work)
             except FileExistsError:
                 pass                # another process stored them first
         except OSError as error:
