@@ -77,15 +77,19 @@ class Continuous:
     isf_standard: Callable[[np.ndarray], np.ndarray] | None = None
 
     def ppf(self, q: np.ndarray) -> np.ndarray:
+        """The values below which a fraction ``q`` of the distribution lies."""
         return self.ppf_standard(np.asarray(q, dtype=np.float64)) * self.scale + self.loc
 
     def isf(self, q: np.ndarray) -> np.ndarray:
+        """The values above which a fraction ``q`` of the distribution lies."""
         return self.isf_standard(np.asarray(q, dtype=np.float64)) * self.scale + self.loc
 
     def cdf(self, x: float) -> float:
+        """P(X <= x)."""
         return float(self.cdf_standard(np.float64((x - self.loc) / self.scale)))
 
     def sf(self, x: float) -> float:
+        """P(X > x), without the cancellation of 1 - cdf in the upper tail."""
         return float(self.sf_standard(np.float64((x - self.loc) / self.scale)))
 
 
