@@ -176,9 +176,8 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
         ``state`` and ``flow_count`` are (M, rows, n_reports) views of report-major
         arrays (the layout the kernel writes fastest); copy them where contiguity matters.
     """
-    module, source = load_kernel(model, method)
+    module, padded = _kernel_and_padding(model, method, design)
     members = design.members.shape[0]
-    padded = max(1, -(-members // source.block)) * source.block
     if buffers is None:
         state = np.empty((n_reports, model.n_states, padded))
         flow_count = np.empty((n_reports, model.n_flow_elements, padded))
@@ -219,9 +218,8 @@ def step_error_compiled(model: CompiledModel, design: Design, method: Method, st
     (error, status) : (M,) scaled Richardson estimates (NaN for a member with a non-finite
         value in either run) and the refined run's status bits.
     """
-    module, source = load_kernel(model, method)
+    module, padded = _kernel_and_padding(model, method, design)
     members = design.members.shape[0]
-    padded = max(1, -(-members // source.block)) * source.block
     reference = np.ascontiguousarray(coarse.transpose(2, 1, 0))
     error = np.empty(padded)
     status = np.empty(padded, np.uint8)
@@ -231,6 +229,13 @@ def step_error_compiled(model: CompiledModel, design: Design, method: Method, st
     error = error[:members]
     error[invalid] = np.nan
     return error, status[:members]
+
+
+def _kernel_and_padding(model: CompiledModel, method: Method, design: Design
+                        ) -> tuple[ModuleType, int]:
+    """The kernel module, and the members of ``design`` padded to whole blocks."""
+    module, source = load_kernel(model, method)
+    return module, max(1, -(-design.members.shape[0] // source.block)) * source.block
 
 
 def _launch(module: ModuleType, model: CompiledModel, design: Design, step: float,

@@ -80,15 +80,22 @@ def pilot_ranges(pilot: np.ndarray, probabilities: Sequence[float]
     upper = np.full((cells, len(probabilities)), np.inf)
     for count in np.unique(finite[finite >= 2]):
         rows = np.flatnonzero(finite == count)[:, None]
-        centre = count * probabilities
-        margin = MARGIN_SD * np.sqrt(count * probabilities * (1 - probabilities)) + 2
-        low_rank = np.floor(centre - margin).astype(np.int64)
-        high_rank = np.ceil(centre + margin).astype(np.int64)
+        low_rank, high_rank = bracket_ranks(count, probabilities)
         low_kept = np.flatnonzero(low_rank >= 0)
         high_kept = np.flatnonzero(high_rank <= count - 1)
         lower[rows, low_kept] = pilot[rows, low_rank[low_kept]]
         upper[rows, high_kept] = pilot[rows, high_rank[high_kept]]
     return lower, upper
+
+
+def bracket_ranks(count, probabilities: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The 0-based ranks ``count p -/+ (MARGIN_SD sqrt(count p (1 - p)) + 2)`` (floor and
+    ceiling) among ``count`` values that bracket each probability's quantile (``count`` a
+    number, or an array broadcasting against ``probabilities``)."""
+    centre = count * probabilities
+    margin = MARGIN_SD * np.sqrt(count * probabilities * (1 - probabilities)) + 2
+    return (np.floor(centre - margin).astype(np.int64),
+            np.ceil(centre + margin).astype(np.int64))
 
 
 def merged_brackets(lower: np.ndarray, upper: np.ndarray) -> Brackets:
@@ -351,10 +358,7 @@ def refined_brackets(parts: Sequence[Candidates], count: int, nans: np.ndarray,
         if buffer is None or buffer.size < needed:
             buffer = np.empty(needed)                   # kept for the next blocks
         numbers = (count - nans[span]).astype(np.float64)[:, None]      # (cell, 1)
-        centre = numbers * probabilities
-        margin = MARGIN_SD * np.sqrt(numbers * probabilities * (1 - probabilities)) + 2
-        low_rank = np.floor(centre - margin).astype(np.int64)
-        high_rank = np.ceil(centre + margin).astype(np.int64)
+        low_rank, high_rank = bracket_ranks(numbers, probabilities)
         values, found = order_statistics(
             parts, span, below, inside,
             np.concatenate([np.maximum(low_rank, 0),

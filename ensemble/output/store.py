@@ -535,10 +535,9 @@ class WorkStore:
             parts, read = self._candidate_parts(name, keys, included, coarse[name],
                                                 coarse[name], workspace, None)
             below, nans, inside = _summed_counts(parts, coarse[name])
-            per_cell = 8 * max(1, int(inside.sum()) // len(inside))
             fine = refined_brackets(parts, count, nans, below, inside, coarse[name],
                                     self.layout.scenario.output.quantiles,
-                                    max(1, self.block_bytes // per_cell), None, read)
+                                    self._cells_per_block(inside), None, read)
             arrays[f"{name}_lower"], arrays[f"{name}_upper"] = fine.lower, fine.upper
         final = self._refined_path(variant)
         temporary = self.work / f"{TEMP_PREFIX}{final.name}-{os.getpid()}"
@@ -830,8 +829,7 @@ class WorkStore:
         below, nans, inside = _summed_counts(parts, brackets)
         cells = brackets.lower.shape[0]
         count = int(included.sum())
-        per_cell = 8 * max(1, int(inside.sum()) // cells)
-        step = max(1, self.block_bytes // per_cell)
+        step = self._cells_per_block(inside)
         spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
 
         def select_block(span: slice) -> tuple[np.ndarray, np.ndarray]:
@@ -847,6 +845,12 @@ class WorkStore:
                                                            recompute)
         rows = layout.n_states if name == "state" else layout.n_flow_elements
         return values.reshape(len(probabilities), layout.n_reports, rows).transpose(0, 2, 1)
+
+    def _cells_per_block(self, inside: np.ndarray) -> int:
+        """Cells whose candidates (``inside``: (cells, K) counts) take about
+        ``block_bytes``."""
+        per_cell = 8 * max(1, int(inside.sum()) // len(inside))
+        return max(1, self.block_bytes // per_cell)
 
     def _candidate_parts(self, name: str, keys: list[ChunkKey], included: np.ndarray,
                          brackets: Brackets, coarse: Brackets, workspace: threading.local,
