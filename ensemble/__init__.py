@@ -11,12 +11,7 @@ The pipeline, one module a stage::
 ``ensemble.api`` is what notebooks and the command line call.
 """
 
-__version__ = "0.1.0"
-
-CAUTION = (
-    "Model projections inform, and never replace, the guidance of the public-health "
-    "authority responsible for the population."
-)
+from ensemble.about import CAUTION, VERSION as __version__
 
 _API = ("load_scenario", "scenario_warnings", "run", "simulate", "open_result", "summarize",
         "merge", "array_script")

@@ -194,12 +194,12 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
     import numpy as np
 
     from ensemble.integrate.check import integrate_chunk
-    from ensemble.model.compile import compile_model
+    from ensemble.model.lower import lower_model
     from ensemble.output.dataset import dataset_from_results, decode
     from ensemble.output.layout import ResultLayout
     from ensemble.run.plan import fingerprint
     from ensemble.sampling import make_design
-    from ensemble.scenario.errors import did_you_mean
+    from ensemble.errors import did_you_mean
 
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)
@@ -215,7 +215,7 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
             scenario, variants=tuple(known[name] for name in variants),
             output=dataclasses.replace(
                 scenario.output, compare_to=compare_to if compare_to in variants else None))
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     layout = ResultLayout.from_scenario(scenario, models, fingerprint(scenario, backend),
                                         history="ensemble.api.simulate (in memory)")
     members = np.arange(scenario.members)
@@ -248,7 +248,7 @@ def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | Non
 
     Raises
     ------
-    ensemble.scenario.errors.ScenarioError : no such profile, or an invalid one (file, key
+    ensemble.errors.ProfileError : no such profile, or an invalid one (file, key
         and value named; the command line exits with 2).
     """
     from ensemble.run.clusters import resolve_profile
@@ -307,22 +307,22 @@ def array_script(scenario: Scenario | str | os.PathLike[str], cluster: ClusterPr
 
     Raises
     ------
-    ensemble.scenario.errors.ScenarioError : invalid scenario or profile, ``local``, or a
+    ensemble.errors.InputError : invalid scenario or profile, ``local``, or a
         shard count outside 1 .. members (the command line exits with 2).
     """
     import dataclasses
 
     from ensemble.run.shards import array_script as driver
-    from ensemble.scenario.errors import ScenarioError
+    from ensemble.errors import UsageError
 
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)
     profile = cluster if not isinstance(cluster, str) else cluster_profile(cluster)
     if profile is None:
-        raise ScenarioError("--cluster", "", "local",
+        raise UsageError("--cluster", "", "local",
                             "a job array needs a batch-system profile (slurm or pbs)")
     if not 1 <= shards <= scenario.members:
-        raise ScenarioError("--shards", "", shards,
+        raise UsageError("--shards", "", shards,
                             f"expected 1 .. {scenario.members} (the members per variant)")
     if output is not None:
         scenario = dataclasses.replace(

@@ -95,7 +95,7 @@ def run(
     import signal
     import time
 
-    import ensemble
+    from ensemble.about import CAUTION
     from ensemble import api
     from ensemble.output.store import (FingerprintMismatch, OutputError, ResultExists,
                                        partial_path)
@@ -139,7 +139,7 @@ def run(
                f"in {time.monotonic() - began:.1f} s")
     flagged = ", ".join(f"{word} {count}" for word, count in counts.items())
     typer.echo(f"flagged members: {flagged}")
-    typer.echo(ensemble.CAUTION)
+    typer.echo(CAUTION)
 
 
 def _stop(message: str, status: int) -> None:
@@ -150,12 +150,12 @@ def _stop(message: str, status: int) -> None:
 
 @contextmanager
 def _fail_on_invalid() -> Iterator[None]:
-    """Report an invalid scenario as ``error: ...`` lines on standard error; exit 2."""
-    from ensemble.scenario.errors import ScenarioError
+    """Report invalid input (a scenario, a profile, an option) as ``error: ...`` lines on standard error; exit 2."""
+    from ensemble.errors import InputError
 
     try:
         yield
-    except ScenarioError as error:
+    except InputError as error:
         typer.echo("\n".join(f"error: {line}" for line in str(error).splitlines()), err=True)
         raise typer.Exit(2) from None
 

@@ -46,9 +46,9 @@ from scipy.integrate import solve_ivp
 
 from ensemble.examples import seir_text
 from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
-from ensemble.integrate.methods import METHODS
+from ensemble.methods import METHODS
 from ensemble.integrate.stepper import integrate_fixed
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
 
@@ -289,7 +289,7 @@ class Case:
         path.write_text(text)
         self.scenario = load_scenario(str(path))
         self.variant = self.scenario.variants[0]
-        self.model = compile_model(self.scenario, self.variant)
+        self.model = lower_model(self.scenario, self.variant)
         self.members = members
         self.design = make_design(self.scenario, self.variant, self.model,
                                   np.arange(members))

@@ -31,7 +31,7 @@ CHUNK = 5000
 
 def _layout(members: int, keep_members: bool):
     """The demo scenario cut to one variant, 365 days and ``members`` members."""
-    from ensemble.model.compile import compile_model
+    from ensemble.model.lower import lower_model
     from ensemble.output import ResultLayout
     from ensemble.scenario.load import load_scenario
 
@@ -39,13 +39,13 @@ def _layout(members: int, keep_members: bool):
     scenario = dataclasses.replace(
         scenario, days=Fraction(365), variants=scenario.variants[:1],
         output=dataclasses.replace(scenario.output, members=keep_members, compare_to=None))
-    models = [compile_model(scenario, scenario.variants[0])]
+    models = [lower_model(scenario, scenario.variants[0])]
     return ResultLayout.from_scenario(scenario, models, "0" * 64, "scripts/finish_memory.py")
 
 
 def _phase(phase: str, path: Path, members: int, keep_members: bool) -> None:
     """Run one phase in this process and print its peak resident memory in MiB."""
-    from ensemble.integrate.check import ChunkResult
+    from ensemble.records import ChunkResult
     from ensemble.output import WorkStore
 
     layout = _layout(members, keep_members)

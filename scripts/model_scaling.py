@@ -3,7 +3,7 @@
 On an illustrative age-structured SEIR (invented numbers: a dense random contact matrix,
 infection ``beta * S * (contacts @ (I / N))``) with G = 4, 8, 16, 32 groups, prints per G
 
-- the time of ``compile_model`` plus building the numpy evaluator, and its ratio to the
+- the time of ``lower_model`` plus building the numpy evaluator, and its ratio to the
   previous G (the rates hold G^2 products and their Jacobian 4 G^2 partials, each of
   a few nodes, so a ratio near 2^2 = 4 per doubling is the expected growth, up to
   about 2^3 = 8 where whole rate trees of O(G) nodes are visited per state);
@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from ensemble.examples import age_seir_text
-from ensemble.model import RateFunctions, compile_model
+from ensemble.model import RateFunctions, lower_model
 from ensemble.scenario.load import load_scenario
 
 def scenario_text(n_groups: int, seed: int = 1) -> str:
@@ -52,7 +52,7 @@ def main() -> None:
             path.write_text(scenario_text(n_groups))
             scenario = load_scenario(path)
             start = time.perf_counter()
-            model = compile_model(scenario, scenario.variants[0])
+            model = lower_model(scenario, scenario.variants[0])
             functions = RateFunctions(model)
             build = time.perf_counter() - start
             rng = np.random.default_rng(2)

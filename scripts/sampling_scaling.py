@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from ensemble.examples import seir_text
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
 
@@ -55,7 +55,7 @@ def main() -> None:
                                       population=100000, seed=1, name="scaling"))
             scenario = load_scenario(path)
             variant = scenario.variants[0]
-            model = compile_model(scenario, variant)
+            model = lower_model(scenario, variant)
             first = np.arange(chunk)
             last = np.arange(members - chunk, members)
 

@@ -20,9 +20,9 @@ import xarray as xr
 from ensemble.examples import seir_text
 from ensemble.integrate.check import (INVALID_START, NON_FINITE, STEP_CHECK_FAILED,
                                       ChunkResult, integrate_chunk)
-from ensemble.integrate.methods import METHODS
+from ensemble.methods import METHODS
 from ensemble.integrate.stepper import Trajectory, integrate_fixed
-from ensemble.model.compile import CompiledModel, compile_model
+from ensemble.model.lower import LoweredModel, lower_model
 from ensemble.output.layout import ResultLayout
 from ensemble.sampling import Design, make_design
 from ensemble.scenario.load import load_scenario
@@ -224,13 +224,13 @@ def load(tmp_path: Path, body: str) -> Scenario:
     return load_text(tmp_path, HEADER + body)
 
 
-def compiled(tmp_path: Path, body: str, variant: int = 0) -> CompiledModel:
+def compiled(tmp_path: Path, body: str, variant: int = 0) -> LoweredModel:
     """The compiled model of ``HEADER + body`` for its ``variant``-th variant."""
     scenario = load(tmp_path, body)
-    return compile_model(scenario, scenario.variants[variant])
+    return lower_model(scenario, scenario.variants[variant])
 
 
-def random_inputs(model: CompiledModel, members: int, seed: int = 1):
+def random_inputs(model: LoweredModel, members: int, seed: int = 1):
     """Positive random states (persons), parameters and schedule values for ``members``."""
     rng = np.random.default_rng(seed)
     population = np.repeat(model.population[None, :], len(model.compartments), axis=0)
@@ -248,7 +248,7 @@ class Case:
     """A loaded scenario with its first variant compiled and every member designed."""
 
     scenario: Scenario
-    model: CompiledModel
+    model: LoweredModel
     design: Design
 
     def row(self, label: str, kind: str = "state") -> int:
@@ -320,7 +320,7 @@ def load_case(tmp_path: Path, toml: str, name: str = "case") -> Case:
     """Write ``toml`` to ``tmp_path`` and load, compile and design all its members."""
     scenario = load_text(tmp_path, toml, name)
     variant = scenario.variants[0]
-    model = compile_model(scenario, variant)
+    model = lower_model(scenario, variant)
     design = make_design(scenario, variant, model, np.arange(scenario.members))
     return Case(scenario, model, design)
 
@@ -407,7 +407,7 @@ def grouped_scenario(directory: Path, *, members: int = 6, start: bool = True,
 
 def layout_of(scenario: Scenario, fingerprint: str = "f" * 64) -> ResultLayout:
     """The result layout of ``scenario`` (compiled for real: labels come from compile)."""
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     return ResultLayout.from_scenario(scenario, models, fingerprint, "test history")
 
 

@@ -15,7 +15,7 @@ import pytest
 from ensemble.run.clusters import (ClusterProfile, find_profile, jobqueue_arguments,
                                    load_profile, make_jobqueue_cluster, resolve_profile,
                                    worker_lifetime)
-from ensemble.scenario.errors import ScenarioError
+from ensemble.errors import ProfileError
 from support import REPO, run_cli, write_scenario
 
 SLURM_PROFILE = """\
@@ -83,7 +83,7 @@ def test_adaptive_profile(tmp_path: Path) -> None:
 def test_invalid_profile_names_file_key_and_value(tmp_path: Path, change, key, value,
                                                    hint) -> None:
     path = write(tmp_path, "bad.toml", SLURM_PROFILE.replace(*change))
-    with pytest.raises(ScenarioError) as caught:
+    with pytest.raises(ProfileError) as caught:
         load_profile(path)
     matching = [e for e in getattr(caught.value, "errors", [caught.value]) if e.key == key]
     assert matching, str(caught.value)
@@ -95,13 +95,13 @@ def test_invalid_profile_names_file_key_and_value(tmp_path: Path, change, key, v
 
 def test_every_problem_is_reported_at_once(tmp_path: Path) -> None:
     text = SLURM_PROFILE.replace("cores = 4", "cores = -1").replace('"8GB"', '"x"')
-    with pytest.raises(ScenarioError) as caught:
+    with pytest.raises(ProfileError) as caught:
         load_profile(write(tmp_path, "bad.toml", text))
     assert {e.key for e in caught.value.errors} == {"cluster.cores", "cluster.memory"}
 
 
 def test_not_toml_is_reported(tmp_path: Path) -> None:
-    with pytest.raises(ScenarioError, match="not valid TOML"):
+    with pytest.raises(ProfileError, match="not valid TOML"):
         load_profile(write(tmp_path, "bad.toml", "[cluster\n"))
 
 
@@ -122,7 +122,7 @@ def test_lookup_order_configs_then_user_directory(tmp_path: Path, monkeypatch) -
 def test_unknown_profile_lists_places_and_suggests(tmp_path: Path, monkeypatch) -> None:
     monkeypatch.setenv("XDG_CONFIG_HOME", str(tmp_path / "xdg"))
     write(tmp_path / "configs", "site.toml", SLURM_PROFILE)
-    with pytest.raises(ScenarioError) as caught:
+    with pytest.raises(ProfileError) as caught:
         find_profile("sight", cwd=tmp_path)
     message = str(caught.value)
     assert str(tmp_path / "configs" / "sight.toml") in message

@@ -23,9 +23,9 @@ from ensemble.integrate.compiled import (integrate_fixed_compiled, kernel_path,
                                          kernel_threads, load_kernel, set_kernel_threads,
                                          step_error_compiled)
 from ensemble.integrate.codegen import KernelSource
-from ensemble.integrate.methods import METHODS
+from ensemble.methods import METHODS
 from ensemble.integrate.stepper import integrate_fixed
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
 
@@ -140,7 +140,7 @@ def _load(tmp_path, text: str, name: str):
     path.write_text(textwrap.dedent(text))
     scenario = load_scenario(str(path))
     variant = scenario.variants[0]
-    model = compile_model(scenario, variant)
+    model = lower_model(scenario, variant)
     design = make_design(scenario, variant, model, np.arange(scenario.members))
     return scenario, model, design
 
@@ -283,12 +283,12 @@ def test_second_process_loads_kernel_from_disk_without_compiling(tmp_path):
     program = textwrap.dedent(f"""
         import numpy as np
         from ensemble.scenario.load import load_scenario
-        from ensemble.model.compile import compile_model
+        from ensemble.model.lower import lower_model
         from ensemble.sampling import make_design
-        from ensemble.integrate.methods import METHODS
+        from ensemble.methods import METHODS
         from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
         scenario = load_scenario({str(scenario_path)!r}, members=8)
-        model = compile_model(scenario, scenario.variants[0])
+        model = lower_model(scenario, scenario.variants[0])
         design = make_design(scenario, scenario.variants[0], model, np.arange(8))
         integrate_fixed_compiled(model, design, METHODS["forward-euler"], 0.25, 4, 3,
                                  scenario.solver.newton, 0.01)

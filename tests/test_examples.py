@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from ensemble.examples import age_seir_text, seir_text
-from ensemble.model import RateFunctions, compile_model
+from ensemble.model import RateFunctions, lower_model
 from support import load_text, random_inputs
 
 
@@ -33,7 +33,7 @@ def test_age_seir_infection_is_the_contact_matrix_form(tmp_path):
     scenario = load_text(tmp_path, age_seir_text(["young", "adult", "old"],
                                                  [1000, 2500, 800], contacts))
     np.testing.assert_array_equal(np.array(scenario.model.matrices["contacts"]), contacts)
-    model = compile_model(scenario, scenario.variants[0])
+    model = lower_model(scenario, scenario.variants[0])
     y, p, s = random_inputs(model, members=5)
     out = np.empty((model.n_flow_elements, 5))
     RateFunctions(model).rates(0.0, y, p, s, out)

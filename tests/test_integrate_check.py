@@ -12,7 +12,7 @@ import pytest
 from ensemble.integrate.check import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, integrate_chunk,
                                       observed_order, step_error)
 from ensemble.integrate.stepper import integrate_fixed
-from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
+from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,
                                        STEP_CHECK_FAILED)
 from support import load_case, subset

@@ -14,8 +14,8 @@ import math
 import numpy as np
 import pytest
 
-from ensemble.integrate.methods import METHODS
-from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED,
+from ensemble.methods import METHODS
+from ensemble.records import (BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED,
                                        NON_FINITE, STEP_CHECK_FAILED)
 from support import IMPLICIT, load_case, one_compartment
 

@@ -16,8 +16,8 @@ import scipy.linalg
 from ensemble.integrate.codegen import (elimination_order, factor_block, factor_pattern,
                                         solve_factored)
 from ensemble.integrate.compiled import integrate_fixed_compiled
-from ensemble.integrate.methods import METHODS
-from ensemble.integrate.status import NEWTON_NOT_CONVERGED
+from ensemble.methods import METHODS
+from ensemble.records import NEWTON_NOT_CONVERGED
 from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS, integrate_fixed
 from support import load_case, one_compartment
 

@@ -7,7 +7,7 @@ import pickle
 import numpy as np
 import pytest
 
-from ensemble.model import RateFunctions, compile_model
+from ensemble.model import RateFunctions, lower_model
 from ensemble.model.ir import Apply, Const, ParamRef, StateRef, apply
 from support import AGE_SEIR, SEIR, VITAL, compiled, load, random_inputs
 
@@ -115,14 +115,14 @@ def test_schedule_slots_and_variant_overrides(tmp_path):
     schedule is substituted; a variant that turns a constant into a schedule moves it
     from the parameter slots to the schedule slots."""
     scenario = load(tmp_path, SCHEDULED)
-    baseline = compile_model(scenario, scenario.variants[0])
+    baseline = lower_model(scenario, scenario.variants[0])
     assert baseline.parameter_slots == ("latent_days", "infectious_days", "beta")
     [closure] = baseline.schedule_slots
     assert (closure.name, closure.parameter, closure.element, closure.between) == (
         "closure", "closure", 0, "step")
     np.testing.assert_array_equal(closure.days, [0.0, 10.0, 30.5])
     assert closure.days.dtype == np.float64
-    ramp = compile_model(scenario, scenario.variants[1])
+    ramp = lower_model(scenario, scenario.variants[1])
     assert ramp.parameter_slots == ("infectious_days", "beta")
     assert [(slot.name, slot.between) for slot in ramp.schedule_slots] == [
         ("latent_days", "linear"), ("closure", "step")]

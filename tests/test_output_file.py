@@ -29,7 +29,7 @@ from ensemble import api
 from ensemble.cli import app
 from ensemble.examples import sir_text
 from ensemble.integrate.check import integrate_chunk
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.output.store import NotAResult, WorkStore
 from ensemble.sampling import make_design
 from support import fill, grouped_scenario, layout_of, load_text
@@ -169,7 +169,7 @@ def test_simulate_returns_what_the_streamed_file_holds(tmp_path):
     layout = layout_of(scenario)
     store = WorkStore.open(tmp_path / "r.nc", layout, resume=False, force=False)
     for index, variant in enumerate(scenario.variants):
-        model = compile_model(scenario, variant)
+        model = lower_model(scenario, variant)
         for first in range(0, 12, 5):
             members = np.arange(first, min(first + 5, 12))
             design = make_design(scenario, variant, model, members)

@@ -10,7 +10,7 @@ import pytest
 
 import ensemble.run.execute as execute
 from ensemble import api
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.output.store import WorkStore
 from ensemble.run.execute import RunFailed, open_client
 from ensemble.scenario.load import load_scenario
@@ -64,7 +64,7 @@ def test_a_task_error_on_a_worker_becomes_run_failed(tmp_path: Path) -> None:
     """A chunk that raises inside a dask worker (here: members past the end, refused by the
     sampler) stops the run with a message naming the chunk."""
     scenario = load_scenario(write_scenario(tmp_path))
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     with open_client(workers=1) as client:
         outputs = execute._on_cluster(client, scenario, models, [(1, 35, 45)], "numpy")
         with pytest.raises(RunFailed, match=r"members 35\.\.44 of variant 'distancing'"):
@@ -87,7 +87,7 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
     directory) hands the whole chunk back, and the driver's save of it is the same file.
     The local cluster's workers always see it."""
     scenario = load_scenario(write_scenario(tmp_path, members=12))
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     layout = layout_of(scenario)
     store = WorkStore.open(tmp_path / "result.nc", layout, resume=False, force=False)
     token = store.mark()
@@ -129,7 +129,7 @@ def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) 
     scenario = load_scenario(write_scenario(tmp_path, members=12))
     store = WorkStore.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
                            force=False)
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
     outputs = execute._in_process(scenario, models, keys, "numpy")
     execute._save_all(store, outputs, execute.Progress(bar=False))
@@ -145,7 +145,7 @@ def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -
     from ensemble.integrate.compiled import ReportBuffers
 
     scenario = load_scenario(write_scenario(tmp_path, members=40))
-    model = compile_model(scenario, scenario.variants[1])
+    model = lower_model(scenario, scenario.variants[1])
     buffers = ReportBuffers()
     for key in [(1, 0, 16), (1, 16, 32), (1, 32, 40), (1, 0, 16)]:
         reused = execute.compute_chunk(scenario, model, key, "compiled", 1, buffers)

@@ -1,4 +1,4 @@
-"""make_design on scenarios read by the loader and compiled by compile_model.
+"""make_design on scenarios read by the loader and compiled by lower_model.
 
 Values are checked against hand computations with numpy on the same draws, and the
 design's invariants (chunking, common random numbers, the initial-state rules of SPEC
@@ -13,7 +13,7 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from ensemble.model.compile import compile_model
+from ensemble.model.lower import lower_model
 from ensemble.sampling import Design, make_design
 from support import load_text
 
@@ -133,7 +133,7 @@ def age(tmp_path, members=1000, method="random", seed_high=20, variants=""):
 
 def design(scenario, variant_index: int, members) -> Design:
     variant = scenario.variants[variant_index]
-    return make_design(scenario, variant, compile_model(scenario, variant), np.asarray(members))
+    return make_design(scenario, variant, lower_model(scenario, variant), np.asarray(members))
 
 
 def assert_same_design(whole: Design, parts: list[Design]):
@@ -198,7 +198,7 @@ def test_derived_parameters_in_dependency_order(tmp_path):
 def test_parameter_rows_follow_the_compiled_slots(tmp_path):
     sc = age(tmp_path, 100)
     variant = sc.variants[0]
-    model = compile_model(sc, variant)
+    model = lower_model(sc, variant)
     d = make_design(sc, variant, model, np.arange(100))
     assert d.parameters.shape == (len(model.parameter_slots), 100)
     groups = sc.model.groups
@@ -227,7 +227,7 @@ def test_schedule_knots_evaluated_per_member(tmp_path):
     """Knot values that are expressions of parameters are evaluated member by member."""
     sc = seir(tmp_path, 100)
     variant = sc.variants[1]
-    model = compile_model(sc, variant)
+    model = lower_model(sc, variant)
     d = make_design(sc, variant, model, np.arange(100))
     (slot_index,) = [k for k, s in enumerate(model.schedule_slots)
                      if s.parameter == "contact_scale"]
@@ -243,7 +243,7 @@ def test_initial_state_with_rest_and_expressions(tmp_path):
     """S takes the rest of each group's population (SPEC section 1, ``initial``)."""
     sc = age(tmp_path, 50)
     variant = sc.variants[0]
-    model = compile_model(sc, variant)
+    model = lower_model(sc, variant)
     d = make_design(sc, variant, model, np.arange(50))
     by_label = dict(zip(model.state_labels, d.initial))
     population = dict(zip(sc.model.groups, sc.model.population))
@@ -296,7 +296,7 @@ def test_chunk_far_into_a_large_ensemble_allocates_per_chunk(tmp_path):
     below one float64 array over the ensemble (8 MB)."""
     sc = seir(tmp_path, 1_000_000)
     variant = sc.variants[1]
-    model = compile_model(sc, variant)
+    model = lower_model(sc, variant)
     tracemalloc.start()
     try:
         d = make_design(sc, variant, model, np.arange(999_000, 1_000_000))

@@ -12,17 +12,16 @@ from __future__ import annotations
 
 import importlib
 from collections.abc import Callable
-from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
 
-from ensemble.integrate.methods import METHODS
-from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
+from ensemble.methods import METHODS
+from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START, ChunkResult,
                                        NEWTON_NOT_CONVERGED, NON_FINITE, STATUS_FLAGS,
                                        STEP_CHECK_FAILED)
 from ensemble.integrate.stepper import Trajectory, integrate_fixed
-from ensemble.model.compile import CompiledModel
+from ensemble.model.lower import LoweredModel
 from ensemble.sampling import Design
 from ensemble.scenario.schema import Solver
 
@@ -38,28 +37,6 @@ ROUND_OFF_FACTOR = 100.0
 NEWTON_TOL_FACTOR = 10.0
 """d2 <= NEWTON_TOL_FACTOR * newton.tol counts as Newton noise for the implicit methods
 (common practice, no source)."""
-
-
-@dataclass(frozen=True)
-class ChunkResult:
-    """What one chunk of members produced.
-
-    Attributes
-    ----------
-    members : (M,) int64 member indices.
-    state : (M, n_states, n_reports) persons at each reported time.
-    flow_count : (M, n_flow_elements, n_reports) persons moved over the interval ending at
-        each reported time; NaN at the first.
-    step_error, observed_order : (M,) float64 (NaN where not computed).
-    status : (M,) uint8 bit flags.
-    """
-
-    members: np.ndarray
-    state: np.ndarray
-    flow_count: np.ndarray
-    step_error: np.ndarray
-    observed_order: np.ndarray
-    status: np.ndarray
 
 
 ROWS_PER_BLOCK = 32
@@ -173,7 +150,7 @@ def _integrator(backend: str):
     return _compiled_backend().integrate_fixed_compiled
 
 
-def integrate_chunk(model: CompiledModel, design: Design, solver: Solver, n_reports: int,
+def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_reports: int,
                     backend: str = "numpy", buffers=None) -> ChunkResult:
     """Integrate ``design``'s members over ``n_reports - 1`` report intervals and check
     each member's step.

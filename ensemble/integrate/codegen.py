@@ -35,10 +35,10 @@ import inspect
 import math
 from collections.abc import Iterable
 
-from ensemble.integrate.methods import Method
-from ensemble.integrate.status import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
+from ensemble.methods import Method
+from ensemble.records import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
 from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS
-from ensemble.model.compile import CompiledModel
+from ensemble.model.lower import LoweredModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
 
@@ -57,7 +57,7 @@ model (n = 64) that is 32 members; 8 members gave twice the cost per step (measu
 scripts/benchmark.py)."""
 
 
-def block_size(model: CompiledModel, method: Method) -> int:
+def block_size(model: LoweredModel, method: Method) -> int:
     """Members per block: 512 for explicit methods; for implicit ones as many as keep the
     block's Newton matrices near :data:`BLOCK_BYTES` (a power of two, 8 to 512).
 
@@ -462,7 +462,7 @@ class KernelSource:
     block : members per block (:func:`block_size`).
     """
 
-    def __init__(self, model: CompiledModel, method: Method):
+    def __init__(self, model: LoweredModel, method: Method):
         self.model = model
         self.method = method
         self.block = block_size(model, method)

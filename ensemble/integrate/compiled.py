@@ -35,11 +35,11 @@ from types import ModuleType
 import numba
 import numpy as np
 
-from ensemble.integrate.status import INVALID_START
+from ensemble.records import INVALID_START
 from ensemble.integrate.codegen import KernelSource
-from ensemble.integrate.methods import Method
+from ensemble.methods import Method
 from ensemble.integrate.stepper import Trajectory
-from ensemble.model.compile import CompiledModel
+from ensemble.model.lower import LoweredModel
 from ensemble.sampling import Design
 from ensemble.scenario.schema import Newton
 
@@ -47,7 +47,7 @@ CACHE_ENVIRONMENT = "ENSEMBLE_KERNEL_CACHE"
 """Environment variable naming the kernel cache directory (overrides the XDG default)."""
 
 _loaded: dict[str, ModuleType] = {}
-_recent: dict[tuple[int, str], tuple[CompiledModel, ModuleType, KernelSource]] = {}
+_recent: dict[tuple[int, str], tuple[LoweredModel, ModuleType, KernelSource]] = {}
 _loading = threading.Lock()
 
 
@@ -93,7 +93,7 @@ def _write_once(path: Path, text: str) -> None:
         raise
 
 
-def load_kernel(model: CompiledModel, method: Method) -> tuple[ModuleType, KernelSource]:
+def load_kernel(model: LoweredModel, method: Method) -> tuple[ModuleType, KernelSource]:
     """The kernel module of ``model`` and ``method`` (generated, written and imported on
     first use; numba compiles it on first call unless its disk cache has it).  The last
     few (model, method) pairs are remembered, so chunks of one run skip the generation."""
@@ -157,7 +157,7 @@ _NO_MEMBERS = np.empty(0)
 error)."""
 
 
-def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Method,
+def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method,
                              step: float, steps_per_report: int, n_reports: int,
                              newton: Newton, atol: float,
                              buffers: tuple[ReportBuffers, str] | None = None) -> Trajectory:
@@ -195,7 +195,7 @@ def integrate_fixed_compiled(model: CompiledModel, design: Design, method: Metho
                       status=status[:members])
 
 
-def step_error_compiled(model: CompiledModel, design: Design, method: Method, step: float,
+def step_error_compiled(model: LoweredModel, design: Design, method: Method, step: float,
                         steps_per_report: int, n_reports: int, newton: Newton, atol: float,
                         coarse: np.ndarray, refine: int, order: int, rtol: float
                         ) -> tuple[np.ndarray, np.ndarray]:
@@ -231,14 +231,14 @@ def step_error_compiled(model: CompiledModel, design: Design, method: Method, st
     return error, status[:members]
 
 
-def _kernel_and_padding(model: CompiledModel, method: Method, design: Design
+def _kernel_and_padding(model: LoweredModel, method: Method, design: Design
                         ) -> tuple[ModuleType, int]:
     """The kernel module, and the members of ``design`` padded to whole blocks."""
     module, source = load_kernel(model, method)
     return module, max(1, -(-design.members.shape[0] // source.block)) * source.block
 
 
-def _launch(module: ModuleType, model: CompiledModel, design: Design, step: float,
+def _launch(module: ModuleType, model: LoweredModel, design: Design, step: float,
             steps_per_report: int, n_reports: int, newton: Newton, atol: float,
             padded: int, status: np.ndarray,
             outputs: tuple[np.ndarray, np.ndarray] | None,

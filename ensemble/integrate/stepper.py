@@ -16,7 +16,7 @@ increments taken in increasing flow-element order, starting from the first one (
 for a flow into the compartment, ``-inc_f`` out of it), and the new value is
 ``y_i + delta_i``; a row no flow touches is copied.
 
-Schedules (:class:`ensemble.model.compile.ScheduleSlot`): a ``"step"`` slot has the value
+Schedules (:class:`ensemble.model.lower.ScheduleSlot`): a ``"step"`` slot has the value
 of its last knot at or before the start of the step for every stage of step k, found on
 the integer step grid (knot step ``rint(day / h)`` <= k) so that round-off in ``k * h``
 cannot move a jump; before the first knot the first value holds.  A ``"linear"`` slot at
@@ -65,11 +65,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ensemble.integrate.methods import Method
-from ensemble.integrate.status import (BELOW_NEGATIVE_ATOL, INVALID_START,
+from ensemble.methods import Method
+from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE)
-from ensemble.model.compile import CompiledModel, ScheduleSlot
-from ensemble.model.evaluate import RateFunctions
+from ensemble.model.lower import LoweredModel, ScheduleSlot
+from ensemble.model.numpy_rates import RateFunctions
 from ensemble.sampling import Design
 from ensemble.scenario.schema import Newton
 
@@ -94,7 +94,7 @@ class Trajectory:
     flow_count : (M, n_flow_elements, n_reports) float64 persons moved over each report
         interval; NaN at index 0.
     status : (M,) uint8 OR of NON_FINITE, BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED and
-        INVALID_START (bits of :mod:`ensemble.integrate.status`).
+        INVALID_START (bits of :mod:`ensemble.records`).
     """
 
     state: np.ndarray
@@ -177,7 +177,7 @@ class _Schedules:
 
 class _NewtonMatrix:
     """``I - (h * theta) * J`` per member, with ``J = S dR/dy`` the state Jacobian of
-    :meth:`ensemble.model.evaluate.RateFunctions.state_jacobian` (every entry a sum of
+    :meth:`ensemble.model.numpy_rates.RateFunctions.state_jacobian` (every entry a sum of
     +-partials in the evaluator's pattern order)."""
 
     def __init__(self, functions: RateFunctions, h_theta: float):
@@ -217,7 +217,7 @@ def _solve_each(matrices: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.n
 class _ChunkStepper:
     """Advances the state of a chunk by one step, in place, with preallocated buffers."""
 
-    def __init__(self, model: CompiledModel, design: Design, method: Method, step: float,
+    def __init__(self, model: LoweredModel, design: Design, method: Method, step: float,
                  newton: Newton):
         n_members = len(design.members)
         self.method = method
@@ -327,7 +327,7 @@ class _ChunkStepper:
         status[active] |= NEWTON_NOT_CONVERGED
 
 
-def integrate_fixed(model: CompiledModel, design: Design, method: Method, step: float,
+def integrate_fixed(model: LoweredModel, design: Design, method: Method, step: float,
                     steps_per_report: int, n_reports: int, newton: Newton,
                     atol: float) -> Trajectory:
     """Integrate every member of ``design`` with ``method`` at a fixed ``step``.
@@ -336,7 +336,7 @@ def integrate_fixed(model: CompiledModel, design: Design, method: Method, step: 
     ----------
     model : the compiled model of the variant.
     design : the members' parameters, schedule values and initial states.
-    method : one of :data:`ensemble.integrate.methods.METHODS`.
+    method : one of :data:`ensemble.methods.METHODS`.
     step : h in days.
     steps_per_report : steps between reported times (report interval / h).
     n_reports : reported times, t = 0 included.

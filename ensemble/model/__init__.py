@@ -1,10 +1,10 @@
-"""The compiled model: scalar rate trees (:mod:`.ir`), their lowering from a scenario
-(:mod:`.compile`), symbolic state derivatives (:mod:`.derivatives`) and the numpy
-reference evaluator (:mod:`.evaluate`)."""
+"""The lowered model: scalar rate trees (:mod:`.ir`), their lowering from a scenario
+(:mod:`.lower`), symbolic state derivatives (:mod:`.derivatives`) and the numpy
+reference evaluator of the rates (:mod:`.numpy_rates`)."""
 
-from ensemble.model.compile import (CompiledModel, ScheduleSlot, compile_model,
-                                    time_varying_parameters)
-from ensemble.model.evaluate import RateFunctions
+from ensemble.model.lower import (LoweredModel, ScheduleSlot, lower_model,
+                                  time_varying_parameters)
+from ensemble.model.numpy_rates import RateFunctions
 
-__all__ = ["CompiledModel", "RateFunctions", "ScheduleSlot", "compile_model",
+__all__ = ["LoweredModel", "RateFunctions", "ScheduleSlot", "lower_model",
            "time_varying_parameters"]

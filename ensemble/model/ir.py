@@ -1,6 +1,6 @@
 """Scalar intermediate form of a compiled model's rates.
 
-:mod:`ensemble.model.compile` lowers every vector-valued expression of the scenario to one
+:mod:`ensemble.model.lower` lowers every vector-valued expression of the scenario to one
 scalar tree per group element, with parameters, matrices and ``N`` resolved.  Nodes are
 frozen (hence hashable) dataclasses, so equal subtrees compare equal and code generators
 can share common subexpressions through a dict.
@@ -11,9 +11,9 @@ A tree reads, for one member at one stage:
 - :class:`StateRef` row ``index`` of the state array (compartment-major, group-minor:
   ``index = compartment * n_groups + group``);
 - :class:`ParamRef` row ``index`` of the per-member constant parameter array
-  (``CompiledModel.parameter_slots``);
+  (``LoweredModel.parameter_slots``);
 - :class:`ScheduleRef` row ``index`` of the per-member schedule values in force at this
-  stage (``CompiledModel.schedule_slots``);
+  stage (``LoweredModel.schedule_slots``);
 - :class:`TimeRef` the stage time t (days since start);
 - :class:`Apply` an operation of :data:`OPERATIONS` on its arguments.
 

@@ -2,7 +2,7 @@
 
 from ensemble.output.layout import ParameterInfo, ResultLayout
 from ensemble.output.store import (
-    ChunkKey,
+
     FingerprintMismatch,
     IncompleteWork,
     NotAResult,
@@ -15,7 +15,7 @@ from ensemble.output.store import (
 )
 
 __all__ = [
-    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
+    "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
     "ParameterInfo", "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
     "partial_path", "result_fingerprint",
 ]

@@ -29,8 +29,8 @@ import netCDF4
 import numpy as np
 import xarray as xr
 
-import ensemble
-from ensemble.integrate.check import STATUS_FLAGS, ChunkResult
+from ensemble.about import CAUTION
+from ensemble.records import STATUS_FLAGS, ChunkResult
 from ensemble.output.layout import STREAMED, ResultLayout
 from ensemble.output.summary import (
     FLOW_METRICS,
@@ -215,7 +215,7 @@ def global_attributes(layout: ResultLayout) -> dict[str, object]:
         "solver_method": scenario.solver.method,
         "solver_step": float(scenario.solver.step),
         "time_varying_parameters": " ".join(layout.time_varying_parameters),
-        "caution": ensemble.CAUTION,
+        "caution": CAUTION,
     }
     if scenario.description:
         attrs["comment"] = scenario.description

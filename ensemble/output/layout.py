@@ -11,8 +11,8 @@ from typing import Literal
 
 import numpy as np
 
-import ensemble
-from ensemble.model.compile import CompiledModel, time_varying_parameters
+from ensemble.about import PROGRAM, VERSION
+from ensemble.model.lower import LoweredModel, time_varying_parameters
 from ensemble.scenario.schema import Scenario
 
 
@@ -68,7 +68,7 @@ class ResultLayout:
     time_varying_parameters: tuple[str, ...]
     fingerprint: str
     history: str
-    source: str = f"ensemble {ensemble.__version__}"
+    source: str = f"{PROGRAM} {VERSION}"
 
     @property
     def n_groups(self) -> int:
@@ -97,7 +97,7 @@ class ResultLayout:
         return self.variants.index(other) if other else None
 
     @classmethod
-    def from_scenario(cls, scenario: Scenario, models: Sequence[CompiledModel],
+    def from_scenario(cls, scenario: Scenario, models: Sequence[LoweredModel],
                       fingerprint: str, history: str) -> ResultLayout:
         """The layout of ``scenario``'s result.
 

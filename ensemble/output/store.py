@@ -49,7 +49,7 @@ import netCDF4
 import numpy as np
 import psutil
 
-from ensemble.integrate.check import ChunkResult
+from ensemble.records import ChunkKey, ChunkResult
 from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
                                        chunk_candidates, merged_brackets, pilot_ranges,
@@ -57,12 +57,11 @@ from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
 __all__ = [
-    "ChunkKey", "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
+    "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
     "ParameterInfo", "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
     "partial_path", "result_fingerprint",
 ]
 
-ChunkKey = tuple[int, int, int]
 """(variant index, first member, end member): members ``first .. end - 1`` of a variant."""
 
 MANIFEST = "manifest.json"

@@ -15,7 +15,7 @@ from collections.abc import Mapping, Sequence
 import numba
 import numpy as np
 
-from ensemble.integrate.check import INVALID_START, NON_FINITE, STATUS_FLAGS
+from ensemble.records import INVALID_START, NON_FINITE, STATUS_FLAGS
 
 EXCLUDED_FROM_SUMMARY = NON_FINITE | INVALID_START
 """Status bits that keep a member out of the quantiles."""

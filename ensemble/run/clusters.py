@@ -30,7 +30,7 @@ from typing import Any, Literal
 
 from dask.utils import parse_bytes
 
-from ensemble.scenario.errors import ScenarioError, ScenarioErrors, did_you_mean
+from ensemble.errors import ProfileError, ProfileErrors, did_you_mean
 
 LOCAL = "local"
 """The reserved profile name for this machine (a dask LocalCluster)."""
@@ -111,7 +111,7 @@ def find_profile(name: str, *, cwd: Path | None = None) -> Path | None:
 
     Raises
     ------
-    ScenarioError
+    ProfileError
         No such profile (the message lists the places looked in and, if one is close, a
         "did you mean" hint).
     """
@@ -120,7 +120,7 @@ def find_profile(name: str, *, cwd: Path | None = None) -> Path | None:
     if name.endswith(".toml") or os.sep in name or "/" in name:
         path = Path(name) if Path(name).is_absolute() else (cwd or Path.cwd()) / name
         if not path.is_file():
-            raise ScenarioError(name, "", None, "no such cluster profile file")
+            raise ProfileError(name, "", None, "no such cluster profile file")
         return path.resolve()
     directories = profile_directories(cwd)
     for directory in directories:
@@ -132,7 +132,7 @@ def find_profile(name: str, *, cwd: Path | None = None) -> Path | None:
     hint = did_you_mean(name, [*known, LOCAL])
     if hint is None and known:
         hint = "known profiles: " + ", ".join(known)
-    raise ScenarioError("--cluster", "", name, f"no cluster profile of that name (looked for {places})",
+    raise ProfileError("--cluster", "", name, f"no cluster profile of that name (looked for {places})",
                         hint)
 
 
@@ -152,8 +152,8 @@ def load_profile(path: str | Path) -> ClusterProfile:
 
     Raises
     ------
-    ScenarioError
-        The file cannot be read or is not TOML; or, as :class:`ScenarioErrors`, every problem
+    ProfileError
+        The file cannot be read or is not TOML; or, as :class:`ProfileErrors`, every problem
         found in its keys, each naming the file, the key path and the value.
     """
     path = Path(path)
@@ -161,9 +161,9 @@ def load_profile(path: str | Path) -> ClusterProfile:
     try:
         document = tomllib.loads(path.read_text(encoding="utf-8"))
     except OSError as error:
-        raise ScenarioError(file, "", None, f"cannot read the cluster profile: {error.strerror}")
+        raise ProfileError(file, "", None, f"cannot read the cluster profile: {error.strerror}")
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
-        raise ScenarioError(file, "", None, f"not valid TOML: {error}")
+        raise ProfileError(file, "", None, f"not valid TOML: {error}")
     return _Validator(file, path.stem, path.resolve()).profile(document)
 
 
@@ -172,10 +172,10 @@ class _Validator:
 
     def __init__(self, file: str, name: str, path: Path):
         self.file, self.name, self.path = file, name, path
-        self.errors: list[ScenarioError] = []
+        self.errors: list[ProfileError] = []
 
     def error(self, key: str, value: object, message: str, hint: str | None = None) -> None:
-        self.errors.append(ScenarioError(self.file, key, value, message, hint))
+        self.errors.append(ProfileError(self.file, key, value, message, hint))
 
     def profile(self, document: Mapping[str, Any]) -> ClusterProfile:
         for key in document:
@@ -185,7 +185,7 @@ class _Validator:
         table = document.get("cluster")
         if not isinstance(table, dict):
             self.error("cluster", None, "missing [cluster] table")
-            raise ScenarioErrors(self.errors)
+            raise ProfileErrors(self.errors)
         for key in table:
             if key not in _KEYS:
                 self.error(f"cluster.{key}", table[key], "unknown key", did_you_mean(key, _KEYS))
@@ -210,7 +210,7 @@ class _Validator:
         directives = self.lines(table, "directives")
         setup = self.lines(table, "setup")
         if self.errors:
-            raise ScenarioErrors(self.errors)
+            raise ProfileErrors(self.errors)
         return ClusterProfile(
             name=self.name, path=self.path, system=system, queue=queue, account=account,
             walltime=walltime, cores=cores, memory=memory, processes=processes or cores,

@@ -28,11 +28,13 @@ from pathlib import Path
 import numpy as np
 from distributed import Client, Future, as_completed
 
-from ensemble.integrate.check import ChunkResult, integrate_chunk
+from ensemble.integrate.check import integrate_chunk
+from ensemble.records import ChunkResult
 from ensemble.integrate.codegen import block_size
-from ensemble.integrate.methods import METHODS
-from ensemble.model.compile import CompiledModel, compile_model
-from ensemble.output.store import ChunkKey, ResultLayout, StoreWriteError, WorkStore
+from ensemble.methods import METHODS
+from ensemble.model.lower import LoweredModel, lower_model
+from ensemble.output.store import ResultLayout, StoreWriteError, WorkStore
+from ensemble.records import ChunkKey
 from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
 from ensemble.run.local import LocalStart, available_cores
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
@@ -82,7 +84,7 @@ class ChunkOutput:
     reported: Mapping[str, np.ndarray]
 
 
-def compute_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
+def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
                   backend: str = DEFAULT_BACKEND,
                   kernel_threads: int | None = None, buffers=None) -> ChunkOutput:
     """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
@@ -115,7 +117,7 @@ class ChunkSaved:
     key: ChunkKey
 
 
-def compute_and_save_chunk(scenario: Scenario, model: CompiledModel, key: ChunkKey,
+def compute_and_save_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
                            store: WorkStore, token: str, backend: str = DEFAULT_BACKEND,
                            kernel_threads: int | None = None, candidates: bool = False
                            ) -> ChunkOutput | ChunkSaved:
@@ -147,7 +149,7 @@ def _thread_buffers(backend: str):
     return _workspace.buffers
 
 
-def kernel_block(model: CompiledModel, scenario: Scenario, backend: str) -> int:
+def kernel_block(model: LoweredModel, scenario: Scenario, backend: str) -> int:
     """Members per block of ``backend``'s kernels for this model and method (1 for the
     numpy backend, which works on any number of members alike)."""
     if backend != "compiled":
@@ -221,7 +223,7 @@ Finished = ChunkOutput | ChunkSaved
 """A finished chunk: saved already, or still to be saved by the driver."""
 
 
-def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
+def _in_process(scenario: Scenario, models: Sequence[LoweredModel],
                 keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
     """Compute the chunks one after another in this process, without dask.distributed;
     each output is valid until the next is asked for (they share buffers)."""
@@ -234,7 +236,7 @@ def _in_process(scenario: Scenario, models: Sequence[CompiledModel],
         yield output
 
 
-def _on_cluster(client: Client, scenario: Scenario, models: Sequence[CompiledModel],
+def _on_cluster(client: Client, scenario: Scenario, models: Sequence[LoweredModel],
                 keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None,
                 candidates: bool = False) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
@@ -425,7 +427,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     """
     progress = progress if progress is not None else Progress()
     path = Path(scenario.output.path)
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     run_fingerprint = fingerprint(scenario, backend)
     if resume and not force and WorkStore.is_complete(path, run_fingerprint):
         progress.note(f"{path} is already complete; nothing to do")

@@ -17,8 +17,8 @@ from datetime import date
 from fractions import Fraction
 from typing import Any
 
-import ensemble
-from ensemble.output.store import ChunkKey
+from ensemble.about import PROGRAM, VERSION
+from ensemble.records import ChunkKey
 from ensemble.scenario.schema import Compute, Scenario, Source
 
 
@@ -95,7 +95,7 @@ def fingerprint(scenario: Scenario, backend: str = "numpy") -> str:
         source=Source(path="", text=""),
     )
     text = json.dumps(
-        {"program": "ensemble", "version": ensemble.__version__, "backend": backend,
+        {"program": PROGRAM, "version": VERSION, "backend": backend,
          "scenario": canonical(relevant)},
         separators=(",", ":"), ensure_ascii=True,
     )

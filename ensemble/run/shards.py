@@ -30,8 +30,8 @@ from typing import Any
 import netCDF4
 import numpy as np
 
-from ensemble.integrate.check import ChunkResult
-from ensemble.model.compile import compile_model
+from ensemble.records import ChunkKey, ChunkResult
+from ensemble.model.lower import lower_model
 from ensemble.output.store import ResultLayout, WorkStore, partial_path
 from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
 from ensemble.run.plan import fingerprint, plan_chunks, shard_range
@@ -288,7 +288,7 @@ def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLi
     check_parts(infos)
     infos.sort(key=lambda info: info.shard.index)
     scenario, backend = _scenario_of(infos[0], output)
-    models = [compile_model(scenario, variant) for variant in scenario.variants]
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
     layout = ResultLayout.from_scenario(scenario, models, infos[0].fingerprint,
                                         f"{infos[0].history}\n{history}")
     store = WorkStore.open(output, layout, resume=False, force=force)

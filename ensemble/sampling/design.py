@@ -16,7 +16,7 @@ from graphlib import TopologicalSorter
 
 import numpy as np
 
-from ensemble.model.compile import CompiledModel, time_varying_parameters
+from ensemble.model.lower import LoweredModel, time_varying_parameters
 from ensemble.sampling.distributions import inverse_cdf, needs_draw
 from ensemble.sampling.evaluate import evaluate, ordered_sum
 from ensemble.sampling.uniform import ColumnKey, uniform_draws
@@ -38,8 +38,8 @@ class Design:
     Attributes
     ----------
     members : (M,) int64 member indices (0-based, within the variant).
-    parameters : (n_parameter_slots, M) float64, rows as ``CompiledModel.parameter_slots``.
-    schedule_values : per ``CompiledModel.schedule_slots`` entry, (n_knots, M) float64.
+    parameters : (n_parameter_slots, M) float64, rows as ``LoweredModel.parameter_slots``.
+    schedule_values : per ``LoweredModel.schedule_slots`` entry, (n_knots, M) float64.
     initial : (n_states, M) float64 initial state (NaN for invalid starts).
     invalid_start : (M,) bool, the drawn start is impossible (status bit 8).
     reported : parameter name -> (M,) or (n_groups, M) float64: every parameter that is
@@ -54,7 +54,7 @@ class Design:
     reported: Mapping[str, np.ndarray]
 
 
-def make_design(scenario: Scenario, variant: Variant, model: CompiledModel,
+def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
                 members: np.ndarray) -> Design:
     """Draw and derive the inputs of ``members`` of ``variant``.
 
@@ -65,7 +65,7 @@ def make_design(scenario: Scenario, variant: Variant, model: CompiledModel,
     ----------
     scenario : the validated scenario.
     variant : one of ``scenario.variants``.
-    model : ``compile_model(scenario, variant)``: names the parameter and schedule rows.
+    model : ``lower_model(scenario, variant)``: names the parameter and schedule rows.
     members : member indices in [0, scenario.members), e.g. ``np.arange(a, b)``.
     """
     members = np.asarray(members, dtype=np.int64).reshape(-1)
@@ -189,7 +189,7 @@ def _element(value: np.ndarray, element: int, n_members: int) -> np.ndarray:
     return np.broadcast_to(row, (n_members,))
 
 
-def _parameter_rows(model: CompiledModel, scenario: Scenario,
+def _parameter_rows(model: LoweredModel, scenario: Scenario,
                     values: Mapping[str, np.ndarray], n_members: int) -> np.ndarray:
     """The (n_parameter_slots, M) array named by ``model.parameter_slots``."""
     groups = scenario.model.groups or ()

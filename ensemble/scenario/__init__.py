@@ -1,6 +1,6 @@
 """Scenario files: the expression language, the validated dataclasses, and the loader."""
 
-from ensemble.scenario.errors import ScenarioError, ScenarioErrors
+from ensemble.errors import ScenarioError, ScenarioErrors
 from ensemble.scenario.load import load_scenario, scenario_warnings
 
 __all__ = ["ScenarioError", "ScenarioErrors", "load_scenario", "scenario_warnings"]

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
 
-from ensemble.scenario.load import IMPLICIT_METHODS, SOLVER_METHODS, time_text
+from ensemble.methods import METHODS
+from ensemble.scenario.load import time_text
 from ensemble.scenario.schema import (
     Derived, Distribution, Expression, Fixed, InitialValue, Matrix, Parameter, Rest, Scenario,
     Schedule, Variant,
@@ -191,7 +192,7 @@ def _solver(scenario: Scenario) -> str:
     solver = scenario.solver
     check = solver.check
     rows = [
-        ("method", f"{solver.method} (order {SOLVER_METHODS[solver.method]})"),
+        ("method", f"{solver.method} (order {METHODS[solver.method].order})"),
         ("step", f"{time_text(solver.step)} days"),
         ("report_every", f"{time_text(solver.report_every)} days "
                          f"({solver.steps_per_report} steps; {scenario.n_reports} reported "
@@ -200,7 +201,7 @@ def _solver(scenario: Scenario) -> str:
                    f"{number_text(check.rtol)}, atol {number_text(check.atol)} persons")
          if check.enabled else "off"),
     ]
-    used = "" if solver.method in IMPLICIT_METHODS else " (used by implicit methods only)"
+    used = "" if METHODS[solver.method].implicit else " (used by implicit methods only)"
     rows.append(("newton", f"tol {number_text(solver.newton.tol)} persons, max_iter "
                            f"{solver.newton.max_iter}{used}"))
     return _section("solver", rows)

@@ -6,10 +6,10 @@ file is read with :mod:`tomllib` using ``parse_float=decimal.Decimal``, so that 
 :class:`fractions.Fraction` values (0.7 is 7/10, seven steps of 0.1) while every other
 number becomes a float.
 
-Errors are :class:`~ensemble.scenario.errors.ScenarioError` naming the file, the key path
+Errors are :class:`~ensemble.errors.ScenarioError` naming the file, the key path
 (``model.flows[2].rate``) and the value.  Independent sections and entries are checked
 one by one, and all their problems are reported together as
-:class:`~ensemble.scenario.errors.ScenarioErrors`; a part that depends on a broken part
+:class:`~ensemble.errors.ScenarioErrors`; a part that depends on a broken part
 (flows on the compartments, say) is not checked until that part is fixed.
 """
 
@@ -29,22 +29,15 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, TypeVar
 
+from ensemble.methods import METHODS
 from ensemble.scenario import expressions
-from ensemble.scenario.errors import ScenarioError, ScenarioErrors, did_you_mean
+from ensemble.errors import ScenarioError, ScenarioErrors, did_you_mean
 from ensemble.scenario.expressions import ExpressionError, Node
 from ensemble.scenario.schema import (
     Compute, Derived, Distribution, Expression, Fixed, Flow, InitialValue, Matrix, Model,
     Newton, Output, Parameter, ParameterForm, Rest, Scenario, Schedule, Shape, Solver,
     Source, StepCheck, Variant,
 )
-
-SOLVER_METHODS: dict[str, int] = {
-    "forward-euler": 1, "heun": 2, "rk4": 4, "backward-euler": 1, "trapezoid": 2,
-}
-"""The fixed-step methods and their orders of accuracy."""
-
-IMPLICIT_METHODS = frozenset({"backward-euler", "trapezoid"})
-"""Methods that solve for the new state with Newton's method."""
 
 SAMPLING_METHODS = ("random", "latin-hypercube", "sobol")
 
@@ -548,7 +541,7 @@ class _Loader:
     def solver(self, table: dict[str, Any]) -> dict[str, Any]:
         path = "solver"
         method = self.get(table, path, "method", lambda v, p: self.known(
-            v, SOLVER_METHODS, p, "solver method"), "rk4")
+            v, METHODS, p, "solver method"), "rk4")
         step = self.get(table, path, "step", self.positive_time, Fraction(1, 4))
         report_every = self.get(table, path, "report_every", self.positive_time, Fraction(1))
         if (report_every / step).denominator != 1:

@@ -1,4 +1,4 @@
-"""Scenario model -> :class:`CompiledModel`: scalar rate trees, their state derivatives,
+"""Scenario model -> :class:`LoweredModel`: scalar rate trees, their state derivatives,
 and the stoichiometry that turns flow rates into the right-hand side.
 
 The right-hand side of every model is ``dy/dt = stoichiometry @ rates(t, y)``; its
@@ -40,7 +40,7 @@ class ScheduleSlot:
 
 
 @dataclass(frozen=True)
-class CompiledModel:
+class LoweredModel:
     """One variant's model in the scalar form every integrator backend consumes.
 
     Attributes
@@ -83,7 +83,7 @@ class CompiledModel:
         return len(self.rates)
 
 
-def compile_model(scenario: Scenario, variant: Variant) -> CompiledModel:
+def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
     """Compile ``scenario``'s model with ``variant``'s parameters and matrices.
 
     Every flow's rate becomes one scalar tree per group element: compartments and ``N``
@@ -108,7 +108,7 @@ def compile_model(scenario: Scenario, variant: Variant) -> CompiledModel:
                 stoichiometry[index[flow.source] * n_groups + g, f * n_groups + g] -= 1.0
             if flow.target is not None:
                 stoichiometry[index[flow.target] * n_groups + g, f * n_groups + g] += 1.0
-    return CompiledModel(
+    return LoweredModel(
         compartments=tuple(model.compartments),
         groups=tuple(model.groups) if model.groups else None,
         n_groups=n_groups,

@@ -1,6 +1,6 @@
 """The numpy reference evaluator of a compiled model over a chunk of members.
 
-:class:`RateFunctions` turns the scalar IR of a :class:`~ensemble.model.compile.CompiledModel`
+:class:`RateFunctions` turns the scalar IR of a :class:`~ensemble.model.lower.LoweredModel`
 into two Python functions over rows of member arrays (states x members): the flow rates
 and their non-zero partial derivatives with respect to the state.  The functions are
 generated as source text from the validated IR, using only our own identifiers and
@@ -23,7 +23,7 @@ from collections.abc import Sequence
 import numpy as np
 import scipy.sparse
 
-from ensemble.model.compile import CompiledModel
+from ensemble.model.lower import LoweredModel
 from ensemble.model.ir import (NUMPY_FUNCTIONS, Apply, Const, ParamRef, ScalarNode, ScheduleRef,
                                StateRef, TimeRef, select_le, walk)
 
@@ -51,7 +51,7 @@ class RateFunctions:
     source : the generated Python source, for reading and debugging.
     """
 
-    def __init__(self, model: CompiledModel):
+    def __init__(self, model: LoweredModel):
         self.model = model
         pattern = [(k, j, tree) for k, partials in enumerate(model.rate_derivatives)
                    for j, tree in partials]

@@ -1,0 +1,101 @@
+"""The one hierarchy of errors the project reports to its users.
+
+Every error the command line turns into a message is an :class:`EnsembleError`, whose
+``exit_status`` is what the command exits with:
+
+- :class:`InputError` (status 2, nothing computed or written): something the user gave is
+  wrong, and the message names the file (or option), the key path and the value.
+  :class:`ScenarioError` for scenario files, :class:`ProfileError` for cluster profiles,
+  :class:`UsageError` for command-line options and result or part files that cannot be
+  used as asked.
+- :class:`RunError` (status 1, finished work kept): a run failed while it was computing
+  or writing.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Iterable
+
+
+class EnsembleError(Exception):
+    """An error reported to the user as one message; ``exit_status`` is the command's."""
+
+    exit_status = 1
+
+
+class InputError(EnsembleError):
+    """Something the user gave is invalid: exit status 2, nothing written.
+
+    Parameters
+    ----------
+    file : the file as given (or the command-line option, e.g. ``--cluster``).
+    key : key path, e.g. ``model.flows[2].rate`` or ``parameters.R0.sd``; ``""`` for the
+        file as a whole.
+    value : the offending value as written (``repr``-able), or None.
+    message : what is wrong, in the modeller's terms.
+    hint : an optional suggestion, such as ``did you mean 'latent_days'?``.
+    """
+
+    exit_status = 2
+
+    def __init__(self, file: str, key: str, value: object, message: str,
+                 hint: str | None = None):
+        self.file = file
+        self.key = key
+        self.value = value
+        self.message = message
+        self.hint = hint
+        super().__init__(str(self))
+
+    def __str__(self) -> str:
+        where = f"{self.file}: {self.key}" if self.key else self.file
+        text = f"{where}: {self.message}"
+        if self.value is not None:
+            text += f" (value: {self.value!r})"
+        if self.hint:
+            text += f"; {self.hint}"
+        return text
+
+
+class ScenarioError(InputError):
+    """An invalid scenario file."""
+
+
+class ProfileError(InputError):
+    """An invalid or missing cluster profile."""
+
+
+class _Collected(InputError):
+    """Several independent problems found in one file, reported together (one line
+    each); the first gives the attributes."""
+
+    def __init__(self, errors: list[InputError]):
+        self.errors = list(errors)
+        first = self.errors[0]
+        super().__init__(first.file, first.key, first.value, first.message, first.hint)
+
+    def __str__(self) -> str:
+        return "\n".join(InputError.__str__(e) for e in self.errors)
+
+
+class ScenarioErrors(_Collected, ScenarioError):
+    """Several problems in one scenario file."""
+
+
+class ProfileErrors(_Collected, ProfileError):
+    """Several problems in one cluster profile."""
+
+
+class UsageError(InputError):
+    """Command-line options, or files given to a command, that cannot be used as asked."""
+
+
+class RunError(EnsembleError):
+    """A run failed while computing or writing; finished work is kept (exit status 1)."""
+
+
+def did_you_mean(word: str, choices: Iterable[str]) -> str | None:
+    """A "did you mean" hint naming the closest of ``choices``, or None if none is close."""
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f"did you mean {close[0]!r}?" if close else None
