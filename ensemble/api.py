@@ -193,7 +193,7 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
 
     import numpy as np
 
-    from ensemble.integrate.check import integrate_chunk
+    from ensemble.integrate.chunk import integrate_chunk
     from ensemble.model.lower import lower_model
     from ensemble.output.dataset import dataset_from_results, decode
     from ensemble.output.layout import ResultLayout

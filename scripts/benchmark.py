@@ -4,7 +4,7 @@ In one process, for an SEIR model (4 states) and a 16-group age-structured SEIR 
 states, a 16 x 16 contact matrix), 365 days at step 0.25 with RK4, it measures
 
 (a) a Python loop of scipy's ``solve_ivp`` (RK45, rtol 1e-8) over a sample of members;
-(b) the numpy backend (:func:`ensemble.integrate.stepper.integrate_fixed`);
+(b) the numpy backend (:func:`ensemble.integrate.reference.integrate_fixed`);
 (c) the compiled backend (:func:`ensemble.integrate.compiled.integrate_fixed_compiled`,
     compile time excluded and printed apart);
 (d) a hand-written member-blocked numba kernel doing the same RK4 integrations and
@@ -47,7 +47,7 @@ from scipy.integrate import solve_ivp
 from ensemble.examples import seir_text
 from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
 from ensemble.methods import METHODS
-from ensemble.integrate.stepper import integrate_fixed
+from ensemble.integrate.reference import integrate_fixed
 from ensemble.model.lower import lower_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario

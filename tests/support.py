@@ -18,12 +18,12 @@ import numpy as np
 import xarray as xr
 
 from ensemble.examples import seir_text
-from ensemble.integrate.check import (INVALID_START, NON_FINITE, STEP_CHECK_FAILED,
-                                      ChunkResult, integrate_chunk)
+from ensemble.integrate.chunk import integrate_chunk
 from ensemble.methods import METHODS
-from ensemble.integrate.stepper import Trajectory, integrate_fixed
+from ensemble.integrate.reference import Trajectory, integrate_fixed
 from ensemble.model.lower import LoweredModel, lower_model
 from ensemble.output.layout import ResultLayout
+from ensemble.records import INVALID_START, NON_FINITE, STEP_CHECK_FAILED, ChunkResult
 from ensemble.sampling import Design, make_design
 from ensemble.scenario.load import load_scenario
 from ensemble.scenario.schema import Scenario

@@ -1,6 +1,6 @@
 """The compiled backend against the numpy reference, scipy, and itself.
 
-The numpy stepper (:mod:`ensemble.integrate.stepper`) is the readable statement of the
+The numpy stepper (:mod:`ensemble.integrate.reference`) is the readable statement of the
 arithmetic; the generated kernels must give the same numbers to 1e-12 relative (the
 contract of issue 6) for every method, with groups, a contact matrix, step and linear
 schedules and a time-varying derived parameter, including the status bits.
@@ -18,14 +18,15 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from ensemble.integrate.check import INVALID_START, NON_FINITE, step_error
+from ensemble.integrate.refine import step_error
 from ensemble.integrate.compiled import (integrate_fixed_compiled, kernel_path,
                                          kernel_threads, load_kernel, set_kernel_threads,
                                          step_error_compiled)
 from ensemble.integrate.codegen import KernelSource
 from ensemble.methods import METHODS
-from ensemble.integrate.stepper import integrate_fixed
+from ensemble.integrate.reference import integrate_fixed
 from ensemble.model.lower import lower_model
+from ensemble.records import INVALID_START, NON_FINITE
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
 
@@ -202,7 +203,7 @@ def test_compiled_matches_numpy_reference(two_group, method):
 @pytest.mark.parametrize("method", ["forward-euler", "rk4", "backward-euler"])
 def test_step_check_compared_in_the_kernel_has_the_bits_of_step_error(two_group, method):
     """The refined run compared with the run at h as it goes gives the bits of
-    :func:`ensemble.integrate.check.step_error` on the two stored runs (Richardson's
+    :func:`ensemble.integrate.refine.step_error` on the two stored runs (Richardson's
     estimate), NaN for the invalid and the blown-up member, and the refined run's status
     bits; members need not fill the last block."""
     scenario, model, design = two_group

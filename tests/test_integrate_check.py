@@ -9,9 +9,10 @@ import types
 import numpy as np
 import pytest
 
-from ensemble.integrate.check import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, integrate_chunk,
-                                      observed_order, step_error)
-from ensemble.integrate.stepper import integrate_fixed
+from ensemble.integrate.chunk import COMPILED_MODULE, integrate_chunk
+from ensemble.integrate.refine import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, observed_order,
+                                       step_error)
+from ensemble.integrate.reference import integrate_fixed
 from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,
                                        STEP_CHECK_FAILED)
@@ -211,7 +212,7 @@ def test_blockwise_reductions_match_whole_array_formulas(report_major):
 
 
 def test_backend_dispatch(tmp_path, monkeypatch):
-    """"compiled" calls ensemble.integrate.compiled.integrate_fixed_compiled with
+    """"compiled" calls the compiled backend's integrate_fixed_compiled with
     integrate_fixed's arguments; a missing compiled module or an unknown backend is a
     clear error."""
     case = load_case(tmp_path, SEASONAL)
@@ -220,10 +221,10 @@ def test_backend_dispatch(tmp_path, monkeypatch):
         return integrate_chunk(case.model, case.design, case.scenario.solver,
                                case.scenario.n_reports, backend=backend)
 
-    monkeypatch.setitem(sys.modules, "ensemble.integrate.compiled",
+    monkeypatch.setitem(sys.modules, COMPILED_MODULE,
                         types.SimpleNamespace(integrate_fixed_compiled=integrate_fixed))
     _results_equal(chunk("compiled"), chunk("numpy"))
-    monkeypatch.setitem(sys.modules, "ensemble.integrate.compiled", None)
+    monkeypatch.setitem(sys.modules, COMPILED_MODULE, None)
     with pytest.raises(RuntimeError, match="compiled integration backend is not available"):
         chunk("compiled")
     with pytest.raises(ValueError, match="backend"):

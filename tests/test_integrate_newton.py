@@ -18,7 +18,7 @@ from ensemble.integrate.codegen import (elimination_order, factor_block, factor_
 from ensemble.integrate.compiled import integrate_fixed_compiled
 from ensemble.methods import METHODS
 from ensemble.records import NEWTON_NOT_CONVERGED
-from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS, integrate_fixed
+from ensemble.integrate.reference import SHARED_MATRIX_ITERATIONS, integrate_fixed
 from support import load_case, one_compartment
 
 

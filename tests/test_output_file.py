@@ -28,7 +28,7 @@ import ensemble
 from ensemble import api
 from ensemble.cli import app
 from ensemble.examples import sir_text
-from ensemble.integrate.check import integrate_chunk
+from ensemble.integrate.chunk import integrate_chunk
 from ensemble.model.lower import lower_model
 from ensemble.output.store import NotAResult, WorkStore
 from ensemble.sampling import make_design

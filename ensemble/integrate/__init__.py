@@ -1,9 +1,11 @@
-"""Fixed-step integration of chunks of members, with the per-member step check."""
+"""Fixed-step integration of chunks of members, with the per-member step check.
 
-from ensemble.integrate.check import integrate_chunk
-from ensemble.records import ChunkResult
-from ensemble.methods import METHODS, Method
-from ensemble.integrate.stepper import Trajectory, integrate_fixed
+``chunk`` is the entry point (:func:`integrate_chunk`); ``reference`` the readable numpy
+stepper whose arithmetic defines the results; ``refine`` the step check; ``compiled`` the
+compiled backend (generated numba kernels), imported only when asked for.
+"""
 
-__all__ = ["METHODS", "ChunkResult", "Method", "Trajectory", "integrate_chunk",
-           "integrate_fixed"]
+from ensemble.integrate.chunk import integrate_chunk
+from ensemble.integrate.reference import Trajectory, integrate_fixed
+
+__all__ = ["Trajectory", "integrate_chunk", "integrate_fixed"]

@@ -1,6 +1,6 @@
 """Python source of one numba kernel that integrates a chunk of members with one method.
 
-The kernel is written for the machine, not for the reader: :mod:`ensemble.integrate.stepper`
+The kernel is written for the machine, not for the reader: :mod:`ensemble.integrate.reference`
 is the readable reference it must agree with.  Its shape is the usual way of vectorising an
 ensemble of small independent ODE systems on a CPU, members as the SIMD lanes (common
 practice, no source):
@@ -22,7 +22,7 @@ floats appear in the text; the trees were validated before compilation.
 The implicit theta methods solve ``y1 = y0 + h S [(1 - theta) R(t, y0) + theta R(t + h, y1)]``
 by Newton iterations per member (Hairer & Wanner 1996, *Solving Ordinary Differential
 Equations II*, sec. IV.8, cited from memory), from the explicit Euler predictor, the first
-:data:`~ensemble.integrate.stepper.SHARED_MATRIX_ITERATIONS` sharing the matrix ``I - h theta
+:data:`~ensemble.integrate.reference.SHARED_MATRIX_ITERATIONS` sharing the matrix ``I - h theta
 S dR/dy`` of the predictor (simplified Newton).  A matrix is factored by Gaussian elimination
 with partial pivoting (Golub & Van Loan 2013, *Matrix Computations*, 4th ed., sec. 3.4;
 section cited from memory), touching only the static pattern of its non-zeros and their
@@ -37,7 +37,7 @@ from collections.abc import Iterable
 
 from ensemble.methods import Method
 from ensemble.records import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
-from ensemble.integrate.stepper import SHARED_MATRIX_ITERATIONS
+from ensemble.integrate.reference import SHARED_MATRIX_ITERATIONS
 from ensemble.model.lower import LoweredModel
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
@@ -1019,7 +1019,7 @@ class KernelSource:
     def _compare(indent: str, report: str) -> list[str]:
         """Fold each member's scaled difference from ``reference`` at report ``report``
         into ``error_out`` (members past the reference's are padding): the operations of
-        :func:`ensemble.integrate.check.step_error` in its order, so the same bits, and
+        :func:`ensemble.integrate.refine.step_error` in its order, so the same bits, and
         NaN once any value is NaN, as its maximum gives.  States outside, members inside:
         short code the compiler vectorises, whatever the number of states."""
         return [f"{indent}for s in range(N_STATES):",

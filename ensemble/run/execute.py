@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 from distributed import Client, Future, as_completed
 
-from ensemble.integrate.check import integrate_chunk
+from ensemble.integrate.chunk import integrate_chunk
 from ensemble.records import ChunkResult
 from ensemble.integrate.codegen import block_size
 from ensemble.methods import METHODS
@@ -91,11 +91,11 @@ def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
 
     A pure function of its arguments: the same key gives the same bits in any process
     (:func:`~ensemble.sampling.make_design` depends on the member index alone, and
-    :func:`~ensemble.integrate.check.integrate_chunk` treats members independently).
+    :func:`~ensemble.integrate.chunk.integrate_chunk` treats members independently).
     ``kernel_threads`` sets the threads of the compiled backend's kernels in the calling
     thread (1 in a dask worker, whose siblings already use the other cores); None leaves
     numba's default.  With ``buffers`` (see
-    :func:`~ensemble.integrate.check.integrate_chunk`) the trajectories are views of
+    :func:`~ensemble.integrate.chunk.integrate_chunk`) the trajectories are views of
     them, to be used before the next chunk.
     """
     if kernel_threads is not None and backend == "compiled":
