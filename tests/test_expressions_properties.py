@@ -14,7 +14,6 @@ import copy
 import datetime
 import math
 import re
-import time
 import tomllib
 import warnings
 from decimal import Decimal
@@ -37,7 +36,7 @@ FRAGMENTS = ["__", ".", "import", "__import__", "(", ")", "'os'", "system", "lam
              "\\", "\n", ";", "=", ":=", "yield", "await", "f'{x}'", "b''", "...", "0x1F",
              "1j", "True", "None", " "]
 
-LIMITS = settings(max_examples=400, deadline=2000, derandomize=True,
+LIMITS = settings(max_examples=400, deadline=None, derandomize=True,
                   suppress_health_check=[HealthCheck.too_slow])
 
 
@@ -102,18 +101,15 @@ def _only_language_nodes(node) -> bool:
 
 
 def _parse_within_bounds(text: str):
-    """Parse ``text``; the only outcomes are a tree of language nodes or ExpressionError,
-    without hanging.  The 10-second bound only catches a hang (parsing takes
-    milliseconds); it is kept generous so that a loaded machine cannot fail it (common
-    practice, no source)."""
-    began = time.perf_counter()
+    """Parse ``text``; the only outcomes are a tree of language nodes or ExpressionError.
+    A hang would be stopped by the suite's per-test timeout (``timeout`` in
+    pyproject.toml), not by a timed assertion here."""
     with _no_code_runs() as attempts:
         try:
             tree = parse(text)
         except ExpressionError:
             tree = None
     assert attempts == []
-    assert time.perf_counter() - began < 10.0
     if tree is not None:
         assert _only_language_nodes(tree)
     return tree
@@ -206,7 +202,7 @@ def _evaluate(node) -> float:
     return left ** right
 
 
-@settings(max_examples=300, deadline=2000, derandomize=True)
+@settings(max_examples=300, deadline=None, derandomize=True)
 @given(text=GRAMMAR)
 def test_tree_evaluates_like_python(text: str) -> None:
     """Operator precedence and associativity (``-2 ** 2 == -4``, ``a - b - c``,
@@ -296,7 +292,7 @@ REPLACEMENTS = st.one_of(
 )
 
 
-@settings(max_examples=300, deadline=4000, derandomize=True,
+@settings(max_examples=300, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.too_slow])
 @given(data=st.data())
 def test_mangled_scenarios_give_scenario_or_scenario_error(data) -> None:

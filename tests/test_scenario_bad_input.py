@@ -74,11 +74,16 @@ def test_check_in_a_fresh_process(path: Path, tmp_path: Path) -> None:
 
 
 def test_forbidden_expression_does_not_run(tmp_path: Path) -> None:
-    """The import attempt in the corpus would create a file if it were ever executed."""
+    """The import attempt in the corpus would create a file if it were ever executed; it
+    is refused as bad input (exit status 2) with an error naming the rate's key path."""
     path = CORPUS / "expr-import.toml"
     assert "touch pwned" in path.read_text(encoding="utf-8")
-    subprocess.run([sys.executable, "-m", "ensemble", "check", str(path)], cwd=tmp_path,
-                   capture_output=True, timeout=60)
+    done = subprocess.run([sys.executable, "-m", "ensemble", "check", str(path)],
+                          cwd=tmp_path, capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert done.stderr.startswith(f"error: {path}"), done.stderr
+    assert _expected(path) in done.stderr and "__import__" in done.stderr
+    assert "Traceback" not in done.stderr + done.stdout
     assert not (tmp_path / "pwned").exists()
 
 
