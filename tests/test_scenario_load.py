@@ -185,7 +185,8 @@ decay = "exp(-t / 30)"
     assert isinstance(gamma.form, Distribution) and gamma.form.arguments == {"value": 0.2}
     assert (gamma.units, gamma.description) == ("1/day", "recovery")
     assert parameters["R0"].form.truncation == (1.0, None)
-    assert parameters["pick"].form.weights == (0.25, 0.25, 0.5)
+    assert parameters["pick"].form.arguments == {"values": (1.0, 2.0, 4.0),
+                                                 "weights": (1.0, 1.0, 2.0)}
     assert isinstance(parameters["decay"].form, Derived)
     assert parameters["decay"].form.expression.names == {"t"}
     assert list(parameters) == ["beta", "gamma", "R0", "pick", "decay"]

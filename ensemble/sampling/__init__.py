@@ -1,8 +1,9 @@
 """Parameter design: uniform draws, distributions, derived values, initial states.
 
+The distribution families themselves are :mod:`ensemble.distributions`.
+
 - :mod:`~ensemble.sampling.uniform`: one uniform column per uncertain parameter element
   (random, Latin hypercube, Sobol'), independent of chunking;
-- :mod:`~ensemble.sampling.distributions`: mean/sd conversions and inverse CDFs;
 - :mod:`~ensemble.sampling.evaluate`: numpy evaluation of vector-level expressions;
 - :mod:`~ensemble.sampling.design`: :class:`Design` and :func:`make_design`.
 """

@@ -16,10 +16,10 @@ from graphlib import TopologicalSorter
 
 import numpy as np
 
+from ensemble.distributions import inverse_cdf
 from ensemble.model.lower import LoweredModel, time_varying_parameters
-from ensemble.sampling.distributions import inverse_cdf, needs_draw
 from ensemble.sampling.evaluate import evaluate, ordered_sum
-from ensemble.sampling.uniform import ColumnKey, uniform_draws
+from ensemble.sampling.uniform import ColumnKey, needs_draw, uniform_draws
 from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, Parameter,
                                       Rest, Scenario, Schedule, Variant)
 
@@ -126,7 +126,8 @@ def _distribution_value(name: str, form: Distribution,
     the ``fixed`` family."""
     elements = range(n_groups if form.per_group else 1)
     if needs_draw(form):
-        drawn = [inverse_cdf(form, uniforms[(name, g)]) for g in elements]
+        drawn = [inverse_cdf(form.family, form.arguments, form.truncation, uniforms[(name, g)])
+                 for g in elements]
     else:
         drawn = [np.array([float(form.arguments["value"])]) for _ in elements]
     return np.stack(drawn) if form.per_group else drawn[0]

@@ -31,7 +31,6 @@ from collections.abc import Iterator, Mapping, Sequence
 
 import numpy as np
 
-from ensemble.sampling.distributions import needs_draw
 from ensemble.scenario.schema import Distribution, Scenario
 
 ColumnKey = tuple[str, int]
@@ -47,6 +46,11 @@ at most 32)."""
 
 _PERMUTATION_CACHE_SIZE = 32
 """Latin hypercube permutations kept per process (4 bytes per member each)."""
+
+
+def needs_draw(dist: Distribution) -> bool:
+    """Whether ``dist`` takes a uniform column (every family but ``fixed``)."""
+    return dist.family != "fixed"
 
 
 def uncertain_columns(scenario: Scenario) -> tuple[ColumnKey, ...]:

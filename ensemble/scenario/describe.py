@@ -147,10 +147,8 @@ def parameter_text(parameter: Parameter) -> str:
 
 
 def _distribution_text(form: Distribution) -> str:
-    if form.family == "choice":
-        arguments = f"values={_numbers_text(form.values)}, weights={_numbers_text(form.weights)}"
-    else:
-        arguments = ", ".join(f"{k}={number_text(v)}" for k, v in form.arguments.items())
+    arguments = ", ".join(f"{k}={_numbers_text(v) if isinstance(v, tuple) else number_text(v)}"
+                          for k, v in form.arguments.items())
     text = f"{form.family}({arguments})"
     low, high = form.truncation
     if low is not None or high is not None:

@@ -29,6 +29,7 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, TypeVar
 
+from ensemble.distributions import FAMILIES, Problem
 from ensemble.methods import METHODS
 from ensemble.scenario import expressions
 from ensemble.errors import ScenarioError, ScenarioErrors, did_you_mean
@@ -40,21 +41,6 @@ from ensemble.scenario.schema import (
 )
 
 SAMPLING_METHODS = ("random", "latin-hypercube", "sobol")
-
-DISTRIBUTIONS: dict[str, tuple[str, ...]] = {
-    "fixed": ("value",),
-    "uniform": ("low", "high"),
-    "normal": ("mean", "sd"),
-    "lognormal": ("mean", "sd"),
-    "gamma": ("mean", "sd"),
-    "beta": ("mean", "sd"),
-    "triangular": ("low", "mode", "high"),
-    "choice": ("values",),
-}
-"""Distribution families and their required arguments."""
-
-TRUNCATABLE = frozenset({"normal", "lognormal", "gamma"})
-"""Families that take optional ``low``/``high`` truncation."""
 
 DEFAULT_QUANTILES = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
 
@@ -715,89 +701,32 @@ class _Loader:
 
     def distribution(self, name: str, table: dict[str, Any], path: str,
                      scope: "_Scope") -> _Draft:
-        family = self.known(table["dist"], DISTRIBUTIONS, _key(path, "dist"),
-                            "distribution")
-        required = DISTRIBUTIONS[family]
-        optional = ("low", "high") if family in TRUNCATABLE else ()
-        if family == "choice":
-            optional = ("weights",)
-        self.table(table, path, ("dist", *required, *optional, "per_group", "units",
-                                 "description"))
+        family = FAMILIES[self.known(table["dist"], FAMILIES, _key(path, "dist"),
+                                     "distribution")]
+        bounds = ("low", "high") if family.truncatable else ()
+        self.table(table, path, ("dist", *family.required, *family.optional, *bounds,
+                                 "per_group", "units", "description"))
         per_group = self.get(table, path, "per_group", self.boolean, False)
         if per_group and scope.groups is None:
             raise self.error(_key(path, "per_group"), True, "per_group needs model.groups")
-        values: tuple[float, ...] = ()
-        weights: tuple[float, ...] = ()
-        arguments: dict[str, float] = {}
-        if family == "choice":
-            values, weights = self.choice(table, path)
-        else:
-            arguments = {k: self.get(table, path, k, self.number) for k in required}
-            self.check_arguments(family, arguments, path)
+        arguments = {key: self.get(table, path, key,
+                                   self.numbers if key in family.lists else self.number)
+                     for key in (*family.required, *family.optional)
+                     if key in family.required or key in table}
+        self.refuse(family.problem(arguments), path)
         truncation = (None, None)
-        if family in TRUNCATABLE:
+        if family.truncatable:
             truncation = (self.get(table, path, "low", self.number, None),
                           self.get(table, path, "high", self.number, None))
-            self.check_truncation(family, truncation, path)
-        form = Distribution(family, MappingProxyType(arguments), truncation, values, weights,
-                            per_group)
+            self.refuse(family.truncation_problem(*truncation), path)
+        form = Distribution(family.name, MappingProxyType(arguments), truncation, per_group)
         return _Draft(name, path, form, "vector" if per_group else "scalar",
                       **self.annotations(table, path))
 
-    def check_arguments(self, family: str, a: dict[str, float], path: str) -> None:
-        """The impossible arguments of each family (SPEC section 1, distributions)."""
-        if family == "uniform" and a["low"] >= a["high"]:
-            raise self.error(_key(path, "high"), a["high"],
-                             f"must be above low ({a['low']:g})")
-        if family == "triangular":
-            if a["low"] >= a["high"]:
-                raise self.error(_key(path, "high"), a["high"],
-                                 f"must be above low ({a['low']:g})")
-            if not a["low"] <= a["mode"] <= a["high"]:
-                raise self.error(_key(path, "mode"), a["mode"],
-                                 f"must lie within low..high ({a['low']:g}..{a['high']:g})")
-        if "sd" in a and a["sd"] <= 0:
-            raise self.error(_key(path, "sd"), a["sd"], "must be positive")
-        if family in ("lognormal", "gamma") and a["mean"] <= 0:
-            raise self.error(_key(path, "mean"), a["mean"],
-                             f"must be positive for a {family} distribution")
-        if family == "beta":
-            mean, sd = a["mean"], a["sd"]
-            if not 0 < mean < 1:
-                raise self.error(_key(path, "mean"), mean, "must lie strictly between 0 and 1 "
-                                                           "for a beta distribution")
-            if sd * sd >= mean * (1 - mean):
-                raise self.error(_key(path, "sd"), sd,
-                                 "no beta distribution has this mean and sd: sd must be below "
-                                 f"sqrt(mean * (1 - mean)) = {math.sqrt(mean * (1 - mean)):.6g}")
-
-    def check_truncation(self, family: str, bounds: tuple[float | None, float | None],
-                         path: str) -> None:
-        low, high = bounds
-        if low is not None and high is not None and low >= high:
-            raise self.error(_key(path, "high"), high, f"must be above low ({low:g})")
-        if family != "normal" and high is not None and high <= 0:
-            raise self.error(_key(path, "high"), high,
-                             f"a {family} distribution has no values at or below 0")
-
-    def choice(self, table: dict[str, Any], path: str
-               ) -> tuple[tuple[float, ...], tuple[float, ...]]:
-        values = self.get(table, path, "values", self.numbers)
-        if not values:
-            raise self.error(_key(path, "values"), [], "must list at least one value")
-        if "weights" not in table:
-            return values, tuple(1.0 / len(values) for _ in values)
-        weights = self.numbers(table["weights"], _key(path, "weights"))
-        if len(weights) != len(values):
-            raise self.error(_key(path, "weights"), table["weights"],
-                             f"must have one weight per value ({len(values)})")
-        for i, weight in enumerate(weights):
-            if weight < 0:
-                raise self.error(f"{path}.weights[{i}]", weight, "must not be negative")
-        total = math.fsum(weights)
-        if total <= 0:
-            raise self.error(_key(path, "weights"), table["weights"], "must not all be zero")
-        return values, tuple(w / total for w in weights)
+    def refuse(self, problem: Problem | None, path: str) -> None:
+        """Raise ``problem`` of the table at ``path``, if there is one."""
+        if problem is not None:
+            raise self.error(_key(path, problem.key), problem.value, problem.message)
 
     def schedule(self, name: str, table: dict[str, Any], path: str, scope: "_Scope") -> _Draft:
         self.table(table, path, ("schedule", "between", "units", "description"))

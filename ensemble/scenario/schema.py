@@ -14,6 +14,7 @@ from datetime import date
 from fractions import Fraction
 from typing import Literal, Union
 
+from ensemble.distributions import ArgumentValue
 from ensemble.scenario.expressions import Node
 
 Shape = Literal["scalar", "vector", "matrix"]
@@ -107,18 +108,15 @@ class Fixed:
 class Distribution:
     """A value drawn once per member (once per member and group with ``per_group``).
 
-    ``family`` is one of ``fixed uniform normal lognormal gamma beta triangular choice``.
-    ``arguments`` holds the family's keys as written (``low``/``high`` for uniform,
-    ``mean``/``sd``, ``low``/``mode``/``high``, ``value``); ``truncation`` the optional
-    (low, high) of normal, lognormal and gamma (None where open).  For ``choice``,
-    ``values`` and normalised ``weights``.
+    ``family`` names an entry of :data:`ensemble.distributions.FAMILIES`; ``arguments``
+    holds the family's keys as written (numbers, or lists of numbers such as a
+    ``choice``'s ``values`` and ``weights``); ``truncation`` the optional (low, high) of
+    a family that accepts truncation (None where open).
     """
 
     family: str
-    arguments: Mapping[str, float]
+    arguments: Mapping[str, ArgumentValue]
     truncation: tuple[float | None, float | None] = (None, None)
-    values: tuple[float, ...] = ()
-    weights: tuple[float, ...] = ()
     per_group: bool = False
 
 
