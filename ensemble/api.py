@@ -77,9 +77,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
 
     Raises
     ------
-    ensemble.output.ResultExists, ensemble.output.FingerprintMismatch : nothing was
+    ensemble.errors.ResultExists, ensemble.errors.FingerprintMismatch : nothing was
         computed (the command line exits with 2).
-    ensemble.run.RunFailed, ensemble.output.StoreWriteError, OSError : the run failed;
+    ensemble.errors.RunFailed, ensemble.errors.StoreWriteError : the run failed;
         finished chunks are kept for ``resume`` (exit 1).
     """
     from ensemble.run.local import LocalStart
@@ -157,7 +157,7 @@ def open_result(path: str | os.PathLike[str]) -> xr.Dataset:
 
     Raises
     ------
-    ensemble.output.NotAResult : ``path`` is missing, not netCDF, work in progress or a
+    ensemble.errors.NotAResult : ``path`` is missing, not netCDF, work in progress or a
         part file.
     """
     import xarray as xr
@@ -234,7 +234,7 @@ def summarize(path: str | os.PathLike[str]) -> str:
 
     Raises
     ------
-    ensemble.output.NotAResult : ``path`` is not a complete result file.
+    ensemble.errors.NotAResult : ``path`` is not a complete result file.
     """
     from ensemble.output.report import summary_text
 
@@ -280,9 +280,9 @@ def merge(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLike[str
 
     Raises
     ------
-    ensemble.run.shards.PartError : not part files, parts of different runs (different
+    ensemble.errors.PartError : not part files, parts of different runs (different
         fingerprints), a shard given twice, or missing shards (named); nothing is written.
-    ensemble.output.ResultExists : ``output`` exists and ``force`` is false.
+    ensemble.errors.ResultExists : ``output`` exists and ``force`` is false.
     """
     from ensemble.run.shards import merge_parts
 

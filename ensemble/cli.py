@@ -1,7 +1,8 @@
 """The ``ensemble`` command line: a thin layer over :mod:`ensemble.api`.
 
 Exit status: 0 success, 1 failure during a run, 2 invalid scenario or usage, 130
-interrupted.
+interrupted; every error is an :class:`ensemble.errors.EnsembleError` whose
+``exit_status`` the command exits with (:func:`_reported`, the one place that maps them).
 """
 
 from __future__ import annotations
@@ -97,42 +98,31 @@ def run(
 
     from ensemble.about import CAUTION
     from ensemble import api
-    from ensemble.output.store import (FingerprintMismatch, OutputError, ResultExists,
-                                       partial_path)
-    from ensemble.run.execute import RunFailed
+    from ensemble.errors import UsageError
+    from ensemble.output.store import partial_path
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
     signal.signal(signal.SIGTERM, _interrupt)
     signal.signal(signal.SIGINT, _interrupt)
     began = time.monotonic()
     history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
-    with _fail_on_invalid():
+    with _reported():
         loaded = api.load_scenario(scenario, members=members, seed=seed)
         profile = api.cluster_profile(cluster if cluster is not None
                                       else loaded.compute.cluster)
-    if profile is not None and address is not None:
-        _stop("error: --cluster and --address both name where the workers are; give one", 2)
+        if profile is not None and address is not None:
+            raise UsageError("--cluster", "", None, "--cluster and --address both name "
+                             "where the workers are", "give one")
     if shard is not None and output is None:
         output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
         typer.echo(f"warning: {warning}", err=True)
-    work = partial_path(output or loaded.output.path)
-    try:
+    with _reported(work=partial_path(output or loaded.output.path)):
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
                        address=address, resume=resume, force=force,
                        backend=backend.value if backend else None, history=history,
                        cluster=profile or "local", shard=shard, processes=processes,
                        dashboard=dashboard)
-    except ResultExists as error:
-        _stop(f"error: {error}; use --force to replace it", 2)
-    except FingerprintMismatch as error:
-        _stop(f"error: {error}", 2)
-    except KeyboardInterrupt:
-        _stop(f"interrupted; finished chunks are kept in {work}; continue with --resume", 130)
-    except OutputError as error:  # the store's message says what is kept
-        _stop(f"error: {error}", 1)
-    except (RunFailed, OSError) as error:
-        _stop(f"error: {error} (finished chunks are kept in {work}; continue with --resume)", 1)
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
     typer.echo(f"{loaded.members} members x {len(loaded.variants)} variants "
@@ -142,22 +132,31 @@ def run(
     typer.echo(CAUTION)
 
 
-def _stop(message: str, status: int) -> None:
-    """Print ``message`` as one line on standard error and exit with ``status``."""
-    typer.echo(message, err=True)
-    raise typer.Exit(status)
+INTERRUPTED = 130
+"""Exit status of an interrupted command (128 + SIGINT, as shells report it)."""
 
 
 @contextmanager
-def _fail_on_invalid() -> Iterator[None]:
-    """Report invalid input (a scenario, a profile, an option) as ``error: ...`` lines on standard error; exit 2."""
-    from ensemble.errors import InputError
+def _reported(work: Path | None = None) -> Iterator[None]:
+    """Turn the errors of the body into ``error: ...`` lines on standard error and the
+    error's exit status (:mod:`ensemble.errors`: 2 for invalid input, nothing written; 1
+    for a failed run).  An interrupt exits 130, naming the work in progress ``work`` kept
+    for ``--resume``; an operating-system error the run did not expect exits 1."""
+    from ensemble.errors import EnsembleError
 
     try:
         yield
-    except InputError as error:
+    except EnsembleError as error:
         typer.echo("\n".join(f"error: {line}" for line in str(error).splitlines()), err=True)
-        raise typer.Exit(2) from None
+        raise typer.Exit(error.exit_status) from None
+    except KeyboardInterrupt:
+        kept = f"; finished chunks are kept in {work}; continue with --resume" if work else ""
+        typer.echo(f"interrupted{kept}", err=True)
+        raise typer.Exit(INTERRUPTED) from None
+    except OSError as error:
+        kept = f" (finished chunks are kept in {work}; continue with --resume)" if work else ""
+        typer.echo(f"error: {error}{kept}", err=True)
+        raise typer.Exit(1) from None
 
 
 @app.command()
@@ -166,7 +165,7 @@ def check(scenario: Path = typer.Argument(..., help="Scenario file (TOML).")) ->
     from ensemble import api
     from ensemble.scenario.describe import describe
 
-    with _fail_on_invalid():
+    with _reported():
         loaded = api.load_scenario(scenario)
     typer.echo(describe(loaded, api.scenario_warnings(loaded)), nl=False)
 
@@ -177,12 +176,9 @@ def summary(result: Path = typer.Argument(..., help="Result file written by ense
     """Print, per variant, quantiles over members of each compartment's peak size and
     time and of each flow's total and peak, and the members behind each status bit."""
     from ensemble import api
-    from ensemble.output.store import NotAResult
 
-    try:
+    with _reported():
         text = api.summarize(result)
-    except NotAResult as error:
-        _stop(f"error: {error}", 2)
     typer.echo(text, nl=False)
 
 
@@ -196,19 +192,10 @@ def merge(
     import shlex
 
     from ensemble import api
-    from ensemble.output.store import OutputError, ResultExists
-    from ensemble.run.shards import PartError
 
     history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
-    try:
-        with _fail_on_invalid():
-            path = api.merge(parts, output, force=force, history=history)
-    except PartError as error:
-        _stop(f"error: {error}", 2)
-    except ResultExists as error:
-        _stop(f"error: {error}; use --force to replace it", 2)
-    except (OutputError, OSError) as error:
-        _stop(f"error: {error}", 1)
+    with _reported():
+        path = api.merge(parts, output, force=force, history=history)
     typer.echo(f"result: {path} (from {len(parts)} parts)")
 
 
@@ -235,7 +222,7 @@ def array_script(
                "--backend": backend.value if backend else None}
     run_options = [str(item) for option, value in carried.items() if value is not None
                    for item in (option, value)]
-    with _fail_on_invalid():
+    with _reported():
         loaded = api.load_scenario(scenario, members=members, seed=seed)
         text = api.array_script(loaded, cluster, shards, output=output,
                                 run_options=run_options)

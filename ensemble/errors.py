@@ -8,8 +8,10 @@ Every error the command line turns into a message is an :class:`EnsembleError`, 
   :class:`ScenarioError` for scenario files, :class:`ProfileError` for cluster profiles,
   :class:`UsageError` for command-line options and result or part files that cannot be
   used as asked.
+  :class:`ResultExists`, :class:`FingerprintMismatch`, :class:`NotAResult` and
+  :class:`PartError` are usage errors about result, work-in-progress and part files.
 - :class:`RunError` (status 1, finished work kept): a run failed while it was computing
-  or writing.
+  (:class:`RunFailed`) or writing (:class:`StoreWriteError`, :class:`IncompleteWork`).
 """
 
 from __future__ import annotations
@@ -91,8 +93,38 @@ class UsageError(InputError):
     """Command-line options, or files given to a command, that cannot be used as asked."""
 
 
+class ResultExists(UsageError):
+    """The result file exists and replacing it was not asked for (nothing computed)."""
+
+
+class FingerprintMismatch(UsageError):
+    """Work in progress to resume belongs to a different scenario or settings."""
+
+
+class NotAResult(UsageError):
+    """A file given as a result is missing, not netCDF, work in progress or a part file."""
+
+
+class PartError(UsageError):
+    """Part files of a sharded run that cannot be merged, or a file that is not a part."""
+
+
 class RunError(EnsembleError):
     """A run failed while computing or writing; finished work is kept (exit status 1)."""
+
+
+class RunFailed(RunError):
+    """A chunk of members could not be computed (its task raised, or its worker kept
+    dying)."""
+
+
+class StoreWriteError(RunError):
+    """Writing the work in progress or the result failed (unwritable directory, full
+    disk...); chunks already saved are kept."""
+
+
+class IncompleteWork(RunError):
+    """A result was to be written before every one of its members was saved."""
 
 
 def did_you_mean(word: str, choices: Iterable[str]) -> str | None:

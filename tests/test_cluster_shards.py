@@ -22,7 +22,8 @@ from hypothesis import given, strategies as st
 from ensemble import api
 from ensemble.cli import app
 from ensemble.run.clusters import load_profile
-from ensemble.run.shards import PartError, Shard
+from ensemble.errors import PartError
+from ensemble.run.shards import Shard
 from support import REPO, assert_identical_numbers, write_scenario
 
 

@@ -30,7 +30,8 @@ from ensemble.cli import app
 from ensemble.examples import sir_text
 from ensemble.integrate.chunk import integrate_chunk
 from ensemble.model.lower import lower_model
-from ensemble.output.store import NotAResult, WorkStore
+from ensemble.errors import NotAResult
+from ensemble.output.store import WorkStore
 from ensemble.sampling import make_design
 from support import fill, grouped_scenario, layout_of, load_text
 

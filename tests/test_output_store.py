@@ -17,11 +17,8 @@ import xarray as xr
 
 from ensemble.output import store as store_module
 from ensemble.output.selection import pilot_brackets
+from ensemble.errors import FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError
 from ensemble.output.store import (
-    FingerprintMismatch,
-    IncompleteWork,
-    ResultExists,
-    StoreWriteError,
     WorkStore,
     block_plan,
     partial_path,

@@ -12,7 +12,8 @@ import ensemble.run.execute as execute
 from ensemble import api
 from ensemble.model.lower import lower_model
 from ensemble.output.store import WorkStore
-from ensemble.run.execute import RunFailed, open_client
+from ensemble.errors import RunFailed
+from ensemble.run.execute import open_client
 from ensemble.scenario.load import load_scenario
 from support import assert_same_numbers, layout_of, write_scenario
 

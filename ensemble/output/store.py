@@ -49,6 +49,8 @@ import netCDF4
 import numpy as np
 import psutil
 
+from ensemble.errors import (FingerprintMismatch, IncompleteWork, NotAResult, ResultExists,
+                             StoreWriteError)
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
@@ -56,11 +58,7 @@ from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
                                        recut, refined_brackets, select)
 from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
 
-__all__ = [
-    "FingerprintMismatch", "IncompleteWork", "NotAResult", "OutputError",
-    "ParameterInfo", "ResultExists", "ResultLayout", "StoreWriteError", "WorkStore",
-    "partial_path", "result_fingerprint",
-]
+__all__ = ["ParameterInfo", "ResultLayout", "WorkStore", "partial_path", "result_fingerprint"]
 
 """(variant index, first member, end member): members ``first .. end - 1`` of a variant."""
 
@@ -100,27 +98,6 @@ derive the same again."""
 
 _saving = threading.local()
 """Each thread's buffers for saving chunks, reused from chunk to chunk."""
-
-
-class OutputError(Exception):
-    """Base of the output layer's errors."""
-
-
-class ResultExists(OutputError):
-    """The final result path exists and replacing it was not asked for (CLI: exit 2)."""
-
-
-class FingerprintMismatch(OutputError):
-    """Work in progress belongs to a different scenario or settings (CLI: exit 2)."""
-
-
-class StoreWriteError(OutputError):
-    """Writing failed (unwritable directory, disk full...).  Chunks already saved are
-    kept for a resume (CLI: exit 1)."""
-
-
-class IncompleteWork(OutputError):
-    """:meth:`WorkStore.finish` was called before every member was saved (CLI: exit 1)."""
 
 
 def partial_path(path: str | os.PathLike[str]) -> Path:
@@ -185,8 +162,8 @@ class WorkStore:
         """
         path = Path(path)
         if path.exists() and not force:
-            raise ResultExists(f"{path} already exists; it is replaced only when asked "
-                               "to (--force)")
+            raise ResultExists(str(path), "", None, "already exists",
+                               "use --force to replace it")
         store = cls(path, layout, block_bytes=block_bytes)
         try:
             store._prepare(resume)
@@ -210,10 +187,11 @@ class WorkStore:
         if resume and manifest is not None:
             if manifest.get("fingerprint") != self.layout.fingerprint:
                 raise FingerprintMismatch(
-                    f"{self.work} holds work of a different scenario or settings "
-                    f"(fingerprint {str(manifest.get('fingerprint'))[:12]}..., this run "
-                    f"{self.layout.fingerprint[:12]}...); run without resuming to start "
-                    "afresh")
+                    str(self.work), "", None,
+                    "holds work of a different scenario or settings (fingerprint "
+                    f"{str(manifest.get('fingerprint'))[:12]}..., this run "
+                    f"{self.layout.fingerprint[:12]}...)",
+                    "run without --resume to start afresh")
             for stray in self.work.glob(f"{TEMP_PREFIX}*"):
                 shutil.rmtree(stray, ignore_errors=True)
             self._drop_untrusted_chunks()
@@ -993,10 +971,6 @@ def block_plan(members: int, rows: int, times: int, block_bytes: int
 
 # ---------------------------------------------------------------------- result files
 
-class NotAResult(OutputError):
-    """The path is not a complete result file (CLI: exit 2)."""
-
-
 def result_fingerprint(path: str | os.PathLike[str]) -> str:
     """The fingerprint of the complete result file at ``path``.
 
@@ -1010,23 +984,23 @@ def result_fingerprint(path: str | os.PathLike[str]) -> str:
     """
     path = Path(path)
     if path.is_dir() or path.name.endswith(".partial"):
-        raise NotAResult(f"{path} is the work in progress of an unfinished run, not a "
-                         "result; finish it by running again with --resume")
+        raise NotAResult(str(path), "", None, "is the work in progress of an unfinished "
+                         "run, not a result", "finish it by running again with --resume")
     if not path.is_file():
-        raise NotAResult(f"{path} does not exist")
+        raise NotAResult(str(path), "", None, "does not exist")
     try:
         with netCDF4.Dataset(path) as nc:
             fingerprint = getattr(nc, "fingerprint", None)
             complete = "members_in_summary" in nc.variables
             part = "ensemble_part" in nc.ncattrs()
     except OSError as error:
-        raise NotAResult(f"{path} is not a netCDF file ({error})") from error
+        raise NotAResult(str(path), "", None, f"is not a netCDF file ({error})") from error
     if part:
-        raise NotAResult(f"{path} is a part file (one shard of a run), not a result; "
-                         "join the parts with ensemble merge")
+        raise NotAResult(str(path), "", None, "is a part file (one shard of a run), not a "
+                         "result", "join the parts with ensemble merge")
     if fingerprint is None or not complete:
-        raise NotAResult(f"{path} is not a complete ensemble result (a part file, or "
-                         "another netCDF file)")
+        raise NotAResult(str(path), "", None, "is not a complete ensemble result (a part "
+                         "file, or another netCDF file)")
     return str(fingerprint)
 
 

@@ -6,7 +6,7 @@ The names below are imported from their modules when first used, so that importi
 light module of this package (:mod:`.local`) does not import the whole pipeline.
 """
 
-_EXPORTS = {"RunFailed": "execute", "compute_chunk": "execute", "open_client": "execute",
+_EXPORTS = {"compute_chunk": "execute", "open_client": "execute",
             "run_scenario": "execute", "fingerprint": "plan", "plan_chunks": "plan",
             "shard_range": "plan"}
 

@@ -31,9 +31,10 @@ from distributed import Client, Future, as_completed
 from ensemble.integrate.chunk import integrate_chunk
 from ensemble.records import ChunkResult
 from ensemble.integrate.codegen import block_size
+from ensemble.errors import RunFailed, StoreWriteError
 from ensemble.methods import METHODS
 from ensemble.model.lower import LoweredModel, lower_model
-from ensemble.output.store import ResultLayout, StoreWriteError, WorkStore
+from ensemble.output.store import ResultLayout, WorkStore
 from ensemble.records import ChunkKey
 from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
 from ensemble.run.local import LocalStart, available_cores
@@ -66,13 +67,6 @@ def _reduce_mappingproxy(proxy: types.MappingProxyType) -> tuple:
 
 # The validated scenario keeps its tables in read-only mappings; let tasks carry it.
 copyreg.pickle(types.MappingProxyType, _reduce_mappingproxy)
-
-
-class RunFailed(RuntimeError):
-    """A chunk could not be computed (a worker error, or its worker kept dying).
-
-    The chunks finished before it stay in ``<PATH>.partial`` for ``--resume``.
-    """
 
 
 @dataclass(frozen=True)
@@ -417,9 +411,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
 
     Raises
     ------
-    ensemble.output.store.ResultExists : the result exists and neither ``force`` nor a
+    ensemble.errors.ResultExists : the result exists and neither ``force`` nor a
         matching ``resume`` was given (nothing is computed).
-    ensemble.output.store.FingerprintMismatch : ``resume`` of work from a different
+    ensemble.errors.FingerprintMismatch : ``resume`` of work from a different
         scenario, member count, seed, version or backend.
     RunFailed : a chunk failed; finished chunks are kept.
     OSError : the work in progress or the result could not be written; finished chunks
@@ -462,6 +456,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                         progress.note(f"dask dashboard at {dashboard}")
                     _save_all(store, _on_cluster(client, scenario, models, keys, backend,
                                                  store, candidates), progress, candidates)
+    except RunFailed as failure:
+        raise RunFailed(f"{failure} (finished chunks are kept in {store.work}; continue "
+                        "with --resume)") from failure.__cause__
     finally:
         progress.close()
     progress.note(f"every chunk saved; writing {path}")

@@ -30,6 +30,7 @@ from typing import Any
 import netCDF4
 import numpy as np
 
+from ensemble.errors import PartError
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.model.lower import lower_model
 from ensemble.output.store import ResultLayout, WorkStore, partial_path
@@ -48,8 +49,8 @@ CHUNK_BYTES = 2**20
 """Target size of one netCDF chunk of a part's trajectories."""
 
 
-class PartError(Exception):
-    """Parts that cannot be merged, or a file that is not a part (command line: exit 2)."""
+MERGE = "ensemble merge"
+"""What a :class:`~ensemble.errors.PartError` about the set of parts (not one file) names."""
 
 
 @dataclass(frozen=True)
@@ -220,9 +221,11 @@ def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
         with netCDF4.Dataset(path) as part:
             attributes = part.__dict__
     except (OSError, RuntimeError) as error:
-        raise PartError(f"{path}: cannot be read as a part file ({error})") from None
+        raise PartError(str(path), "", None,
+                        f"cannot be read as a part file ({error})") from None
     if attributes.get("ensemble_part") != PART_FORMAT:
-        raise PartError(f"{path}: not a shard part file (made by `ensemble run --shard I/N`)")
+        raise PartError(str(path), "", None, "not a shard part file",
+                        "parts are made by `ensemble run --shard I/N`")
     return PartInfo(path=path, fingerprint=str(attributes["fingerprint"]),
                     shard=Shard(int(attributes["shard_index"]), int(attributes["shard_count"])),
                     members=(int(attributes["member_start"]), int(attributes["member_end"])),
@@ -238,29 +241,32 @@ def check_parts(parts: Sequence[PartInfo]) -> None:
         shard indices.
     """
     if not parts:
-        raise PartError("no part files given")
+        raise PartError(MERGE, "", None, "no part files given")
     by_fingerprint: dict[str, list[str]] = {}
     for part in parts:
         by_fingerprint.setdefault(part.fingerprint, []).append(str(part.path))
     if len(by_fingerprint) > 1:
         groups = "; ".join(f"{digest[:12]}: {', '.join(files)}"
                            for digest, files in by_fingerprint.items())
-        raise PartError(f"the parts come from different runs (fingerprints {groups})")
+        raise PartError(MERGE, "", None,
+                        f"the parts come from different runs (fingerprints {groups})")
     counts = {part.shard.count for part in parts}
     if len(counts) > 1:
-        raise PartError(f"the parts disagree on the number of shards ({sorted(counts)})")
+        raise PartError(MERGE, "", None,
+                        f"the parts disagree on the number of shards ({sorted(counts)})")
     count = counts.pop()
     seen: dict[int, Path] = {}
     for part in parts:
         if part.shard.index in seen:
-            raise PartError(f"shard {part.shard} given twice: {seen[part.shard.index]} and "
-                            f"{part.path}")
+            raise PartError(MERGE, "", None, f"shard {part.shard} given twice: "
+                            f"{seen[part.shard.index]} and {part.path}")
         seen[part.shard.index] = part.path
     missing = sorted(set(range(count)) - set(seen))
     if missing:
         listed = ", ".join(str(index) for index in missing)
-        raise PartError(f"missing shard{'s' if len(missing) > 1 else ''} {listed} of {count} "
-                        f"(each shard I is made by `ensemble run --shard I/{count}`)")
+        raise PartError(MERGE, "", None,
+                        f"missing shard{'s' if len(missing) > 1 else ''} {listed} of {count}",
+                        f"each shard I is made by `ensemble run --shard I/{count}`")
 
 
 def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLike[str], *,
@@ -282,7 +288,7 @@ def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLi
     ------
     PartError : parts of different runs, repeated or missing shards, or not part files
         (nothing is written).
-    ensemble.output.store.ResultExists : ``output`` exists and ``force`` is false.
+    ensemble.errors.ResultExists : ``output`` exists and ``force`` is false.
     """
     infos = [read_part_info(path) for path in parts]
     check_parts(infos)
@@ -309,9 +315,9 @@ def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenar
         scenario, members=members, seed=seed,
         output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if fingerprint(scenario, backend) != info.fingerprint:
-        raise PartError(f"{info.path}: made by a different version of ensemble (its "
-                        "fingerprint does not match its scenario here); merge with the "
-                        "version that made the parts")
+        raise PartError(str(info.path), "", None, "made by a different version of "
+                        "ensemble (its fingerprint does not match its scenario here)",
+                        "merge with the version that made the parts")
     return scenario, backend
 
 
