@@ -142,7 +142,7 @@ def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
     """
     import xarray as xr
 
-    from ensemble.output.summary import status_counts as count_bits
+    from ensemble.present.summary import status_counts as count_bits
 
     with xr.open_dataset(path, decode_times=False) as dataset:
         return count_bits(dataset["status"].values)
@@ -236,7 +236,7 @@ def summarize(path: str | os.PathLike[str]) -> str:
     ------
     ensemble.errors.NotAResult : ``path`` is not a complete result file.
     """
-    from ensemble.output.report import summary_text
+    from ensemble.present.summary import summary_text
 
     with open_result(path) as dataset:
         return summary_text(dataset)

@@ -24,7 +24,7 @@ from ensemble.output.store import (
     partial_path,
     result_fingerprint,
 )
-from ensemble.output.summary import in_summary
+from ensemble.output.quantiles import in_summary
 from support import fill, grouped_scenario, layout_of, made_up_members
 
 

@@ -13,7 +13,8 @@ import pytest
 import xarray as xr
 
 from ensemble.output.store import WorkStore
-from ensemble.output.summary import member_metrics, quantiles
+from ensemble.output.metrics import member_metrics
+from ensemble.output.quantiles import quantiles
 from support import fill, grouped_scenario, layout_of
 
 

@@ -32,15 +32,9 @@ import xarray as xr
 from ensemble.about import CAUTION
 from ensemble.records import STATUS_FLAGS, ChunkResult
 from ensemble.output.layout import STREAMED, ResultLayout
-from ensemble.output.summary import (
-    FLOW_METRICS,
-    METRICS,
-    STATE_METRICS,
-    in_summary,
-    member_metrics,
-    member_quantiles,
-    summary_quantiles,
-)
+from ensemble.output.metrics import (FLOW_METRICS, METRICS, STATE_METRICS, member_metrics,
+                                     summary_quantiles)
+from ensemble.output.quantiles import in_summary, member_quantiles
 
 LABELLED_DIMS = ("variant", "compartment", "flow", "group")
 """Dimensions that carry a string label variable ``<dim>_name``."""

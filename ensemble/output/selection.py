@@ -2,7 +2,7 @@
 
 A quantile over members needs, for every reported time and row of a trajectory (a
 *cell*), only the two order statistics that numpy's linear rule interpolates between
-(:func:`~ensemble.output.summary.linear_ranks`).  Keeping every member's value of every
+(:func:`~ensemble.output.quantiles.linear_ranks`).  Keeping every member's value of every
 cell until the end costs gigabytes for large ensembles; this module keeps those near the
 ranks that matter and still gives numpy's bits.
 
@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from ensemble.output.summary import interpolate, linear_ranks
+from ensemble.output.quantiles import interpolate, linear_ranks
 
 MARGIN_SD = 6.0
 """Half-width of a bracket in standard deviations of the pilot's binomial rank count."""

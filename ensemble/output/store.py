@@ -56,7 +56,8 @@ from ensemble.output.layout import STREAMED, ParameterInfo, ResultLayout
 from ensemble.output.selection import (PILOT_MEMBERS, Brackets, Candidates,
                                        chunk_candidates, merged_brackets, pilot_ranges,
                                        recut, refined_brackets, select)
-from ensemble.output.summary import in_summary, member_metrics, quantiles, summary_quantiles
+from ensemble.output.metrics import member_metrics, summary_quantiles
+from ensemble.output.quantiles import in_summary, quantiles
 
 __all__ = ["ParameterInfo", "ResultLayout", "WorkStore", "partial_path", "result_fingerprint"]
 

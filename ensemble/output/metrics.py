@@ -1,11 +1,10 @@
-"""Per-member metrics (peaks, peak times, totals) and quantiles over members.
+"""Per-member metrics of the trajectories (peaks, peak times, totals) and their
+quantiles over members.
 
-numpy, with one compiled (numba) pass over the times for the metrics: used by the
-streaming store on each chunk, by :func:`ensemble.simulate` on a whole ensemble, and by
-``ensemble summary``.  Quantiles use numpy's default definition
-(linear interpolation between order statistics: Hyndman and Fan 1996, "Sample quantiles
-in statistical packages", definition 7), so they are the same numbers whatever the
-order or grouping in which members arrive.
+One compiled (numba) pass over the times gives every metric of a chunk of members as it
+is saved; the quantiles over members (:mod:`.quantiles`) of each metric, and of each
+member's metric minus the same member's in the ``compare_to`` variant, are computed when
+the result is finished.
 """
 
 from __future__ import annotations
@@ -15,10 +14,7 @@ from collections.abc import Mapping, Sequence
 import numba
 import numpy as np
 
-from ensemble.records import INVALID_START, NON_FINITE, STATUS_FLAGS
-
-EXCLUDED_FROM_SUMMARY = NON_FINITE | INVALID_START
-"""Status bits that keep a member out of the quantiles."""
+from ensemble.output.quantiles import in_summary, member_quantiles
 
 STATE_METRICS = ("peak_value", "peak_time")
 """Metrics with one value per member and state row."""
@@ -27,17 +23,6 @@ FLOW_METRICS = ("flow_peak_value", "flow_peak_time", "total_flow")
 """Metrics with one value per member and flow row."""
 
 METRICS = STATE_METRICS + FLOW_METRICS
-
-
-def status_counts(status: np.ndarray) -> dict[str, int]:
-    """Members behind each status bit: flag word (as in ``flag_meanings``) -> count."""
-    return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}
-
-
-def in_summary(status: np.ndarray) -> np.ndarray:
-    """Boolean mask of the members behind the quantiles: those without the non-finite or
-    invalid-start bits."""
-    return (np.asarray(status) & EXCLUDED_FROM_SUMMARY) == 0
 
 
 @numba.njit(cache=True, nogil=True)
@@ -123,80 +108,12 @@ def member_metrics(state: np.ndarray, flow_count: np.ndarray,
             "total_flow": total_flow}
 
 
-def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int = 0,
-              overwrite_input: bool = False) -> np.ndarray:
-    """Quantiles of ``values`` over ``axis`` (numpy's default linear definition); the
-    quantile axis replaces ``axis`` at the front.  NaN where ``axis`` is empty or holds a
-    NaN.
-
-    The values are sorted along ``axis`` (in place with ``overwrite_input``) and the
-    order statistics read off by :func:`quantiles_of_sorted`: numpy's vectorised sort
-    takes about a fifth of the time of ``numpy.quantile``'s selection of a dozen ranks
-    (measured on 200,000 members), and the numbers are the same.
-    """
-    probabilities = np.asarray(probabilities, dtype=np.float64)
-    if values.shape[axis] == 0:
-        shape = np.delete(np.array(values.shape), axis % values.ndim)
-        return np.full((len(probabilities), *shape), np.nan)
-    if overwrite_input:
-        values.sort(axis=axis)
-        ordered = values
-    else:
-        ordered = np.sort(values, axis=axis)
-    return quantiles_of_sorted(np.moveaxis(ordered, axis, -1), probabilities)
-
-
-def quantiles_of_sorted(ordered: np.ndarray, probabilities: np.ndarray) -> np.ndarray:
-    """Quantiles along the last axis of ``ordered``, sorted ascending along it (NaN last,
-    as numpy sorts), shaped (quantile, ...); NaN where the values hold a NaN.
-
-    Hyndman and Fan (1996) definition 7, computed as ``numpy.quantile``'s default
-    "linear" method does, so the bits agree (:func:`linear_ranks`, :func:`interpolate`).
-    """
-    below, above, fraction = linear_ranks(ordered.shape[-1], probabilities)
-    lower = np.moveaxis(ordered[..., below], -1, 0)
-    upper = np.moveaxis(ordered[..., above], -1, 0)
-    result = interpolate(lower, upper, fraction.reshape(-1, *([1] * (ordered.ndim - 1))))
-    result[:, np.isnan(ordered[..., -1])] = np.nan
-    return result
-
-
-def linear_ranks(count: int, probabilities: Sequence[float]
-                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The order statistics (0-based ranks among ``count`` values) that numpy's linear
-    quantile of each probability interpolates between, and the fraction of the way:
-    virtual index ``(count - 1) p``, neighbours ``floor`` and ``floor + 1``, both the
-    last rank from ``count - 1`` on."""
-    virtual = (count - 1) * np.asarray(probabilities, dtype=np.float64)
-    below = np.floor(virtual)
-    above = below + 1
-    beyond = virtual >= count - 1
-    below[beyond] = count - 1
-    above[beyond] = count - 1
-    return below.astype(np.intp), above.astype(np.intp), virtual - below
-
-
-def interpolate(lower: np.ndarray, upper: np.ndarray, fraction: np.ndarray) -> np.ndarray:
-    """numpy's interpolation between neighbouring order statistics: ``a + (b - a) g`` for
-    a fraction g below 1/2, ``b - (b - a)(1 - g)`` from 1/2 on."""
-    gap = upper - lower
-    result = lower + gap * fraction
-    np.subtract(upper, gap * (1 - fraction), out=result,
-                where=np.broadcast_to(fraction >= 0.5, result.shape))
-    return result
-
-
-def member_quantiles(values: np.ndarray, probabilities: Sequence[float],
-                     included: np.ndarray) -> np.ndarray:
-    """Quantiles over the members (axis 0) of ``values`` selected by ``included``."""
-    return quantiles(values[included], probabilities, axis=0, overwrite_input=True)
-
-
 def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
                       probabilities: Sequence[float],
                       compare_to: int | None = None) -> dict[str, np.ndarray]:
     """``members_in_summary``, ``<metric>_quantile`` and (with ``compare_to``)
-    ``difference_quantile_<metric>`` of SPEC section 3.
+    ``difference_quantile_<metric>`` (the project's reference,
+    ``ensemble/scenario/reference.md``, result file).
 
     Parameters
     ----------

@@ -1,11 +1,12 @@
-"""A readable text summary of a result dataset (``ensemble summary``)."""
+"""A readable text summary of a result dataset (``ensemble summary``), and the members
+behind each status bit."""
 
 from __future__ import annotations
 
 import numpy as np
 import xarray as xr
 
-from ensemble.output.summary import status_counts
+from ensemble.records import STATUS_FLAGS
 
 _ROWS = (
     ("peak size", "peak_value_quantile", "compartment"),
@@ -15,6 +16,11 @@ _ROWS = (
     ("flow peak time", "flow_peak_time_quantile", "flow"),
 )
 """(row title, quantile variable, labelled dimension) of each block of the table."""
+
+
+def status_counts(status: np.ndarray) -> dict[str, int]:
+    """Members behind each status bit: flag word (as in ``flag_meanings``) -> count."""
+    return {word: int(np.count_nonzero(status & bit)) for bit, word in STATUS_FLAGS}
 
 
 def _number(value: float) -> str:

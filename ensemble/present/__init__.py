@@ -1,0 +1,1 @@
+"""What people read from a result: the text summary of ``ensemble summary``."""
