@@ -333,7 +333,6 @@ FAMILIES: dict[str, Family] = {family.name: family for family in (
     Family("triangular", ("low", "mode", "high"), _triangular, problem=_mode_inside),
     Family("choice", ("values",), _choice, optional=("weights",),
            lists=frozenset({"values", "weights"}), problem=_choice_weights),
-    Family("fixed", ("value",), lambda a: Choice((a["value"],))),
 )}
 """Every distribution family, by its name in the scenario file."""
 

@@ -79,7 +79,7 @@ CASES = [
 
 def test_every_family_has_a_case_here():
     """A family added to the registry without a case in this file fails here."""
-    checked = {law.family for law, _ in CASES} | {"choice", "fixed"}
+    checked = {law.family for law, _ in CASES} | {"choice"}
     assert set(FAMILIES) <= checked, f"no case for {set(FAMILIES) - checked}"
 
 
@@ -254,6 +254,3 @@ def test_choice_inverse_cdf_at_the_cumulative_weights():
     u = np.array([1e-12, 0.2499, 0.25, 0.2501, 0.999999])
     assert inverse_cdf(distribution, u).tolist() == [1.0, 1.0, 1.0, 2.0, 2.0]
 
-
-def test_fixed_distribution_takes_its_value():
-    assert inverse_cdf(dist("fixed", value=0.2), np.array([0.1, 0.9])).tolist() == [0.2, 0.2]

@@ -160,7 +160,7 @@ def test_uncertain_columns_are_the_union_over_variants_in_file_order(tmp_path):
                 a = 1.0
                 b = { dist = "uniform", low = 0, high = 1 }
                 c = [1.0, 2.0]
-                d = { dist = "fixed", value = 3.0 }
+                d = { value = 3.0, units = "1" }
               """,
               variants="""
                 [[variants]]

@@ -175,14 +175,14 @@ def test_invalid_overrides(load, overrides, key) -> None:
 
 
 def test_parameter_forms_and_annotations(load) -> None:
-    text = edit(MINIMAL, "gamma = 0.1", """gamma = { dist = "fixed", value = 0.2, units = "1/day", description = "recovery" }
+    text = edit(MINIMAL, "gamma = 0.1", """gamma = { value = 0.2, units = "1/day", description = "recovery" }
 R0 = { dist = "normal", mean = 2, sd = 0.5, low = 1 }
 pick = { dist = "choice", values = [1, 2, 4], weights = [1, 1, 2] }
 decay = "exp(-t / 30)"
 """)
     parameters = load(text).parameters
     gamma = parameters["gamma"]
-    assert isinstance(gamma.form, Distribution) and gamma.form.arguments == {"value": 0.2}
+    assert isinstance(gamma.form, Fixed) and gamma.form.value == 0.2
     assert (gamma.units, gamma.description) == ("1/day", "recovery")
     assert parameters["R0"].form.truncation == (1.0, None)
     assert parameters["pick"].form.arguments == {"values": (1.0, 2.0, 4.0),
@@ -190,6 +190,27 @@ decay = "exp(-t / 30)"
     assert isinstance(parameters["decay"].form, Derived)
     assert parameters["decay"].form.expression.names == {"t"}
     assert list(parameters) == ["beta", "gamma", "R0", "pick", "decay"]
+
+
+def test_fixed_family_is_refused_with_the_number_as_hint(load) -> None:
+    """A constant is a number; a table with dist = "fixed" is refused, and the hint shows
+    how to write it (the number, or a table with value and units)."""
+    text = edit(MINIMAL, "gamma = 0.1", 'gamma = { dist = "fixed", value = 0.2 }')
+    with pytest.raises(ScenarioError) as caught:
+        load(text)
+    assert (caught.value.key, caught.value.value) == ("parameters.gamma.dist", "fixed")
+    assert "gamma = 0.2" in caught.value.hint and "value = 0.2" in caught.value.hint
+
+
+def test_annotated_constants(load) -> None:
+    """A table with value and no dist is a constant with units and a description, a
+    number or one number per group."""
+    text = edit(GROUPED, 'susceptibility = [0.8, 1.2]',
+                'susceptibility = { value = [0.8, 1.2], units = "1", description = "relative" }')
+    susceptibility = load(text).parameters["susceptibility"]
+    assert isinstance(susceptibility.form, Fixed) and susceptibility.shape == "vector"
+    assert susceptibility.form.value == (0.8, 1.2)
+    assert (susceptibility.units, susceptibility.description) == ("1", "relative")
 
 
 def test_grouped_shapes(load) -> None:

@@ -19,7 +19,7 @@ import numpy as np
 from ensemble.distributions import inverse_cdf
 from ensemble.model.lower import LoweredModel, time_varying_parameters
 from ensemble.sampling.evaluate import evaluate, ordered_sum
-from ensemble.sampling.uniform import ColumnKey, needs_draw, uniform_draws
+from ensemble.sampling.uniform import ColumnKey, uniform_draws
 from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, Parameter,
                                       Rest, Scenario, Schedule, Variant)
 
@@ -100,7 +100,7 @@ def constant_values(scenario: Scenario, variant: Variant,
         name: np.asarray(matrix, dtype=np.float64)[:, :, np.newaxis]
         for name, matrix in scenario.variant_matrices(variant).items()}
     drawn = {name: p.form for name, p in parameters.items()
-             if isinstance(p.form, Distribution) and needs_draw(p.form)}
+             if isinstance(p.form, Distribution)}
     keys: list[ColumnKey] = [(name, g) for name, form in drawn.items()
                              for g in range(n_groups if form.per_group else 1)]
     uniforms = uniform_draws(scenario, keys, members)
@@ -122,14 +122,9 @@ def constant_values(scenario: Scenario, variant: Variant,
 
 def _distribution_value(name: str, form: Distribution,
                         uniforms: Mapping[ColumnKey, np.ndarray], n_groups: int) -> np.ndarray:
-    """(M,) values of a drawn parameter, (G, M) with ``per_group``; (1,) or (G, 1) for
-    the ``fixed`` family."""
-    elements = range(n_groups if form.per_group else 1)
-    if needs_draw(form):
-        drawn = [inverse_cdf(form.family, form.arguments, form.truncation, uniforms[(name, g)])
-                 for g in elements]
-    else:
-        drawn = [np.array([float(form.arguments["value"])]) for _ in elements]
+    """(M,) values of a drawn parameter, (G, M) with ``per_group``."""
+    drawn = [inverse_cdf(form.family, form.arguments, form.truncation, uniforms[(name, g)])
+             for g in range(n_groups if form.per_group else 1)]
     return np.stack(drawn) if form.per_group else drawn[0]
 
 

@@ -48,22 +48,17 @@ _PERMUTATION_CACHE_SIZE = 32
 """Latin hypercube permutations kept per process (4 bytes per member each)."""
 
 
-def needs_draw(dist: Distribution) -> bool:
-    """Whether ``dist`` takes a uniform column (every family but ``fixed``)."""
-    return dist.family != "fixed"
-
-
 def uncertain_columns(scenario: Scenario) -> tuple[ColumnKey, ...]:
     """Every column any variant draws, in the file's parameter order.
 
     A parameter has a column per element if the base scenario or any variant gives it a
-    distribution other than ``fixed``; ``per_group`` gives one per group.
+    distribution; ``per_group`` gives one per group.
     """
     columns: list[ColumnKey] = []
     for name in scenario.parameters:
         forms = [scenario.parameters[name].form]
         forms += [v.parameters[name].form for v in scenario.variants if name in v.parameters]
-        drawn = [f for f in forms if isinstance(f, Distribution) and needs_draw(f)]
+        drawn = [f for f in forms if isinstance(f, Distribution)]
         if not drawn:
             continue
         per_group = any(f.per_group for f in drawn)

@@ -136,8 +136,7 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
                 warnings.append(f"{where}{parameter.name}: schedule day(s) {', '.join(late)} "
                                 f"fall after the horizon of {time_text(scenario.days)} days "
                                 "and have no effect")
-    uncertain = [p for p in scenario.parameters.values() if isinstance(p.form, Distribution)
-                 and p.form.family != "fixed"]
+    uncertain = [p for p in scenario.parameters.values() if isinstance(p.form, Distribution)]
     if not uncertain and members > 1 and not any(v.parameters for v in scenario.variants):
         warnings.append(f"no parameter is drawn from a distribution: all {members} members "
                         "of a variant are identical")
@@ -678,10 +677,8 @@ class _Loader:
             raise self.error(path, name, f"{name!r} is already a compartment")
         if name in scope.matrices:
             raise self.error(path, name, f"{name!r} is already a matrix")
-        if _is_number(value):
-            return _Draft(name, path, Fixed(self.number(value, path)), "scalar")
-        if isinstance(value, list):
-            return _Draft(name, path, Fixed(scope.vector(self, value, path)), "vector")
+        if _is_number(value) or isinstance(value, list):
+            return self.constant(name, value, path, scope)
         if isinstance(value, str):
             text = self.parse(value, path)
             return _Draft(name, path, None, None, texts=(text,))
@@ -692,8 +689,22 @@ class _Loader:
             return self.schedule(name, value, path, scope)
         if "dist" in value:
             return self.distribution(name, value, path, scope)
-        raise self.error(path, value, "a parameter table needs 'dist' (a distribution) or "
-                                      "'schedule'", _hint_for_keys(value, ("dist", "schedule")))
+        if "value" in value:
+            self.table(value, path, ("value", "units", "description"))
+            return self.constant(name, value["value"], _key(path, "value"), scope,
+                                 **self.annotations(value, path))
+        raise self.error(path, value, "a parameter table needs 'dist' (a distribution), "
+                                      "'schedule' or 'value' (a constant)",
+                         _hint_for_keys(value, ("dist", "schedule", "value")))
+
+    def constant(self, name: str, value: object, path: str, scope: "_Scope",
+                 units: str | None = None, description: str | None = None) -> _Draft:
+        """A number, or a list with one number per group."""
+        if isinstance(value, list):
+            return _Draft(name, path, Fixed(scope.vector(self, value, path)), "vector",
+                          units=units, description=description)
+        return _Draft(name, path, Fixed(self.number(value, path)), "scalar", units=units,
+                      description=description)
 
     def annotations(self, table: dict[str, Any], path: str) -> dict[str, str | None]:
         return {"units": self.get(table, path, "units", self.string, None),
@@ -701,6 +712,12 @@ class _Loader:
 
     def distribution(self, name: str, table: dict[str, Any], path: str,
                      scope: "_Scope") -> _Draft:
+        if table["dist"] == "fixed":
+            example = _shown(table.get("value", 0.2))
+            raise self.error(_key(path, "dist"), "fixed", "a constant is not a distribution: "
+                             "write the number itself", f"{name} = {example!r}, or "
+                             f"{name} = {{ value = {example!r}, units = \"...\" }} to give it "
+                             "units or a description")
         family = FAMILIES[self.known(table["dist"], FAMILIES, _key(path, "dist"),
                                      "distribution")]
         bounds = ("low", "high") if family.truncatable else ()
