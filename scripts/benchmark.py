@@ -1,12 +1,13 @@
-"""Speed of the integration backends against a hand-written reference kernel (issue 6).
+"""Speed of the integration backends against a hand-written reference kernel.
 
 In one process, for an SEIR model (4 states) and a 16-group age-structured SEIR (64
 states, a 16 x 16 contact matrix), 365 days at step 0.25 with RK4, it measures
 
 (a) a Python loop of scipy's ``solve_ivp`` (RK45, rtol 1e-8) over a sample of members;
 (b) the numpy backend (:func:`ensemble.integrate.reference.integrate_fixed`);
-(c) the compiled backend (:func:`ensemble.integrate.compiled.integrate_fixed_compiled`,
-    compile time excluded and printed apart);
+(c) the compiled backend
+    (:func:`ensemble.integrate.kernels.launch.integrate_fixed_compiled`, compile time
+    excluded and printed apart);
 (d) a hand-written member-blocked numba kernel doing the same RK4 integrations and
     storing the same reports (steps outside, members inside, parallel over blocks): the
     practical limit of this machine;
@@ -45,9 +46,10 @@ from numba import njit, prange
 from scipy.integrate import solve_ivp
 
 from ensemble.examples import seir_text
-from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
-from ensemble.methods import METHODS
+from ensemble.integrate.kernels.cache import KernelCache
+from ensemble.integrate.kernels.launch import integrate_fixed_compiled
 from ensemble.integrate.reference import integrate_fixed
+from ensemble.methods import METHODS
 from ensemble.model.lower import lower_model
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
@@ -382,7 +384,7 @@ def compile_seconds(case: Case, method: str) -> float:
     first call on a few members."""
     small = case.subset(8)
     began = time.perf_counter()
-    load_kernel(case.model, METHODS[method])
+    KernelCache.for_environment().load(case.model, METHODS[method])
     integrate_fixed_compiled(small.model, small.design, METHODS[method], STEP,
                              STEPS_PER_REPORT, 2, case.newton, 0.01)
     return time.perf_counter() - began

@@ -19,10 +19,11 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from ensemble.integrate.refine import step_error
-from ensemble.integrate.compiled import (integrate_fixed_compiled, kernel_path,
-                                         kernel_threads, load_kernel, set_kernel_threads,
-                                         step_error_compiled)
-from ensemble.integrate.codegen import KernelSource
+from ensemble.integrate.kernels.blocks import block_size
+from ensemble.integrate.kernels.cache import KernelCache
+from ensemble.integrate.kernels.launch import (integrate_fixed_compiled, kernel_threads,
+                                               set_kernel_threads, step_error_compiled)
+from ensemble.integrate.kernels.source import KernelSource
 from ensemble.methods import METHODS
 from ensemble.integrate.reference import integrate_fixed
 from ensemble.model.lower import lower_model
@@ -218,7 +219,7 @@ def test_step_check_compared_in_the_kernel_has_the_bits_of_step_error(two_group,
         model, design, METHODS[method], half, int(round(float(solver.report_every) / half)),
         scenario.n_reports, solver.newton, solver.check.atol, coarse.state, 2,
         METHODS[method].order, 1e-3)
-    assert design.members.size % load_kernel(model, METHODS[method])[1].block != 0
+    assert design.members.size % block_size(model, METHODS[method]) != 0
     assert np.array_equal(error, expected, equal_nan=True)
     assert np.isnan(error[[3, 5]]).all() and np.isfinite(np.delete(error, [3, 5])).all()
     assert (error > 0).any()
@@ -287,13 +288,14 @@ def test_second_process_loads_kernel_from_disk_without_compiling(tmp_path):
         from ensemble.model.lower import lower_model
         from ensemble.sampling import make_design
         from ensemble.methods import METHODS
-        from ensemble.integrate.compiled import integrate_fixed_compiled, load_kernel
+        from ensemble.integrate.kernels.cache import KernelCache
+        from ensemble.integrate.kernels.launch import integrate_fixed_compiled
         scenario = load_scenario({str(scenario_path)!r}, members=8)
         model = lower_model(scenario, scenario.variants[0])
         design = make_design(scenario, scenario.variants[0], model, np.arange(8))
         integrate_fixed_compiled(model, design, METHODS["forward-euler"], 0.25, 4, 3,
                                  scenario.solver.newton, 0.01)
-        module, _ = load_kernel(model, METHODS["forward-euler"])
+        module, _ = KernelCache.for_environment().load(model, METHODS["forward-euler"])
         print(sum(module.integrate.stats.cache_hits.values()),
               sum(module.integrate.stats.cache_misses.values()))
     """)
@@ -316,12 +318,13 @@ def test_kernel_text_is_keyed_by_its_content(two_group):
     """Different methods give different kernel files; the same model and method the same
     file, whose text holds only generated identifiers and float literals."""
     _, model, _ = two_group
+    cache = KernelCache.for_environment()
     rk4, heun = KernelSource(model, METHODS["rk4"]), KernelSource(model, METHODS["heun"])
-    assert kernel_path(rk4) != kernel_path(heun)
-    assert kernel_path(rk4) == kernel_path(KernelSource(model, METHODS["rk4"]))
+    assert cache.path(rk4) != cache.path(heun)
+    assert cache.path(rk4) == cache.path(KernelSource(model, METHODS["rk4"]))
     assert "beta" not in rk4.text and "import os" not in rk4.text
-    module, source = load_kernel(model, METHODS["rk4"])
-    assert kernel_path(source).read_text() == source.text
+    module, source = cache.load(model, METHODS["rk4"])
+    assert cache.path(source).read_text() == source.text
 
 
 @pytest.mark.parametrize("method", ["backward-euler", "trapezoid"])

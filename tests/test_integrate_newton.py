@@ -1,7 +1,7 @@
 """The Newton solve of the implicit methods: the block LU of the compiled kernels and the
 Newton iteration of both backends.
 
-The linear-algebra functions of :mod:`ensemble.integrate.codegen` are plain Python before
+The linear-algebra functions of :mod:`ensemble.integrate.kernels` are plain Python before
 numba compiles them into a kernel, so they are run here as they are, on small blocks.
 """
 
@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from ensemble.integrate.codegen import (elimination_order, factor_block, factor_pattern,
-                                        solve_factored)
-from ensemble.integrate.compiled import integrate_fixed_compiled
+from ensemble.integrate.kernels.block_lu import factor_block, solve_factored
+from ensemble.integrate.kernels.launch import integrate_fixed_compiled
+from ensemble.integrate.kernels.sparsity import elimination_order, factor_pattern
 from ensemble.methods import METHODS
 from ensemble.records import NEWTON_NOT_CONVERGED
 from ensemble.integrate.reference import SHARED_MATRIX_ITERATIONS, integrate_fixed

@@ -143,7 +143,7 @@ def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -
     """The engine's contract (ensemble/run/execute.py): a worker writes chunk after chunk
     into the same arrays (ReportBuffers); each chunk has the bits it has in fresh arrays,
     including a last, shorter chunk, whatever was left in the arrays before."""
-    from ensemble.integrate.compiled import ReportBuffers
+    from ensemble.integrate.kernels.launch import ReportBuffers
 
     scenario = load_scenario(write_scenario(tmp_path, members=40))
     model = lower_model(scenario, scenario.variants[1])

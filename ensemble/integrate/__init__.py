@@ -1,7 +1,7 @@
 """Fixed-step integration of chunks of members, with the per-member step check.
 
 ``chunk`` is the entry point (:func:`integrate_chunk`); ``reference`` the readable numpy
-stepper whose arithmetic defines the results; ``refine`` the step check; ``compiled`` the
+stepper whose arithmetic defines the results; ``refine`` the step check; ``kernels`` the
 compiled backend (generated numba kernels), imported only when asked for.
 """
 

@@ -2,7 +2,7 @@
 
 The entry point of the integrate layer.  :func:`integrate_chunk` runs the chunk with the
 chosen backend (the numpy reference, :mod:`ensemble.integrate.reference`, or the
-generated kernels, :mod:`ensemble.integrate.compiled`), reruns it at the refined
+generated kernels, :mod:`ensemble.integrate.kernels.launch`), reruns it at the refined
 steps the step check asks for, and gathers everything in a
 :class:`~ensemble.records.ChunkResult` (:mod:`ensemble.integrate.refine` computes the
 check itself).
@@ -27,7 +27,7 @@ from ensemble.scenario.schema import Solver
 
 __all__ = ["integrate_chunk"]
 
-COMPILED_MODULE = "ensemble.integrate.compiled"
+COMPILED_MODULE = "ensemble.integrate.kernels.launch"
 """The compiled backend, imported on first use (it loads numba)."""
 
 
@@ -61,9 +61,9 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
     solver : method, step, report interval, step check and Newton settings.
     n_reports : reported times, t = 0 included.
     backend : "numpy" (:func:`ensemble.integrate.reference.integrate_fixed`) or
-        "compiled" (``ensemble.integrate.compiled.integrate_fixed_compiled``, same
+        "compiled" (``ensemble.integrate.kernels.launch.integrate_fixed_compiled``, same
         signature and semantics).
-    buffers : an ``ensemble.integrate.compiled.ReportBuffers`` whose arrays the
+    buffers : an ``ensemble.integrate.kernels.launch.ReportBuffers`` whose arrays the
         compiled backend's runs write into (ignored by the numpy backend).  The
         trajectories of the result are then views of them, valid until the next call
         with the same buffers.

@@ -30,7 +30,7 @@ from distributed import Client, Future, as_completed
 
 from ensemble.integrate.chunk import integrate_chunk
 from ensemble.records import ChunkResult
-from ensemble.integrate.codegen import block_size
+from ensemble.integrate.kernels.blocks import block_size
 from ensemble.errors import RunFailed, StoreWriteError
 from ensemble.methods import METHODS
 from ensemble.model.lower import LoweredModel, lower_model
@@ -93,7 +93,7 @@ def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
     them, to be used before the next chunk.
     """
     if kernel_threads is not None and backend == "compiled":
-        from ensemble.integrate.compiled import set_kernel_threads
+        from ensemble.integrate.kernels.launch import set_kernel_threads
 
         set_kernel_threads(kernel_threads)
     variant, start, end = key
@@ -131,13 +131,13 @@ _workspace = threading.local()
 
 
 def _thread_buffers(backend: str):
-    """This thread's :class:`~ensemble.integrate.compiled.ReportBuffers` (None for the
+    """This thread's :class:`~ensemble.integrate.kernels.launch.ReportBuffers` (None for the
     numpy backend): a worker's chunks are saved one after another, each before the next
     is computed, so they can all be written into the same arrays."""
     if backend != "compiled":
         return None
     if not hasattr(_workspace, "buffers"):
-        from ensemble.integrate.compiled import ReportBuffers
+        from ensemble.integrate.kernels.launch import ReportBuffers
 
         _workspace.buffers = ReportBuffers()
     return _workspace.buffers

@@ -31,7 +31,7 @@ about a millisecond a task while keeping the load balanced."""
 
 MAX_CHUNK_BYTES = 96 * 2**20
 """Largest trajectory block (states and flow counts of every member of a chunk) of one
-task: a worker holds two such blocks (the run and its check, :class:`~ensemble.integrate.compiled.ReportBuffers`) and
+task: a worker holds two such blocks (the run and its check, :class:`~ensemble.integrate.kernels.launch.ReportBuffers`) and
 one chunk at a time, so memory stays within a few hundred MB a worker, while tasks stay
 large enough that their fixed costs (scheduling, opening files, setting up the draws)
 fade (measured: 4,608-member SEIR chunks finish a 200,000-member run 7-10 % sooner than
@@ -119,7 +119,7 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
     workers : number of worker processes the run uses.
     backend : the integration backend (``"numpy"`` or ``"compiled"``).
     block : members per block of the backend's kernel
-        (:func:`ensemble.integrate.codegen.block_size`); 1 for none.
+        (:func:`ensemble.integrate.kernels.blocks.block_size`); 1 for none.
     """
     check = scenario.solver.check
     runs = 1
