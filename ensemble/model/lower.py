@@ -7,16 +7,16 @@ Jacobian with respect to the state is ``stoichiometry @ d rates / d y``.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Literal, Union
+from typing import Literal
 
 import numpy as np
 
+from ensemble.model.constants import ConstantTrees, lower_constants, time_varying_parameters
 from ensemble.model.derivatives import partial_derivatives
-from ensemble.model.ir import (Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef,
-                               apply)
-from ensemble.scenario.expressions import Call, Name, Negate, Node, Number
+from ensemble.model.ir import Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef
+from ensemble.model.lowering import (ExpressionLowering, Matrix, Value, Vector,
+                                     constant_matrix, fold_sum)
 from ensemble.scenario.schema import Derived, Parameter, Scenario, Schedule, Variant
 
 
@@ -59,6 +59,9 @@ class LoweredModel:
     schedule_slots : the rows of time-varying values (:class:`ScheduleSlot`).
     population : (n_groups,) float64.
     closed : True when no flow enters or leaves the model (population conserved).
+    constants : the values constant in time per member: the parameter slots, the
+        schedule values at their knots and the initial counts, as trees of the drawn and
+        given values (:mod:`ensemble.model.constants`).
     """
 
     compartments: tuple[str, ...]
@@ -73,6 +76,7 @@ class LoweredModel:
     schedule_slots: tuple[ScheduleSlot, ...]
     population: np.ndarray
     closed: bool
+    constants: ConstantTrees
 
     @property
     def n_states(self) -> int:
@@ -90,11 +94,10 @@ def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
     become state rows, parameters constant in time become per-member slots (only those a
     rate uses, in file order), schedules become schedule slots, and derived parameters
     that vary in time (or are matrices) are substituted into the rates.  Matrices are
-    constants; their zero entries are dropped from ``@`` products and stay zero under
-    ``scalar * matrix`` (even for an infinite scalar: a zero contact is no contact).
+    constants whose zero entries are structural (:mod:`ensemble.model.lowering`).
     Constants are folded in float64 (:func:`ensemble.model.ir.apply`).
     """
-    lowering = _Lowering(scenario, variant)
+    lowering = _RateLowering(scenario, variant)
     model = scenario.model
     n_groups = model.n_groups
     rates: list[ScalarNode] = []
@@ -122,28 +125,10 @@ def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
         population=_read_only(np.asarray(model.population, dtype=np.float64)),
         closed=all(flow.source is not None and flow.target is not None
                    for flow in model.flows),
+        constants=lower_constants(scenario, variant, lowering.slot_elements,
+                                  [(slot.parameter, slot.element)
+                                   for slot in lowering.schedule_slots]),
     )
-
-
-def time_varying_parameters(parameters: Mapping[str, Parameter]) -> frozenset[str]:
-    """Names of the parameters whose value changes with time: schedules, and derived
-    parameters that use ``t`` or another time-varying parameter (directly or not)."""
-    varying: dict[str, bool] = {}
-
-    def is_varying(name: str) -> bool:
-        if name not in varying:
-            form = parameters[name].form
-            if isinstance(form, Schedule):
-                varying[name] = True
-            elif isinstance(form, Derived):
-                names = form.expression.names
-                varying[name] = "t" in names or any(
-                    is_varying(n) for n in names if n in parameters)
-            else:
-                varying[name] = False
-        return varying[name]
-
-    return frozenset(name for name in parameters if is_varying(name))
 
 
 def _element_labels(names: tuple[str, ...], groups: tuple[str, ...] | None) -> list[str]:
@@ -158,62 +143,54 @@ def _read_only(array: np.ndarray) -> np.ndarray:
     return array
 
 
-@dataclass(frozen=True)
-class _Vector:
-    """A value over groups during lowering: one scalar tree per group."""
-
-    items: tuple[ScalarNode, ...]
-
-
-@dataclass(frozen=True)
-class _Matrix:
-    """A G x G value during lowering; None marks an entry known to be zero."""
-
-    rows: tuple[tuple[ScalarNode | None, ...], ...]
-
-
-_Value = Union[ScalarNode, _Vector, _Matrix]
-
-_BINARY_OPS = {"+": "add", "-": "sub", "*": "mul", "/": "div", "**": "pow"}
-
-
-class _Lowering:
-    """Turns one variant's vector-level expression trees into scalar IR trees."""
+class _RateLowering(ExpressionLowering):
+    """Names in rates: compartments and ``N`` are state rows, ``t`` the time, parameters
+    constant in time per-member slots, schedules schedule slots; derived parameters that
+    vary in time (or are matrices) are substituted."""
 
     def __init__(self, scenario: Scenario, variant: Variant):
         model = scenario.model
+        super().__init__(model.n_groups)
         self._groups = model.groups
-        self._n_groups = model.n_groups
         self._grouped = bool(model.groups)
         self._compartments = {name: i for i, name in enumerate(model.compartments)}
         in_n = [self._compartments[c] for c in model.compartments
                 if c not in model.exclude_from_N]
-        self._n_total = tuple(_fold_sum([StateRef(c * self._n_groups + g) for c in in_n])
-                              for g in range(self._n_groups))
+        self._n_total = tuple(fold_sum([StateRef(c * self.n_groups + g) for c in in_n])
+                              for g in range(self.n_groups))
         self._parameters = scenario.variant_parameters(variant)
         self._matrices = scenario.variant_matrices(variant)
         self._varying = time_varying_parameters(self._parameters)
-        self._values: dict[str, _Value] = {}
-        used = self._parameters_used([flow.rate.names for flow in model.flows])
+        self._values: dict[str, Value] = {}
         self._slot_start: dict[str, int] = {}
         self._schedule_start: dict[str, int] = {}
-        slots: list[str] = []
+        self.parameter_slots: tuple[str, ...] = ()
+        self.slot_elements: tuple[tuple[str, int], ...] = ()
+        self.schedule_slots: tuple[ScheduleSlot, ...] = ()
+        self._number_slots(self._parameters_used([flow.rate.names for flow in model.flows]))
+
+    def _number_slots(self, used: set[str]) -> None:
+        """Rows of the per-member parameters and of the schedules, file order."""
+        groups = self._groups
+        slots: list[tuple[str, int]] = []
         schedules: list[ScheduleSlot] = []
         for name, parameter in self._parameters.items():
             if name not in used or self._inlined(name):
                 continue
-            labels = self._labels(name, parameter)
+            elements = range(self.n_groups if parameter.shape == "vector" else 1)
             if isinstance(parameter.form, Schedule):
                 self._schedule_start[name] = len(schedules)
                 days = np.array([float(d) for d in parameter.form.days], dtype=np.float64)
                 schedules.extend(
-                    ScheduleSlot(label, name, element, _read_only(days.copy()),
-                                 parameter.form.between)
-                    for element, label in enumerate(labels))
+                    ScheduleSlot(_slot_label(name, parameter, groups, g), name, g,
+                                 _read_only(days.copy()), parameter.form.between)
+                    for g in elements)
             else:
                 self._slot_start[name] = len(slots)
-                slots.extend(labels)
-        self.parameter_slots = tuple(slots)
+                slots.extend((name, g) for g in elements)
+        self.slot_elements = tuple(slots)
+        self.parameter_slots = tuple(_slot_label(name, self._parameters[name], groups, g)
+                                     for name, g in slots)
         self.schedule_slots = tuple(schedules)
 
     def _inlined(self, name: str) -> bool:
@@ -235,43 +212,15 @@ class _Lowering:
                 pending.extend(self._parameters[name].form.expression.names)
         return used
 
-    def _labels(self, name: str, parameter: Parameter) -> list[str]:
-        if parameter.shape == "vector":
-            return _element_labels((name,), self._groups)
-        return [name]
-
-    # -------------------------------------------------------------------- lowering
-
-    def elements(self, value: _Value, key: str) -> list[ScalarNode]:
+    def elements(self, value: Value, key: str) -> list[ScalarNode]:
         """The per-group scalar trees of a rate (one tree without groups)."""
-        if self._grouped and isinstance(value, _Vector):
+        if self._grouped and isinstance(value, Vector):
             return list(value.items)
-        if not self._grouped and not isinstance(value, (_Vector, _Matrix)):
+        if not self._grouped and not isinstance(value, (Vector, Matrix)):
             return [value]
         raise ValueError(f"{key}: a rate must be a {'vector' if self._grouped else 'scalar'}")
 
-    def lower(self, node: Node) -> _Value:
-        """The scalar IR of expression ``node``."""
-        if isinstance(node, Number):
-            return Const(float(node.value))
-        if isinstance(node, Name):
-            return self._name(node.id)
-        if isinstance(node, Negate):
-            return self._map("neg", self.lower(node.operand))
-        if isinstance(node, Call):
-            args = [self.lower(a) for a in node.args]
-            if node.function == "sum":
-                return _fold_sum(list(_vector_items(args[0])))
-            return self._elementwise(node.function, args)
-        left, right = self.lower(node.left), self.lower(node.right)
-        if node.op == "@":
-            return self._matrix_times_vector(left, right)
-        op = _BINARY_OPS[node.op]
-        if isinstance(left, _Matrix) or isinstance(right, _Matrix):
-            return self._matrix_arithmetic(op, left, right)
-        return self._elementwise(op, [left, right])
-
-    def _name(self, name: str) -> _Value:
+    def name(self, name: str) -> Value:
         if name == "t":
             return TimeRef()
         if name == "pi":
@@ -279,20 +228,19 @@ class _Lowering:
         if name == "N":
             return self._grouped_value(self._n_total)
         if name in self._compartments:
-            first = self._compartments[name] * self._n_groups
+            first = self._compartments[name] * self.n_groups
             return self._grouped_value(tuple(StateRef(first + g)
-                                             for g in range(self._n_groups)))
+                                             for g in range(self.n_groups)))
         if name in self._matrices:
-            return _Matrix(tuple(tuple(Const(float(v)) if v != 0 else None for v in row)
-                                 for row in self._matrices[name]))
+            return constant_matrix(self._matrices[name])
         if name not in self._values:
             self._values[name] = self._parameter(name)
         return self._values[name]
 
-    def _grouped_value(self, items: tuple[ScalarNode, ...]) -> _Value:
-        return _Vector(items) if self._grouped else items[0]
+    def _grouped_value(self, items: tuple[ScalarNode, ...]) -> Value:
+        return Vector(items) if self._grouped else items[0]
 
-    def _parameter(self, name: str) -> _Value:
+    def _parameter(self, name: str) -> Value:
         parameter = self._parameters[name]
         if self._inlined(name):
             return self.lower(parameter.form.expression.tree)
@@ -301,67 +249,13 @@ class _Lowering:
         else:
             start, ref = self._slot_start[name], ParamRef
         if parameter.shape == "vector":
-            return _Vector(tuple(ref(start + g) for g in range(self._n_groups)))
+            return Vector(tuple(ref(start + g) for g in range(self.n_groups)))
         return ref(start)
 
-    def _map(self, op: str, value: _Value) -> _Value:
-        if isinstance(value, _Matrix):
-            return _Matrix(tuple(tuple(None if v is None else apply(op, v) for v in row)
-                                 for row in value.rows))
-        return self._elementwise(op, [value])
 
-    def _elementwise(self, op: str, args: list[_Value]) -> _Value:
-        """``op`` on scalars and vectors, scalars broadcast over groups."""
-        if not any(isinstance(a, _Vector) for a in args):
-            return apply(op, *args)
-        columns = [a.items if isinstance(a, _Vector) else (a,) * self._n_groups for a in args]
-        return _Vector(tuple(apply(op, *items) for items in zip(*columns)))
-
-    def _matrix_arithmetic(self, op: str, left: _Value, right: _Value) -> _Matrix:
-        """matrix +- matrix, scalar * matrix, matrix * scalar, matrix / scalar."""
-        if isinstance(left, _Matrix) and isinstance(right, _Matrix):
-            return _Matrix(tuple(tuple(_entry_sum(op, a, b) for a, b in zip(ra, rb))
-                                 for ra, rb in zip(left.rows, right.rows)))
-        matrix, scalar = (left, right) if isinstance(left, _Matrix) else (right, left)
-        if isinstance(scalar, _Vector):
-            raise ValueError("a matrix combines only with a scalar or a matrix")
-
-        def entry(v: ScalarNode | None) -> ScalarNode | None:
-            if v is None:
-                return None
-            return apply(op, v, scalar) if matrix is left else apply(op, scalar, v)
-
-        return _Matrix(tuple(tuple(entry(v) for v in row) for row in matrix.rows))
-
-    @staticmethod
-    def _matrix_times_vector(matrix: _Value, vector: _Value) -> _Vector:
-        if not isinstance(matrix, _Matrix) or not isinstance(vector, _Vector):
-            raise ValueError("'@' takes a matrix and a vector")
-        return _Vector(tuple(
-            _fold_sum([apply("mul", m, v) for m, v in zip(row, vector.items) if m is not None])
-            for row in matrix.rows))
-
-
-def _vector_items(value: _Value) -> tuple[ScalarNode, ...]:
-    if not isinstance(value, _Vector):
-        raise ValueError("sum() takes a vector over groups")
-    return value.items
-
-
-def _entry_sum(op: str, a: ScalarNode | None, b: ScalarNode | None) -> ScalarNode | None:
-    """Entry of matrix +- matrix, a None entry being zero."""
-    if b is None:
-        return a
-    if a is None:
-        return b if op == "add" else apply("neg", b)
-    return apply(op, a, b)
-
-
-def _fold_sum(terms: list[ScalarNode]) -> ScalarNode:
-    """Left-to-right sum of ``terms`` (0 for none)."""
-    if not terms:
-        return Const(0.0)
-    total = terms[0]
-    for term in terms[1:]:
-        total = apply("add", total, term)
-    return total
+def _slot_label(name: str, parameter: Parameter, groups: tuple[str, ...] | None,
+                element: int) -> str:
+    """``name``, or ``name[group]`` for an element of a parameter over groups."""
+    if parameter.shape == "vector" and groups:
+        return f"{name}[{groups[element]}]"
+    return name

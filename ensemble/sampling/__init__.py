@@ -4,8 +4,8 @@ The distribution families themselves are :mod:`ensemble.distributions`.
 
 - :mod:`~ensemble.sampling.uniform`: one uniform column per uncertain parameter element
   (random, Latin hypercube, Sobol'), independent of chunking;
-- :mod:`~ensemble.sampling.evaluate`: numpy evaluation of vector-level expressions;
-- :mod:`~ensemble.sampling.design`: :class:`Design` and :func:`make_design`.
+- :mod:`~ensemble.sampling.design`: :class:`Design` and :func:`make_design` (derived
+  values and initial states through the model's values constant in time).
 """
 
 from ensemble.sampling.design import Design, make_design
