@@ -24,13 +24,8 @@ from ensemble.model.lower import LoweredModel
 from ensemble.model.lowering import Vector
 from ensemble.model.numpy_program import NumpyProgram
 from ensemble.sampling.uniform import uniform_draws
-from ensemble.scenario.schema import Distribution, Fixed, Parameter, Scenario, Variant
-
-INITIAL_RTOL = 1e-9
-"""Relative tolerance (of the group's population) of the initial-state sums: a "rest"
-this little below zero is zero, and without "rest" the starts must add up to the
-population within it (SPEC section 1, ``initial``)."""
-
+from ensemble.scenario.schema import (INITIAL_SUM_RTOL, Distribution, Fixed, Parameter,
+                                      Scenario, Variant)
 
 @dataclass(frozen=True)
 class Design:
@@ -145,8 +140,8 @@ def initial_state(scenario: Scenario, counts_by_compartment: Sequence[np.ndarray
     ``counts_by_compartment`` gives each compartment's (G, M) counts in order, None for the
     one that takes the rest.  A start is impossible when a count is negative or not
     finite, when the counts other than "rest" exceed the group's population, or (without
-    "rest") when they do not add up to it within :data:`INITIAL_RTOL`.  Such members hold
-    NaN.
+    "rest") when they do not add up to it within
+    :data:`~ensemble.scenario.schema.INITIAL_SUM_RTOL`.  Such members hold NaN.
     """
     model = scenario.model
     n_groups = model.n_groups
@@ -159,7 +154,7 @@ def initial_state(scenario: Scenario, counts_by_compartment: Sequence[np.ndarray
         else:
             counts[c] = given
     assigned = _ordered_sum(counts)
-    tolerance = INITIAL_RTOL * population
+    tolerance = INITIAL_SUM_RTOL * population
     if rest is not None:
         left = population - assigned
         counts[rest] = np.where((left < 0) & (left >= -tolerance), 0.0, left)

@@ -35,17 +35,14 @@ from ensemble.scenario import expressions
 from ensemble.errors import ScenarioError, ScenarioErrors, did_you_mean
 from ensemble.scenario.expressions import ExpressionError, Node
 from ensemble.scenario.schema import (
-    Compute, Derived, Distribution, Expression, Fixed, Flow, InitialValue, Matrix, Model,
-    Newton, Output, Parameter, ParameterForm, Rest, Scenario, Schedule, Shape, Solver,
+    INITIAL_SUM_RTOL, Compute, Derived, Distribution, Expression, Fixed, Flow, InitialValue,
+    Matrix, Model, Newton, Output, Parameter, ParameterForm, Rest, Scenario, Schedule, Shape, Solver,
     Source, StepCheck, Variant,
 )
 
 SAMPLING_METHODS = ("random", "latin-hypercube", "sobol")
 
 DEFAULT_QUANTILES = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
-
-INITIAL_SUM_RTOL = 1e-9
-"""Relative tolerance for initial values that must add up to the population."""
 
 _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _LABEL = re.compile(r"[A-Za-z0-9_-]+")

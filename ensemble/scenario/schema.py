@@ -54,6 +54,12 @@ InitialValue = Union[Rest, float, tuple[float, ...], Expression]
 """An initial count: ``"rest"``, a number, one number per group, or an expression of
 parameters (scalar, or a vector over groups)."""
 
+INITIAL_SUM_RTOL = 1e-9
+"""Relative tolerance (of a group's population) of the initial counts' sums: the loader
+refuses given counts above the population by more, a "rest" this little below zero is
+zero, and without "rest" the counts must add up to the population within it (the
+project's reference, ``ensemble/scenario/reference.md``, ``initial``)."""
+
 Matrix = tuple[tuple[float, ...], ...]
 """A G x G matrix of numbers, row-major."""
 
