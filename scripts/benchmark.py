@@ -62,16 +62,16 @@ GROUPS = 16
 BLOCK = 512
 """Members per block of the reference kernels (a multiple of the SIMD width)."""
 
-def seir_scenario(members: int, method: str = "rk4", step: float = STEP) -> str:
+def seir_scenario(n_members: int, method: str = "rk4", step: float = STEP) -> str:
     """The illustrative SEIR of :func:`ensemble.examples.seir_text` (invented numbers), as
     the benchmark runs it: a year, a large town, members not kept in the result."""
-    return seir_text(members=members, days=DAYS, method=method, step=step,
+    return seir_text(members=n_members, days=DAYS, method=method, step=step,
                      population=250000, seed=6, keep_members=False,
                      output="benchmark-seir.nc", name="benchmark-seir",
                      title="Illustrative SEIR for the benchmark (invented numbers)")
 
 
-def age_scenario(members: int, method: str) -> str:
+def age_scenario(n_members: int, method: str) -> str:
     """A 16-group SEIR with an invented contact matrix that decays away from the
     diagonal (illustrative only)."""
     groups = [f"age{g}" for g in range(GROUPS)]
@@ -85,7 +85,7 @@ def age_scenario(members: int, method: str) -> str:
 name = "benchmark-age"
 title = "Illustrative 16-group SEIR for the benchmark (invented numbers)"
 days = {DAYS}
-members = {members}
+members = {n_members}
 seed = 16
 
 [model]
@@ -284,17 +284,17 @@ def best_time(action: Callable[[], object], repeats: int = 3) -> float:
 
 
 class Case:
-    """One model: its scenario, compiled model and a design of ``members`` members."""
+    """One model: its scenario, lowered model and a design of ``n_members`` members."""
 
-    def __init__(self, directory: Path, name: str, text: str, members: int):
+    def __init__(self, directory: Path, name: str, text: str, n_members: int):
         path = directory / f"{name}.toml"
         path.write_text(text)
         self.scenario = load_scenario(str(path))
         self.variant = self.scenario.variants[0]
         self.model = lower_model(self.scenario, self.variant)
-        self.members = members
+        self.n_members = n_members
         self.design = make_design(self.scenario, self.variant, self.model,
-                                  np.arange(members))
+                                  np.arange(n_members))
         self.n_reports = self.scenario.n_reports
         self.steps = (self.n_reports - 1) * STEPS_PER_REPORT
         self.newton = self.scenario.solver.newton
@@ -313,7 +313,7 @@ class Case:
             design, members=design.members[rows], parameters=design.parameters[:, rows],
             initial=design.initial[:, rows], invalid_start=design.invalid_start[rows],
             schedule_values=tuple(v[:, rows] for v in design.schedule_values))
-        part.members = count
+        part.n_members = count
         return part
 
     def backend_rate(self, integrate, method: str = "rk4") -> float:
@@ -321,7 +321,7 @@ class Case:
         seconds = best_time(lambda: integrate(self.model, self.design, METHODS[method], STEP,
                                               STEPS_PER_REPORT, self.n_reports, self.newton,
                                               0.01))
-        return self.members * self.steps / seconds
+        return self.n_members * self.steps / seconds
 
     def solve_ivp_seconds_per_member(self, sample: int) -> float:
         """Wall time per member of solve_ivp (RK45, rtol 1e-8) with a numpy right-hand
@@ -359,24 +359,23 @@ class Case:
     def reference_rate(self, step: float = STEP, steps_per_report: int = STEPS_PER_REPORT,
                        buffers=None) -> float:
         """Member-steps per second of the hand-written reference kernel (d)."""
-        members = self.members - self.members % BLOCK
-        state = np.empty((self.n_reports, self.model.n_states, members))
-        flows = np.empty((self.n_reports, self.model.n_flow_elements, members))
-        y0 = np.ascontiguousarray(self.design.initial[:, :members])
+        n_members = self.n_members - self.n_members % BLOCK
+        state = np.empty((self.n_reports, self.model.n_states, n_members))
+        flows = np.empty((self.n_reports, self.model.n_flow_elements, n_members))
+        y0 = np.ascontiguousarray(self.design.initial[:, :n_members])
+        latent, infectious = (self.parameter(name)[:n_members]
+                              for name in ("latent_days", "infectious_days"))
         if self.model.n_groups == 1:
-            args = (y0, self.parameter("beta")[:members], self.parameter("latent_days")[:members],
-                    self.parameter("infectious_days")[:members], step, steps_per_report,
-                    self.n_reports, state, flows)
+            args = (y0, self.parameter("beta")[:n_members], latent, infectious, step,
+                    steps_per_report, self.n_reports, state, flows)
             kernel = seir_reference
         else:
             contacts = np.array(self.scenario.model.matrices["contacts"])
-            args = (y0, self.parameter("transmissibility")[:members],
-                    self.parameter("latent_days")[:members],
-                    self.parameter("infectious_days")[:members], contacts, step,
-                    steps_per_report, self.n_reports, state, flows)
+            args = (y0, self.parameter("transmissibility")[:n_members], latent, infectious,
+                    contacts, step, steps_per_report, self.n_reports, state, flows)
             kernel = age_reference
         seconds = best_time(lambda: kernel(*args))
-        return members * (self.n_reports - 1) * steps_per_report / seconds
+        return n_members * (self.n_reports - 1) * steps_per_report / seconds
 
 
 def compile_seconds(case: Case, method: str) -> float:
@@ -393,7 +392,7 @@ def compile_seconds(case: Case, method: str) -> float:
 def report_model(title: str, case: Case, sample: int, numpy_case: Case) -> float:
     """Print (a)-(d) for one model; return the reference rate."""
     print(f"\n== {title}: {case.model.n_states} states, {DAYS} days, step {STEP}, RK4, "
-          f"{case.members} members ==")
+          f"{case.n_members} members ==")
     print(f"compile (or load) the rk4 kernel: {compile_seconds(case, 'rk4'):.1f} s")
     reference = case.reference_rate()
     compiled = case.backend_rate(integrate_fixed_compiled)
@@ -418,9 +417,9 @@ def report_model(title: str, case: Case, sample: int, numpy_case: Case) -> float
 def report_implicit(case: Case) -> None:
     """Cost per step of the implicit methods relative to RK4, compiled backend."""
     print(f"\n== implicit methods, compiled, {case.model.n_states} states, "
-          f"{case.members} members ==")
+          f"{case.n_members} members ==")
     rk4 = case.backend_rate(integrate_fixed_compiled, "rk4")
-    for method in ("backward-euler", "trapezoid"):
+    for method in (name for name, method in METHODS.items() if method.implicit):
         seconds = compile_seconds(case, method)
         rate = case.backend_rate(integrate_fixed_compiled, method)
         print(f"{method:15s} compile {seconds:6.1f} s, {rate:10.3e} member-steps/s, "
@@ -476,16 +475,16 @@ def measure_run(command: list[str], directory: Path) -> RunMeasure:
     return RunMeasure(wall, lines, watch, process.returncode)
 
 
-def report_end_to_end(directory: Path, members: int, case: Case, reference: float,
+def report_end_to_end(directory: Path, n_members: int, case: Case, reference: float,
                       repeats: int = 3) -> None:
-    """``ensemble run`` on ``members`` SEIR members against (d) doing the same steps, with
+    """``ensemble run`` on ``n_members`` SEIR members against (d) doing the same steps, with
     the times at which the run's progress lines appear (planned, every chunk saved); the
     fastest of ``repeats`` runs, as every figure here is a best of a few.  The reference
     rate is the faster of (d) measured before (``reference``) and right after the runs
     on ``case``: the machine's speed drifts, and the faster reference gives the stricter
     ratio."""
     path = directory / "run.toml"
-    path.write_text(seir_scenario(members))
+    path.write_text(seir_scenario(n_members))
     command = [sys.executable, "-m", "ensemble", "run", str(path), "--force",
                "--backend", "compiled", "--output", str(directory / "run.nc")]
     runs = [measure_run(command, directory) for _ in range(repeats)]
@@ -494,8 +493,8 @@ def report_end_to_end(directory: Path, members: int, case: Case, reference: floa
     reference = max(reference, case.reference_rate())
     # the run at h and the step check at h/2: 1 + 2 = 3 times the steps of one run
     steps = DAYS * STEPS_PER_REPORT
-    reference_seconds = members * steps * 3 / reference
-    print(f"\n== end to end: ensemble run --backend compiled, {members} SEIR members, "
+    reference_seconds = n_members * steps * 3 / reference
+    print(f"\n== end to end: ensemble run --backend compiled, {n_members} SEIR members, "
           "members = false, step check on (h and h/2) ==")
     print(f"exit status {best.returncode}, wall {wall:.1f} s (fastest of "
           f"{', '.join(f'{run.wall:.1f}' for run in runs)} s), peak memory of the process "

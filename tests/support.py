@@ -23,6 +23,7 @@ from ensemble.methods import METHODS
 from ensemble.integrate.reference import Trajectory, integrate_fixed
 from ensemble.model.lower import LoweredModel, lower_model
 from ensemble.output.layout import ResultLayout
+from ensemble.run.layout import lowered_models, result_layout
 from ensemble.records import INVALID_START, NON_FINITE, STEP_CHECK_FAILED, ChunkResult
 from ensemble.sampling import Design, make_design
 from ensemble.scenario.load import load_scenario
@@ -30,7 +31,8 @@ from ensemble.scenario.schema import Scenario
 
 REPO = Path(__file__).resolve().parent.parent
 
-IMPLICIT = ("backward-euler", "trapezoid")
+IMPLICIT = tuple(name for name, method in METHODS.items() if method.implicit)
+"""The methods of the registry that solve for the end of each step (theta methods)."""
 
 
 def load_text(directory: Path, text: str, name: str = "scenario",
@@ -406,9 +408,8 @@ def grouped_scenario(directory: Path, *, members: int = 6, start: bool = True,
 
 
 def layout_of(scenario: Scenario, fingerprint: str = "f" * 64) -> ResultLayout:
-    """The result layout of ``scenario`` (compiled for real: labels come from compile)."""
-    models = [lower_model(scenario, variant) for variant in scenario.variants]
-    return ResultLayout.from_scenario(scenario, models, fingerprint, "test history")
+    """The result layout of ``scenario`` (lowered for real: labels come from the model)."""
+    return result_layout(scenario, lowered_models(scenario), fingerprint, "test history")
 
 
 def made_up_members(layout: ResultLayout, variant: int, first: int, end: int
@@ -453,8 +454,8 @@ def made_up_members(layout: ResultLayout, variant: int, first: int, end: int
 def fill(store, layout: ResultLayout, chunk: int) -> None:
     """Save made-up members of every variant into ``store`` in chunks of ``chunk``."""
     for variant in range(len(layout.variants)):
-        for first in range(0, layout.members, chunk):
-            end = min(first + chunk, layout.members)
+        for first in range(0, layout.member_count, chunk):
+            end = min(first + chunk, layout.member_count)
             store.save((variant, first, end), *made_up_members(layout, variant, first, end))
 
 

@@ -1,9 +1,9 @@
 """The compiled backend against the numpy reference, scipy, and itself.
 
 The numpy stepper (:mod:`ensemble.integrate.reference`) is the readable statement of the
-arithmetic; the generated kernels must give the same numbers to 1e-12 relative (the
-contract of issue 6) for every method, with groups, a contact matrix, step and linear
-schedules and a time-varying derived parameter, including the status bits.
+arithmetic; the generated kernels must give the same numbers to 1e-12 relative for
+every method of the registry, with groups, a contact matrix, step and linear schedules
+and a time-varying derived parameter, including the status bits.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from scipy.integrate import solve_ivp
 
 from ensemble.integrate.refine import step_error
 from ensemble.integrate.kernels.blocks import block_size
-from ensemble.integrate.kernels.cache import KernelCache
+from ensemble.integrate.kernels.cache import KernelCache, cache_directory
 from ensemble.integrate.kernels.launch import (integrate_fixed_compiled, kernel_threads,
                                                set_kernel_threads, step_error_compiled)
 from ensemble.integrate.kernels.source import KernelSource
@@ -30,6 +30,7 @@ from ensemble.model.lower import lower_model
 from ensemble.records import INVALID_START, NON_FINITE
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
+from support import IMPLICIT
 
 # Illustrative model, invented numbers: two groups, a contact matrix, waning immunity, a
 # step schedule (school terms), a linear schedule (vaccination ramp), a seasonal derived
@@ -183,11 +184,10 @@ def _run(integrate, scenario, model, design, method, step=None):
                      solver.newton, solver.check.atol)
 
 
-@pytest.mark.parametrize("method", ["forward-euler", "heun", "rk4", "backward-euler",
-                                    "trapezoid"])
+@pytest.mark.parametrize("method", list(METHODS))
 def test_compiled_matches_numpy_reference(two_group, method):
-    """Same numbers as the numpy stepper to 1e-12 relative (issue 6), NaN where it has
-    NaN, and the same status bits, for every method."""
+    """Same numbers as the numpy stepper to 1e-12 relative, NaN where it has NaN, and
+    the same status bits, for every method."""
     scenario, model, design = two_group
     assert model.n_groups == 2 and {s.between for s in model.schedule_slots} == {"step",
                                                                                 "linear"}
@@ -232,14 +232,16 @@ def test_compiled_rk4_matches_scipy(tmp_path, cache):
     tau >= 2 days the shortest time scale here, (0.125)^4 = 2.4e-4 times a modest
     constant: 2e-5 relative is a loose bound (common practice, no source)."""
     scenario, model, design = _load(tmp_path, SEIR, "seir")
-    members = np.arange(0, 700, 100)
+    member_index = np.arange(0, 700, 100)
     subset = dataclasses.replace(
-        design, members=design.members[members], parameters=design.parameters[:, members],
-        initial=design.initial[:, members], invalid_start=design.invalid_start[members])
+        design, members=design.members[member_index],
+        parameters=design.parameters[:, member_index],
+        initial=design.initial[:, member_index],
+        invalid_start=design.invalid_start[member_index])
     trajectory = _run(integrate_fixed_compiled, scenario, model, subset, "rk4")
     slots = model.parameter_slots
     times = np.arange(scenario.n_reports, dtype=float)
-    for column in range(len(members)):
+    for column in range(len(member_index)):
         r0, latent, infectious = (subset.parameters[slots.index(name), column]
                                   for name in ("R0", "latent_days", "infectious_days"))
 
@@ -254,8 +256,9 @@ def test_compiled_rk4_matches_scipy(tmp_path, cache):
 
 
 def test_member_gets_same_bits_in_any_chunk_and_thread_count(tmp_path, cache):
-    """Determinism (SPEC section 1): a member's numbers do not depend on the chunk it is
-    in, its position in the block, the padding, or the number of kernel threads."""
+    """Determinism (the project's reference, ``ensemble/scenario/reference.md``): a
+    member's numbers do not depend on the chunk it is in, its position in the block, the
+    padding, or the number of kernel threads."""
     scenario, model, design = _load(tmp_path, SEIR, "seir")
 
     def chunk(start, stop):
@@ -327,10 +330,43 @@ def test_kernel_text_is_keyed_by_its_content(two_group):
     assert cache.path(source).read_text() == source.text
 
 
-@pytest.mark.parametrize("method", ["backward-euler", "trapezoid"])
+def test_cache_directory_follows_the_environment(monkeypatch, tmp_path):
+    """``ENSEMBLE_KERNEL_CACHE`` names the directory; without it the kernels go under
+    ``$XDG_CACHE_HOME``, whose default is ``~/.cache`` (XDG Base Directory Specification,
+    freedesktop.org, version 0.8); one cache object per directory in a process."""
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    monkeypatch.delenv("XDG_CACHE_HOME", raising=False)
+    monkeypatch.delenv("ENSEMBLE_KERNEL_CACHE", raising=False)
+    assert cache_directory() == tmp_path / "home" / ".cache" / "ensemble" / "kernels"
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
+    assert cache_directory() == tmp_path / "xdg" / "ensemble" / "kernels"
+    monkeypatch.setenv("ENSEMBLE_KERNEL_CACHE", str(tmp_path / "chosen"))
+    assert KernelCache.for_environment().directory == tmp_path / "chosen"
+    assert KernelCache.for_environment() is KernelCache.for_environment()
+
+
+def test_kernel_file_is_written_once_and_whole(two_group, tmp_path):
+    """A cache writes a kernel's file with no other file left beside it (no temporary;
+    the directories are Python's and numba's caches), and a second cache of the same directory (another process) finds the file and does
+    not rewrite it: numba keys its machine-code cache on the file's modification time."""
+    _, model, _ = two_group
+    directory = tmp_path / "kernels"
+    _, source = KernelCache(directory).load(model, METHODS["heun"])
+    written = KernelCache(directory).path(source)
+    assert [path.name for path in directory.iterdir() if path.is_file()] == [written.name]
+    assert written.read_text(encoding="utf-8") == source.text
+    before = written.stat()
+    module, _ = KernelCache(directory).load(model, METHODS["heun"])
+    after = written.stat()
+    assert (after.st_ino, after.st_mtime_ns) == (before.st_ino, before.st_mtime_ns)
+    assert module.BLOCK == source.block
+
+
+@pytest.mark.parametrize("method", IMPLICIT)
 def test_implicit_member_gets_same_bits_in_any_chunk(two_group, method):
     """Determinism of the Newton iterations: a member's iterations, pivoting and
-    convergence do not depend on the other members of its block (SPEC section 1)."""
+    convergence do not depend on the other members of its block (determinism in the
+    project's reference, ``ensemble/scenario/reference.md``)."""
     scenario, model, design = two_group
     whole = _run(integrate_fixed_compiled, scenario, model, design, method)
     rows = np.arange(2, 9)

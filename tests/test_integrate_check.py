@@ -13,12 +13,11 @@ from ensemble.integrate.chunk import COMPILED_MODULE, integrate_chunk
 from ensemble.integrate.refine import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, observed_order,
                                        step_error)
 from ensemble.integrate.reference import integrate_fixed
+from ensemble.methods import METHODS
 from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,
                                        STEP_CHECK_FAILED)
 from support import load_case, subset
-
-ALL_METHODS = ["forward-euler", "heun", "rk4", "backward-euler", "trapezoid"]
 
 SEASONAL = """
 [scenario]
@@ -63,19 +62,20 @@ def _results_equal(a, b) -> None:
         np.testing.assert_array_equal(getattr(a, field), getattr(b, field), err_msg=field)
 
 
-@pytest.mark.parametrize("method", ALL_METHODS)
+@pytest.mark.parametrize("method", list(METHODS))
 def test_member_bits_do_not_depend_on_the_chunk(tmp_path, method):
     """The same member gives the same bits alone, in a reversed chunk and in any split,
-    even next to a member that blows up (SPEC section 1: fixed order of evaluation, no
-    reduction across members)."""
+    even next to a member that blows up (determinism in the project's reference,
+    ``ensemble/scenario/reference.md``: a fixed order of evaluation, no reduction across
+    members)."""
     case = load_case(tmp_path, SEASONAL)
     beta = case.design.parameters[case.row("beta", "parameter")].copy()
     beta[3] = 1e6
     case = case.with_parameter("beta", beta)
     solver = dataclasses.replace(case.scenario.solver, method=method)
 
-    def run(members):
-        return integrate_chunk(case.model, subset(case.design, members), solver,
+    def run(member_index):
+        return integrate_chunk(case.model, subset(case.design, member_index), solver,
                                case.scenario.n_reports)
 
     whole = run(np.arange(7))
@@ -95,7 +95,8 @@ def test_member_bits_do_not_depend_on_the_chunk(tmp_path, method):
 
 def test_blown_up_member_is_flagged_and_holds_nan(tmp_path):
     """A member whose state overflows gets NON_FINITE and is NaN from then on; the others
-    are finite and unflagged (issue 3, item 4)."""
+    are finite and unflagged (status bits in the project's reference,
+    ``ensemble/scenario/reference.md``)."""
     case = load_case(tmp_path, SEASONAL)
     beta = case.design.parameters[case.row("beta", "parameter")].copy()
     beta[3] = 1e6
@@ -113,7 +114,8 @@ def test_blown_up_member_is_flagged_and_holds_nan(tmp_path):
 
 def test_invalid_start_is_nan_and_only_flagged_as_such(tmp_path):
     """A member whose drawn start is impossible is not integrated: NaN everywhere, only
-    the INVALID_START bit (SPEC section 1, [model] initial)."""
+    the INVALID_START bit (``[model] initial`` in the project's reference,
+    ``ensemble/scenario/reference.md``)."""
     case = load_case(tmp_path, SEASONAL)
     initial = case.design.initial.copy()
     initial[:, 2] = np.nan
@@ -130,7 +132,8 @@ def test_invalid_start_is_nan_and_only_flagged_as_such(tmp_path):
 
 def test_check_off_and_two_levels_leave_nan(tmp_path):
     """``enabled = false``: step_error NaN and never STEP_CHECK_FAILED; ``levels = 2``:
-    observed_order NaN (SPEC section 3)."""
+    observed_order NaN (the step check in the project's reference,
+    ``ensemble/scenario/reference.md``)."""
     case = load_case(tmp_path, SEASONAL)
     off = case.chunk("forward-euler", enabled=False)
     assert np.isnan(off.step_error).all() and np.isnan(off.observed_order).all()
@@ -161,7 +164,7 @@ check = {{ levels = 3 }}
 """
 
 
-@pytest.mark.parametrize("method", ALL_METHODS)
+@pytest.mark.parametrize("method", list(METHODS))
 def test_observed_order_nan_when_differences_are_round_off(tmp_path, method):
     """X' = 3.5 is integrated exactly by every method (each is consistent, sum b_i = 1:
     Hairer, Norsett & Wanner 1993, sec. II.1), so d2 is round-off and observed_order is
@@ -187,17 +190,17 @@ def test_blockwise_reductions_match_whole_array_formulas(report_major):
     expressions of their definitions (Richardson 1911, Phil. Trans. R. Soc. A 210:307-357;
     Hairer, Norsett & Wanner 1993, sec. II.4), in both layouts the backends hand out,
     with NaN members and rows spanning several blocks plus a partial one."""
-    members, n_states, n_reports = 7, 3, ROWS_PER_BLOCK + 5
+    n_members, n_states, n_reports = 7, 3, ROWS_PER_BLOCK + 5
     rng = np.random.default_rng(5)
-    runs = [rng.normal(100.0, 1.0, (members + 1, n_states, n_reports)) for _ in range(3)]
+    runs = [rng.normal(100.0, 1.0, (n_members + 1, n_states, n_reports)) for _ in range(3)]
     runs[0][0, 2, -1] += 50.0  # member 0's largest difference is in the last, partial block
     runs[1][2, 1, -1] = np.nan
     runs[2][4, 0, 3] = np.nan
     if report_major:  # the compiled backend's views of padded report-major arrays
-        runs = [np.ascontiguousarray(run.transpose(2, 1, 0))[:, :, :members].transpose(2, 1, 0)
-                for run in runs]
+        runs = [np.ascontiguousarray(run.transpose(2, 1, 0))[:, :, :n_members]
+                .transpose(2, 1, 0) for run in runs]
     else:
-        runs = [run[:members] for run in runs]
+        runs = [run[:n_members] for run in runs]
     coarse, fine, finest = runs
     expected_error = (np.abs(coarse - fine)
                       / ((1.0 - 2.0 ** -4) * (0.01 + 1e-3 * np.abs(fine)))).max(axis=(1, 2))
@@ -232,7 +235,8 @@ def test_backend_dispatch(tmp_path, monkeypatch):
 
 
 def test_negative_state_flag(tmp_path):
-    """A reported state below -atol sets BELOW_NEGATIVE_ATOL (SPEC section 3)."""
+    """A reported state below -atol sets BELOW_NEGATIVE_ATOL (status bits in the
+    project's reference, ``ensemble/scenario/reference.md``)."""
     case = load_case(tmp_path, SEASONAL)
     beta = case.design.parameters[case.row("beta", "parameter")].copy()
     beta[0] = 40.0

@@ -47,7 +47,8 @@ def test_step_schedule_gives_exactly_the_piecewise_solution(tmp_path, method):
     0.8999999999999999 in binary, so a jump located by comparing k * h with the day would
     come one step late).  The model is autonomous, so the run must equal, bit for bit,
     a run with beta = 2.0 up to day 0.9 followed by a fresh run with beta = 0.4 from
-    that state (SPEC section 1: no step straddles a jump)."""
+    that state (schedules in the project's reference, ``ensemble/scenario/reference.md``:
+    no step straddles a jump)."""
     scheduled = load_case(tmp_path, SIR.format(
         beta='{ schedule = [[0, 2.0], [0.9, 0.4]], between = "step" }'), "scheduled")
     before = load_case(tmp_path, SIR.format(beta=2.0), "before")

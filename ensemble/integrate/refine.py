@@ -43,7 +43,7 @@ def _member_last(*arrays: np.ndarray) -> tuple[np.ndarray, ...]:
                                                   array.shape[0]) for array in arrays)
 
 
-def _blockwise_max(rows: int, members: int,
+def _blockwise_max(rows: int, n_members: int,
                    fill: Callable[[int, int, tuple[np.ndarray, ...]], None],
                    outputs: int = 1) -> tuple[np.ndarray, ...]:
     """Per-member maxima of ``outputs`` quantities computed block by block.
@@ -53,9 +53,9 @@ def _blockwise_max(rows: int, members: int,
     the maxima are NaN for a member with a NaN value, as ``ndarray.max`` gives.
     """
     block = min(ROWS_PER_BLOCK, max(rows, 1))
-    buffers = tuple(np.empty((block, members)) for _ in range(outputs))
-    scratch = np.empty(members)
-    maxima = tuple(np.full(members, -np.inf) for _ in range(outputs))
+    buffers = tuple(np.empty((block, n_members)) for _ in range(outputs))
+    scratch = np.empty(n_members)
+    maxima = tuple(np.full(n_members, -np.inf) for _ in range(outputs))
     for start in range(0, rows, block):
         stop = min(start + block, rows)
         views = tuple(buffer[:stop - start] for buffer in buffers)
