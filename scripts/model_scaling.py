@@ -1,4 +1,4 @@
-"""How the compiled model scales with the number of groups.
+"""How the lowered model and its numpy evaluator scale with the number of groups.
 
 On an illustrative age-structured SEIR (invented numbers: a dense random contact matrix,
 infection ``beta * S * (contacts @ (I / N))``) with G = 4, 8, 16, 32 groups, prints per G
@@ -30,6 +30,7 @@ from ensemble.examples import age_seir_text
 from ensemble.model import RateFunctions, lower_model
 from ensemble.scenario.load import load_scenario
 
+
 def scenario_text(n_groups: int, seed: int = 1) -> str:
     """The illustrative SEIR with ``n_groups`` groups of 1000 and a dense random contact
     matrix (invented numbers)."""
@@ -44,7 +45,7 @@ def main() -> None:
     parser.add_argument("--members", type=int, default=2000)
     args = parser.parse_args()
     previous = None
-    print(f"{'G':>3} {'compile s':>10} {'ratio':>6} {'rates ns/(member*flow)':>23} "
+    print(f"{'G':>3} {'lower s':>10} {'ratio':>6} {'rates ns/(member*flow)':>23} "
           f"{'peak/output':>12} {'jacobian nnz':>13}")
     with tempfile.TemporaryDirectory() as directory:
         for n_groups in (4, 8, 16, 32):

@@ -334,7 +334,7 @@ def integrate_fixed(model: LoweredModel, design: Design, method: Method, step: f
 
     Parameters
     ----------
-    model : the compiled model of the variant.
+    model : the lowered model of the variant.
     design : the members' parameters, schedule values and initial states.
     method : one of :data:`ensemble.methods.METHODS`.
     step : h in days.
