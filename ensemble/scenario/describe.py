@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 
 from ensemble.methods import METHODS
-from ensemble.scenario.load import time_text
+from ensemble.scenario.reader import time_text
 from ensemble.scenario.schema import (
     Derived, Distribution, Expression, Fixed, InitialValue, Matrix, Parameter, Rest, Scenario,
     Schedule, Variant,
