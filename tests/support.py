@@ -12,6 +12,7 @@ import os
 import subprocess
 import sys
 import textwrap
+import time
 from pathlib import Path
 
 import numpy as np
@@ -463,15 +464,33 @@ def fill(store, layout: ResultLayout, chunk: int) -> None:
 
 
 def write_scenario(directory: Path, *, members: int = 40, days: int = 30,
-                   method: str = "rk4", output: str = "result.nc",
+                   method: str = "rk4", step: float = 0.25, output: str = "result.nc",
                    keep_members: bool = True) -> Path:
     """Write the illustrative SEIR town of :func:`ensemble.examples.seir_text`, with its
     ``no-change`` and ``distancing`` variants, into ``directory`` and return its path."""
     path = directory / "testtown.toml"
-    path.write_text(seir_text(members=members, days=days, method=method, output=output,
-                              distancing=True, name="testtown", keep_members=keep_members,
+    path.write_text(seir_text(members=members, days=days, method=method, step=step,
+                              output=output, distancing=True, name="testtown",
+                              keep_members=keep_members,
                               title="Illustrative town, invented numbers"))
     return path
+
+
+def saved_chunks(work: Path) -> list[Path]:
+    """The chunk directories saved so far in a run's ``<result>.partial`` directory (each
+    renamed into place only when complete)."""
+    return sorted(work.glob("chunk-*")) if work.is_dir() else []
+
+
+def wait_for_saved_chunks(process: subprocess.Popen, work: Path, count: int) -> None:
+    """Barrier: return once the running ``ensemble run`` ``process`` has saved ``count``
+    chunks in ``work``; fail if it ends first.  (A run that hangs is stopped by the
+    suite's per-test timeout.)"""
+    while len(saved_chunks(work)) < count:
+        if process.poll() is not None:
+            raise AssertionError(f"the run ended with {len(saved_chunks(work))} chunks "
+                                 f"saved; stderr: {process.stderr.read()}")
+        time.sleep(0.01)
 
 
 def ensemble_command(*arguments: str | os.PathLike[str]) -> list[str]:

@@ -1,9 +1,17 @@
 """`ensemble run` as a program: exit statuses, the not-overwrite rule, interruptions and
-resume (SPEC section 2, "Command line"; issue 4 part 6).
+resume (the command line's contract in the README: exit status 0, 1, 2 or 130; an existing
+result is replaced only with --force; an interrupted run continues with --resume).
 
 Each test runs the real program in a subprocess on the illustrative SEIR scenario of
 ``support.write_scenario`` and compares what it leaves on disk with an uninterrupted run
 made in this process (``ensemble.api.run`` with ``workers=0``).
+
+The interruption tests signal the run at a barrier (``support.wait_for_saved_chunks``:
+the first chunks are saved in ``result.nc.partial``), never after a sleep, and their
+scenario is slow enough that most of its work is still ahead then: a small step makes each
+chunk of two members take a noticeable fraction of a second, and there are many chunks.
+Each test asserts that work was in flight (not every chunk was saved) before it checks what
+the interrupted run kept.
 """
 
 from __future__ import annotations
@@ -12,40 +20,33 @@ import os
 import re
 import signal
 import subprocess
-import time
 from pathlib import Path
 
 import pytest
 
 import ensemble
 from ensemble import api
-from support import assert_same_numbers, ensemble_command, run_cli, write_scenario
+from support import (assert_same_numbers, ensemble_command, run_cli, saved_chunks,
+                     wait_for_saved_chunks, write_scenario)
 
-SLOW = {"members": 20, "days": 60}
-"""A run of several seconds with chunks of two members: time to interrupt it midway."""
+SLOW = {"members": 16, "days": 60, "step": 1 / 256}
+"""The interrupted scenario: 15,360 steps of four stages per member and variant (and the
+step check's rerun at half the step), in chunks of :data:`CHUNK` members."""
+
+CHUNK = 2
+"""Members per chunk of the interrupted runs."""
+
+TOTAL_CHUNKS = 2 * SLOW["members"] // CHUNK
+"""Chunks of an interrupted run (two variants)."""
 
 
-def chunk_entries(work: Path) -> list[Path]:
-    """Saved chunks in a work-in-progress directory."""
-    return sorted(work.glob("chunk-*")) if work.is_dir() else []
-
-
-def start_and_wait_for_chunks(tmp_path: Path, *arguments: str,
-                              chunks: int = 1) -> subprocess.Popen:
-    """Start ``ensemble run`` on the slow scenario and return once ``chunks`` chunks are
-    saved (the program is then still running)."""
-    scenario = write_scenario(tmp_path, **SLOW)
-    process = subprocess.Popen(
-        ensemble_command("run", scenario, "--chunk", "2", *arguments), cwd=tmp_path,
+def start_slow_run(directory: Path, *arguments: str) -> subprocess.Popen:
+    """Start ``ensemble run`` on the slow scenario in ``directory``, in a process group of
+    its own."""
+    scenario = write_scenario(directory, **SLOW)
+    return subprocess.Popen(
+        ensemble_command("run", scenario, "--chunk", str(CHUNK), *arguments), cwd=directory,
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
-    deadline = time.monotonic() + 60
-    while len(chunk_entries(tmp_path / "result.nc.partial")) < chunks:
-        if process.poll() is not None or time.monotonic() > deadline:
-            stop_group(process)
-            raise AssertionError(f"no chunk saved; stderr: {process.stderr.read()}")
-        time.sleep(0.02)
-    assert process.poll() is None, "the run ended before it could be interrupted"
-    return process
 
 
 def stop_group(process: subprocess.Popen) -> None:
@@ -57,12 +58,26 @@ def stop_group(process: subprocess.Popen) -> None:
     process.wait(timeout=30)
 
 
-def reference_result(tmp_path: Path, **settings: int) -> Path:
-    """The same scenario run without interruption, in this process."""
-    directory = tmp_path / "reference"
-    directory.mkdir()
-    scenario = write_scenario(directory, **settings)
+@pytest.fixture(scope="module")
+def uninterrupted(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The slow scenario run without interruption, in this process."""
+    directory = tmp_path_factory.mktemp("uninterrupted")
+    scenario = write_scenario(directory, **SLOW)
     return api.run(scenario, output=directory / "result.nc", workers=0, progress=False)
+
+
+def resume_and_compare(directory: Path, saved: int, uninterrupted: Path) -> None:
+    """``--resume`` computes only the ``TOTAL_CHUNKS - saved`` chunks that were not saved,
+    and the result equals the uninterrupted run bit for bit."""
+    resumed = run_cli("run", "testtown.toml", "--resume", "--chunk", str(CHUNK),
+                      "--workers", "1", cwd=directory)
+    assert resumed.returncode == 0, resumed.stderr
+    progress = re.search(r"resuming: (\d+) chunks already done, (\d+) to compute",
+                         resumed.stderr)
+    assert progress, resumed.stderr
+    assert (int(progress[1]), int(progress[2])) == (saved, TOTAL_CHUNKS - saved)
+    assert not (directory / "result.nc.partial").exists()
+    assert_same_numbers(directory / "result.nc", uninterrupted)
 
 
 def test_run_writes_result_and_reports(tmp_path: Path) -> None:
@@ -82,8 +97,7 @@ def test_run_writes_result_and_reports(tmp_path: Path) -> None:
 
 
 def test_existing_result_is_not_replaced_without_force(tmp_path: Path) -> None:
-    """SPEC section 2: an existing PATH is not replaced without --force (exit 2 before
-    any work)."""
+    """An existing PATH is not replaced without --force (exit 2 before any work)."""
     scenario = write_scenario(tmp_path, members=4)
     result = tmp_path / "result.nc"
     result.write_bytes(b"an earlier result")
@@ -120,61 +134,62 @@ def test_unwritable_output_exits_1_with_one_clear_line(tmp_path: Path) -> None:
     assert "blocker" in errors[0] and "Traceback" not in done.stderr
 
 
-def test_sigkill_then_resume_redoes_only_unfinished_chunks(tmp_path: Path) -> None:
-    """Issue 4 part 6: a run killed with SIGKILL leaves no file under the final name;
-    --resume refuses a changed scenario (exit 2), then finishes the run computing only the
-    chunks that were not saved, and the result equals an uninterrupted run bit for bit."""
-    process = start_and_wait_for_chunks(tmp_path, "--workers", "1", chunks=2)
-    os.kill(process.pid, signal.SIGKILL)
-    stop_group(process)
+@pytest.mark.slow
+def test_sigkill_then_resume_redoes_only_unfinished_chunks(
+        tmp_path: Path, uninterrupted: Path) -> None:
+    """A run killed with SIGKILL while chunks are in flight leaves no file under the final
+    name; --resume refuses a changed scenario (exit 2), then finishes the run computing
+    only the chunks that were not saved, and the result equals an uninterrupted run bit
+    for bit."""
+    process = start_slow_run(tmp_path, "--workers", "1")
     work = tmp_path / "result.nc.partial"
+    try:
+        wait_for_saved_chunks(process, work, 2)
+        os.kill(process.pid, signal.SIGKILL)
+    finally:
+        stop_group(process)
     assert not (tmp_path / "result.nc").exists()
-    saved = len(chunk_entries(work))
-    total = 2 * SLOW["members"] // 2
-    assert 2 <= saved < total
+    saved = len(saved_chunks(work))
+    assert 2 <= saved < TOTAL_CHUNKS, "the run had no work in flight when it was killed"
 
-    scenario = tmp_path / "testtown.toml"
-    other = run_cli("run", scenario, "--resume", "--seed", "12", "--workers", "0",
+    other = run_cli("run", "testtown.toml", "--resume", "--seed", "12", "--workers", "0",
                     cwd=tmp_path)
     assert other.returncode == 2
     assert "fingerprint" in other.stderr.lower()
-    assert len(chunk_entries(work)) == saved
+    assert len(saved_chunks(work)) == saved
 
-    resumed = run_cli("run", scenario, "--resume", "--chunk", "2", "--workers", "1",
-                      cwd=tmp_path)
-    assert resumed.returncode == 0, resumed.stderr
-    progress = re.search(r"resuming: (\d+) chunks already done, (\d+) to compute",
-                         resumed.stderr)
-    assert progress, resumed.stderr
-    assert (int(progress[1]), int(progress[2])) == (saved, total - saved)
-    assert not work.exists()
-    assert_same_numbers(tmp_path / "result.nc", reference_result(tmp_path, **SLOW))
-
-    again = run_cli("run", scenario, "--resume", "--workers", "0", cwd=tmp_path)
+    resume_and_compare(tmp_path, saved, uninterrupted)
+    again = run_cli("run", "testtown.toml", "--resume", "--workers", "0", cwd=tmp_path)
     assert again.returncode == 0 and "nothing to do" in again.stderr
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("signal_number, whole_group",
                          [(signal.SIGINT, True), (signal.SIGTERM, False)],
                          ids=["ctrl-c", "sigterm"])
-def test_interrupt_exits_130_and_keeps_finished_work(tmp_path: Path, signal_number: int,
-                                                     whole_group: bool) -> None:
-    """SPEC section 2: interrupted -> exit 130, finished work kept for --resume.  Ctrl-C
-    on a terminal signals the whole process group, dask workers included: one line, no
-    tracebacks."""
-    process = start_and_wait_for_chunks(tmp_path, "--workers", "1")
-    if whole_group:
-        os.killpg(process.pid, signal_number)
-    else:
-        os.kill(process.pid, signal_number)
+def test_interrupt_exits_130_and_keeps_finished_work(
+        tmp_path: Path, uninterrupted: Path, signal_number: int, whole_group: bool) -> None:
+    """Interrupted while chunks are in flight: exit status 130, one line naming --resume
+    and no tracebacks, finished work kept, and --resume completes it to the uninterrupted
+    result.  Ctrl-C on a terminal signals the whole process group, dask workers included;
+    SIGTERM (a batch system's stop) reaches the driver only."""
+    process = start_slow_run(tmp_path, "--workers", "1")
+    work = tmp_path / "result.nc.partial"
     try:
-        _, err = process.communicate(timeout=60)
+        wait_for_saved_chunks(process, work, 1)
+        if whole_group:
+            os.killpg(process.pid, signal_number)
+        else:
+            os.kill(process.pid, signal_number)
+        _, err = process.communicate(timeout=120)
     finally:
         stop_group(process)
     assert process.returncode == 130, err
     assert "--resume" in err and "Traceback" not in err
     assert not (tmp_path / "result.nc").exists()
-    assert chunk_entries(tmp_path / "result.nc.partial")
+    saved = len(saved_chunks(work))
+    assert 1 <= saved < TOTAL_CHUNKS, "the run had no work in flight when it was signalled"
+    resume_and_compare(tmp_path, saved, uninterrupted)
 
 
 def test_without_dashboard_no_address_is_printed(tmp_path: Path) -> None:
