@@ -24,7 +24,8 @@ from ensemble import api
 FROZEN = Path(__file__).parent / "data" / "frozen"
 
 
-@pytest.mark.parametrize("backend", ["numpy", "compiled"])
+@pytest.mark.parametrize("backend",
+                         [pytest.param("numpy", marks=pytest.mark.slow), "compiled"])
 @pytest.mark.parametrize("name", ["age", "seasonal"])
 def test_numbers_are_those_written_before(tmp_path: Path, name: str, backend: str) -> None:
     written = api.run(FROZEN / f"{name}.toml", output=tmp_path / f"{name}-{backend}.nc",

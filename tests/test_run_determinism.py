@@ -28,6 +28,7 @@ def run_into(directory: Path, name: str, *, members: int = 40, days: int = 30,
                    output=directory / name, progress=False, **settings)
 
 
+@pytest.mark.slow
 def test_chunk_size_workers_and_scheduler_change_no_bit(tmp_path: Path) -> None:
     """In this process with chunks of 7, 50 and all 40 members; on a running one-worker
     scheduler given by address; on the default local cluster with two worker threads, and
