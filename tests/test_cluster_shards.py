@@ -3,7 +3,7 @@ script for job arrays (run against stand-in ``sbatch``/``qsub`` commands that re
 they are given).
 
 The reference for "merged parts equal a single run" is a single local run of the same
-scenario: the SPEC (section 2) asks for a result identical in every number.
+scenario: the README's cluster section promises a result identical in every number.
 """
 
 from __future__ import annotations
@@ -59,7 +59,7 @@ def test_shards_cover_every_member_exactly_once(members: int, count: int) -> Non
 
 
 def test_shard_split_formula() -> None:
-    # SPEC section 2: members floor(I*M/N) .. floor((I+1)*M/N) - 1; M = 10, N = 3.
+    # The README's job arrays: members floor(I*M/N) .. floor((I+1)*M/N) - 1; M = 10, N = 3.
     assert [Shard(i, 3).members(10) for i in range(3)] == [(0, 3), (3, 6), (6, 10)]
 
 
