@@ -79,8 +79,8 @@ error)."""
 def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method,
                              step: float, steps_per_report: int, n_reports: int,
                              newton: Newton, atol: float,
-                             buffers: tuple[ReportBuffers, str] | None = None,
-                             cache: KernelCache | None = None) -> Trajectory:
+                             buffers: tuple[ReportBuffers, str] | None = None
+                             ) -> Trajectory:
     """Integrate every member of ``design`` with ``method`` at a fixed ``step``, as
     :func:`ensemble.integrate.reference.integrate_fixed` does, in a generated kernel.
 
@@ -88,8 +88,8 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
     impossible drawn start are replaced the same way and reported as NaN with
     ``INVALID_START``), so every member runs through the same vectorised code.
     ``buffers`` (a :class:`ReportBuffers` and a slot name) gives the output arrays to
-    write into instead of new ones; ``cache`` the kernel cache (by default the one the
-    environment names, :meth:`KernelCache.for_environment`).
+    write into instead of new ones.  The kernel comes from the cache the environment
+    names (:meth:`.cache.KernelCache.for_environment`).
 
     Returns
     -------
@@ -97,7 +97,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
         ``state`` and ``flow_count`` are (M, rows, n_reports) views of report-major
         arrays (the layout the kernel writes fastest); copy them where contiguity matters.
     """
-    module, padded = _kernel_and_padding(model, method, design, cache)
+    module, padded = _kernel_and_padding(model, method, design)
     n_members = design.members.shape[0]
     if buffers is None:
         state = np.empty((n_reports, model.n_states, padded))
@@ -118,8 +118,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
 
 def step_error_compiled(model: LoweredModel, design: Design, method: Method, step: float,
                         steps_per_report: int, n_reports: int, newton: Newton, atol: float,
-                        coarse: np.ndarray, refine: int, order: int, rtol: float,
-                        cache: KernelCache | None = None
+                        coarse: np.ndarray, refine: int, order: int, rtol: float
                         ) -> tuple[np.ndarray, np.ndarray]:
     """Integrate ``design``'s members at ``step`` (the step check's h / refine) and
     compare them with the trajectories ``coarse`` of the run at h as they go, keeping
@@ -134,14 +133,13 @@ def step_error_compiled(model: LoweredModel, design: Design, method: Method, ste
     coarse : (M, n_states, n_reports) states of the run at h.
     refine, order, rtol : the step check's refinement, the method's order and the check's
         relative tolerance (its absolute one is ``atol``).
-    cache : as for :func:`integrate_fixed_compiled`.
 
     Returns
     -------
     (error, status) : (M,) scaled Richardson estimates (NaN for a member with a non-finite
         value in either run) and the refined run's status bits.
     """
-    module, padded = _kernel_and_padding(model, method, design, cache)
+    module, padded = _kernel_and_padding(model, method, design)
     n_members = design.members.shape[0]
     reference = np.ascontiguousarray(coarse.transpose(2, 1, 0))
     error = np.empty(padded)
@@ -154,10 +152,10 @@ def step_error_compiled(model: LoweredModel, design: Design, method: Method, ste
     return error, status[:n_members]
 
 
-def _kernel_and_padding(model: LoweredModel, method: Method, design: Design,
-                        cache: KernelCache | None) -> tuple[ModuleType, int]:
+def _kernel_and_padding(model: LoweredModel, method: Method, design: Design
+                        ) -> tuple[ModuleType, int]:
     """The kernel module, and the members of ``design`` padded to whole blocks."""
-    module, source = (cache or KernelCache.for_environment()).load(model, method)
+    module, source = KernelCache.for_environment().load(model, method)
     return module, max(1, -(-design.members.shape[0] // source.block)) * source.block
 
 
