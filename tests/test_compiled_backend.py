@@ -18,14 +18,14 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from ensemble.integrate.refine import step_error
 from ensemble.integrate.kernels.blocks import block_size
 from ensemble.integrate.kernels.cache import KernelCache, cache_directory
 from ensemble.integrate.kernels.launch import (integrate_fixed_compiled, kernel_threads,
                                                set_kernel_threads, step_error_compiled)
 from ensemble.integrate.kernels.source import KernelSource
-from ensemble.methods import METHODS
 from ensemble.integrate.reference import integrate_fixed
+from ensemble.integrate.refine import step_error
+from ensemble.methods import METHODS
 from ensemble.model.lower import lower_model
 from ensemble.records import INVALID_START, NON_FINITE
 from ensemble.sampling import make_design
