@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 
 from ensemble.integrate.chunk import COMPILED_MODULE, integrate_chunk
+from ensemble.integrate.reference import integrate_fixed
 from ensemble.integrate.refine import (ROUND_OFF_FACTOR, ROWS_PER_BLOCK, observed_order,
                                        step_error)
-from ensemble.integrate.reference import integrate_fixed
 from ensemble.methods import METHODS
 from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE,

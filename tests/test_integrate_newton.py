@@ -16,9 +16,9 @@ import scipy.linalg
 from ensemble.integrate.kernels.block_lu import factor_block, solve_factored
 from ensemble.integrate.kernels.launch import integrate_fixed_compiled
 from ensemble.integrate.kernels.sparsity import elimination_order, factor_pattern
+from ensemble.integrate.reference import SHARED_MATRIX_ITERATIONS, integrate_fixed
 from ensemble.methods import METHODS
 from ensemble.records import NEWTON_NOT_CONVERGED
-from ensemble.integrate.reference import SHARED_MATRIX_ITERATIONS, integrate_fixed
 from support import load_case, one_compartment
 
 
