@@ -163,27 +163,61 @@ def open_result(path: str | os.PathLike[str]) -> xr.Dataset:
     import xarray as xr
 
     from ensemble.output.dataset import with_label_indexes
-    from ensemble.output.store import result_fingerprint
+    from ensemble.output.writer import result_fingerprint
 
     result_fingerprint(path)
     return with_label_indexes(xr.open_dataset(path, decode_timedelta=False))
 
 
 def simulate(scenario: Scenario | str | os.PathLike[str], *,
-             variants: Sequence[str] | None = None, backend: str = "numpy") -> xr.Dataset:
+             variants: Sequence[str] | None = None, backend: str | None = None
+             ) -> xr.Dataset:
     """Run every member of a scenario in this process and return the result dataset.
 
     Nothing is written and dask is not used: meant for notebooks and ensembles that fit
-    in memory.  The dataset is the one :func:`open_result` returns for the file that
-    ``ensemble run`` writes for the same scenario (same variables, numbers and
-    attributes, apart from ``history``).
+    in memory.  The members are computed as the run engine computes a chunk and the
+    dataset is made by the code that makes the result file, so it is the dataset
+    :func:`open_result` returns for the file :func:`run` writes for the same scenario
+    (same variables, numbers and attributes, apart from ``history``).
 
     Parameters
     ----------
     scenario : a validated scenario or the path of a scenario file.
     variants : names of the variants to run (default all); ``output.compare_to`` is
         dropped when its variant is not among them.
-    backend : ``"numpy"`` or ``"compiled"`` integration.
+    backend : ``"numpy"`` or ``"compiled"`` integration (default, as for :func:`run`,
+        :data:`ensemble.run.tasks.DEFAULT_BACKEND`).
+
+    Raises
+    ------
+    ValueError : an unknown variant name.
+    """
+    from ensemble.output.dataset import decode
+    from ensemble.output.finish import Finisher
+    from ensemble.output.sources import MembersInMemory
+    from ensemble.output.writer import result_dataset
+    from ensemble.run.execute import DEFAULT_BACKEND, compute_chunk
+    from ensemble.run.layout import lowered_models, result_layout
+    from ensemble.run.plan import fingerprint
+
+    if not isinstance(scenario, Scenario):
+        scenario = load_scenario(scenario)
+    if variants is not None:
+        scenario = _with_variants(scenario, variants)
+    backend = backend or DEFAULT_BACKEND
+    models = lowered_models(scenario)
+    layout = result_layout(scenario, models, fingerprint(scenario, backend),
+                           history="ensemble.api.simulate (in memory)")
+    chunks = []
+    for index, model in enumerate(models):
+        output = compute_chunk(scenario, model, (index, 0, scenario.member_count), backend)
+        chunks.append((output.key, output.result, output.reported))
+    return decode(result_dataset(Finisher(layout, MembersInMemory(layout, chunks))))
+
+
+def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
+    """``scenario`` with only the variants ``names``, in that order (``compare_to``
+    dropped when its variant is not among them).
 
     Raises
     ------
@@ -191,40 +225,19 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
     """
     import dataclasses
 
-    import numpy as np
-
-    from ensemble.integrate.chunk import integrate_chunk
-    from ensemble.model.lower import lower_model
-    from ensemble.output.dataset import dataset_from_results, decode
-    from ensemble.output.layout import ResultLayout
-    from ensemble.run.plan import fingerprint
-    from ensemble.sampling import make_design
     from ensemble.errors import did_you_mean
 
-    if not isinstance(scenario, Scenario):
-        scenario = load_scenario(scenario)
-    if variants is not None:
-        known = {variant.name: variant for variant in scenario.variants}
-        for name in variants:
-            if name not in known:
-                hint = did_you_mean(name, known)
-                raise ValueError(f"no variant {name!r} in {scenario.source.path}"
-                                 + (f"; {hint}" if hint else ""))
-        compare_to = scenario.output.compare_to
-        scenario = dataclasses.replace(
-            scenario, variants=tuple(known[name] for name in variants),
-            output=dataclasses.replace(
-                scenario.output, compare_to=compare_to if compare_to in variants else None))
-    models = [lower_model(scenario, variant) for variant in scenario.variants]
-    layout = ResultLayout.from_scenario(scenario, models, fingerprint(scenario, backend),
-                                        history="ensemble.api.simulate (in memory)")
-    members = np.arange(scenario.members)
-    results = []
-    for variant, model in zip(scenario.variants, models):
-        design = make_design(scenario, variant, model, members)
-        results.append((integrate_chunk(model, design, scenario.solver, scenario.n_reports,
-                                        backend), design.reported))
-    return decode(dataset_from_results(layout, results))
+    known = {variant.name: variant for variant in scenario.variants}
+    for name in names:
+        if name not in known:
+            hint = did_you_mean(name, known)
+            raise ValueError(f"no variant {name!r} in {scenario.source.path}"
+                             + (f"; {hint}" if hint else ""))
+    compare_to = scenario.output.compare_to
+    return dataclasses.replace(
+        scenario, variants=tuple(known[name] for name in names),
+        output=dataclasses.replace(
+            scenario.output, compare_to=compare_to if compare_to in names else None))
 
 
 def summarize(path: str | os.PathLike[str]) -> str:
@@ -321,9 +334,9 @@ def array_script(scenario: Scenario | str | os.PathLike[str], cluster: ClusterPr
     if profile is None:
         raise UsageError("--cluster", "", "local",
                             "a job array needs a batch-system profile (slurm or pbs)")
-    if not 1 <= shards <= scenario.members:
+    if not 1 <= shards <= scenario.member_count:
         raise UsageError("--shards", "", shards,
-                            f"expected 1 .. {scenario.members} (the members per variant)")
+                            f"expected 1 .. {scenario.member_count} (the members per variant)")
     if output is not None:
         scenario = dataclasses.replace(
             scenario, output=dataclasses.replace(scenario.output, path=os.fspath(output)))

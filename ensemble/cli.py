@@ -99,7 +99,7 @@ def run(
     from ensemble.about import CAUTION
     from ensemble import api
     from ensemble.errors import UsageError
-    from ensemble.output.store import partial_path
+    from ensemble.run.journal import partial_path
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
     signal.signal(signal.SIGTERM, _interrupt)
@@ -107,7 +107,7 @@ def run(
     began = time.monotonic()
     history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
     with _reported():
-        loaded = api.load_scenario(scenario, members=members, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
         profile = api.cluster_profile(cluster if cluster is not None
                                       else loaded.compute.cluster)
         if profile is not None and address is not None:
@@ -125,7 +125,7 @@ def run(
                        dashboard=dashboard)
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
-    typer.echo(f"{loaded.members} members x {len(loaded.variants)} variants "
+    typer.echo(f"{loaded.member_count} members x {len(loaded.variants)} variants "
                f"in {time.monotonic() - began:.1f} s")
     flagged = ", ".join(f"{word} {count}" for word, count in counts.items())
     typer.echo(f"flagged members: {flagged}")
@@ -223,7 +223,7 @@ def array_script(
     run_options = [str(item) for option, value in carried.items() if value is not None
                    for item in (option, value)]
     with _reported():
-        loaded = api.load_scenario(scenario, members=members, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
         text = api.array_script(loaded, cluster, shards, output=output,
                                 run_options=run_options)
     typer.echo(text, nl=False)

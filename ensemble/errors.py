@@ -122,6 +122,15 @@ class StoreWriteError(RunError):
     """Writing the work in progress or the result failed (unwritable directory, full
     disk...); chunks already saved are kept."""
 
+    @classmethod
+    def from_os_error(cls, error: OSError, where: object, kept_in: object) -> StoreWriteError:
+        """One line for a failed write: the file (``where`` when the error names none),
+        the system's reason, and the directory ``kept_in`` where the finished chunks
+        wait for a resume."""
+        reason = error.strerror or str(error)
+        return cls(f"cannot write {error.filename or where}: {reason} (finished chunks "
+                   f"are kept in {kept_in} for --resume)")
+
 
 class IncompleteWork(RunError):
     """A result was to be written before every one of its members was saved."""

@@ -1,7 +1,7 @@
 """Peak memory of the result store's finish step at full size.
 
 Saves made-up chunks of a 200,000-member SEIR over 365 days (one variant, 366 reports)
-into a work directory, then runs ``WorkStore.finish`` in a fresh process and prints that
+into a work directory, then runs ``WorkJournal.finish`` in a fresh process and prints that
 process's peak resident memory against the 2 GB goal, as a ratio, and the wall time.
 The trajectories are random numbers: the quantiles' cost does not depend on the values,
 but random values compress badly, so the file (with ``--keep-members``) is larger and
@@ -31,27 +31,26 @@ CHUNK = 5000
 
 def _layout(members: int, keep_members: bool):
     """The demo scenario cut to one variant, 365 days and ``members`` members."""
-    from ensemble.model.lower import lower_model
-    from ensemble.output import ResultLayout
+    from ensemble.run.layout import lowered_models, result_layout
     from ensemble.scenario.load import load_scenario
 
-    scenario = load_scenario(SCENARIO, members=members)
+    scenario = load_scenario(SCENARIO, member_count=members)
     scenario = dataclasses.replace(
         scenario, days=Fraction(365), variants=scenario.variants[:1],
-        output=dataclasses.replace(scenario.output, members=keep_members, compare_to=None))
-    models = [lower_model(scenario, scenario.variants[0])]
-    return ResultLayout.from_scenario(scenario, models, "0" * 64, "scripts/finish_memory.py")
+        output=dataclasses.replace(scenario.output, keep_members=keep_members, compare_to=None))
+    return result_layout(scenario, lowered_models(scenario), "0" * 64,
+                         "scripts/finish_memory.py")
 
 
 def _phase(phase: str, path: Path, members: int, keep_members: bool) -> None:
     """Run one phase in this process and print its peak resident memory in MiB."""
     from ensemble.records import ChunkResult
-    from ensemble.output import WorkStore
+    from ensemble.run.journal import WorkJournal
 
     layout = _layout(members, keep_members)
     began = time.monotonic()
     if phase == "save":
-        store = WorkStore.open(path, layout, resume=False, force=True)
+        journal = WorkJournal.open(path, layout, resume=False, force=True)
         rng = np.random.default_rng(1)
         for first in range(0, members, CHUNK):
             end = min(first + CHUNK, members)
@@ -63,11 +62,10 @@ def _phase(phase: str, path: Path, members: int, keep_members: bool) -> None:
                 state=rng.random((size, layout.n_states, layout.n_reports)) * 1000,
                 flow_count=flow, step_error=np.zeros(size),
                 observed_order=np.full(size, np.nan), status=np.zeros(size, np.uint8))
-            store.save((0, first, end), result,
+            journal.save((0, first, end), result,
                        {name: rng.random(size) for name in layout.parameters})
     else:
-        store = WorkStore.open(path, layout, resume=True, force=True)
-        store.finish()
+        WorkJournal.open(path, layout, resume=True, force=True).finish()
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"{phase} {peak:.0f} {time.monotonic() - began:.1f}")
 
@@ -76,7 +74,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--members", type=int, default=200_000)
     parser.add_argument("--keep-members", action="store_true",
-                        help="write every member's trajectories too (output.members = true)")
+                        help="write every member's trajectories too (output.keep_members = true)")
     parser.add_argument("--directory", type=Path, default=None,
                         help="where to put the work (default: a temporary directory)")
     parser.add_argument("--phase", choices=["save", "finish"], help=argparse.SUPPRESS)

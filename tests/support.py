@@ -324,7 +324,7 @@ def load_case(tmp_path: Path, toml: str, name: str = "case") -> Case:
     scenario = load_text(tmp_path, toml, name)
     variant = scenario.variants[0]
     model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.members))
+    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
     return Case(scenario, model, design)
 
 
@@ -333,7 +333,7 @@ def subset(design: Design, members: np.ndarray) -> Design:
     members = np.asarray(members)
     return dataclasses.replace(
         design,
-        members=design.members[members],
+        member_index=design.member_index[members],
         parameters=design.parameters[:, members],
         schedule_values=tuple(v[:, members] for v in design.schedule_values),
         initial=design.initial[:, members],
@@ -395,7 +395,7 @@ report_every = 1
 [output]
 quantiles = [0.05, 0.25, 0.5, 0.75, 0.95]
 compare_to = "usual"
-members = {keep_members}
+keep_members = {keep_members}
 compression = {compression}
 """
 

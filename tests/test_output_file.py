@@ -28,17 +28,14 @@ import ensemble
 from ensemble import api
 from ensemble.cli import app
 from ensemble.examples import sir_text
-from ensemble.integrate.chunk import integrate_chunk
-from ensemble.model.lower import lower_model
 from ensemble.errors import NotAResult
-from ensemble.output.store import WorkStore
-from ensemble.sampling import make_design
+from ensemble.run.journal import WorkJournal
 from support import fill, grouped_scenario, layout_of, load_text
 
 
 def _made_up_file(directory: Path, **options) -> Path:
     layout = layout_of(grouped_scenario(directory, members=7, **options))
-    store = WorkStore.open(directory / "result.nc", layout, resume=False, force=False)
+    store = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
     fill(store, layout, chunk=3)
     return store.finish()
 
@@ -163,27 +160,25 @@ def test_open_result_selects_by_label_like_the_plain_xarray_line(dated):
         picked, plain.state.sel(compartment="I", variant="fewer-contacts", group="old"))
 
 
-def test_simulate_returns_what_the_streamed_file_holds(tmp_path):
-    """The real pipeline (compile, design, integrate) in chunks of 5 through the store,
-    against simulate() of the whole scenario at once: the same numbers, bit for bit."""
-    scenario = grouped_scenario(tmp_path, members=12)
-    layout = layout_of(scenario)
-    store = WorkStore.open(tmp_path / "r.nc", layout, resume=False, force=False)
-    for index, variant in enumerate(scenario.variants):
-        model = lower_model(scenario, variant)
-        for first in range(0, 12, 5):
-            members = np.arange(first, min(first + 5, 12))
-            design = make_design(scenario, variant, model, members)
-            result = integrate_chunk(model, design, scenario.solver, scenario.n_reports)
-            store.save((index, first, members[-1] + 1), result, design.reported)
-    from_file = api.open_result(store.finish())
-    simulated = api.simulate(scenario)
-    assert set(simulated.data_vars) == set(from_file.data_vars)
-    for name in simulated.data_vars:
-        np.testing.assert_array_equal(simulated[name].values, from_file[name].values,
-                                      err_msg=name)
-        assert simulated[name].dims == from_file[name].dims
-    assert simulated.attrs.keys() == from_file.attrs.keys()
+@pytest.mark.parametrize("keep_members", [True, False])
+def test_simulate_returns_what_run_writes(tmp_path, keep_members):
+    """api.run in chunks of 5 (the journal, the finish, the file) and api.simulate of the
+    whole scenario at once, both with their default backend: the same dataset, every
+    variable (values bit for bit, dimensions, attributes) and every global attribute but
+    the history."""
+    scenario = grouped_scenario(tmp_path, members=12, keep_members=keep_members)
+    written = api.run(scenario, output=tmp_path / "r.nc", workers=0, chunk=5,
+                      progress=False)
+    with api.open_result(written) as from_file:
+        simulated = api.simulate(scenario)
+        assert set(simulated.data_vars) == set(from_file.data_vars)
+        assert ("state" in simulated.data_vars) == keep_members
+        assert simulated.attrs.keys() == from_file.attrs.keys()
+        for name, value in simulated.attrs.items():
+            if name != "history":
+                assert np.array_equal(value, from_file.attrs[name]), name
+        xr.testing.assert_identical(simulated.drop_attrs(deep=False),
+                                    from_file.drop_attrs(deep=False))
     # the same members infect fewer with fewer contacts: the variants really differ
     infections = simulated.total_flow.sel(flow="infection")
     assert (infections.sel(variant="fewer-contacts") < infections.sel(variant="usual")).all()
@@ -193,8 +188,8 @@ def test_simulate_a_chosen_variant(tmp_path):
     """Member i draws the same numbers in every variant, so one variant alone gives the
     same trajectories; without its compare_to variant there are no differences."""
     scenario = grouped_scenario(tmp_path, members=4)
-    both = api.simulate(scenario)
-    alone = api.simulate(scenario, variants=["fewer-contacts"])
+    both = api.simulate(scenario, backend="numpy")
+    alone = api.simulate(scenario, variants=["fewer-contacts"], backend="numpy")
     assert list(alone.variant.values) == ["fewer-contacts"]
     assert not [name for name in alone.data_vars if name.startswith("difference_")]
     np.testing.assert_array_equal(alone.state.values[0],
@@ -209,7 +204,7 @@ def test_simulated_sir_matches_the_final_size_and_peak_relations(tmp_path):
     final susceptibles S_inf and the largest prevalence at S = N / R0."""
     text = sir_text(members=2, days=300, population=1000000, infectious=10, beta=0.4,
                     gamma=0.2, step=0.125, report_every=0.25, seed=3, name="closed-sir")
-    dataset = api.simulate(load_text(tmp_path, text, "sir"))
+    dataset = api.simulate(load_text(tmp_path, text, "sir"), backend="numpy")
     n, r0, s0, i0 = 1e6, 2.0, 1e6 - 10, 10.0
     invariant = s0 + i0 - n / r0 * np.log(s0)
     s_inf = brentq(lambda s: s - n / r0 * np.log(s) - invariant, 1.0, n / r0)

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from ensemble.output.store import WorkStore
+from ensemble.run.journal import WorkJournal
 from ensemble.output.metrics import member_metrics
 from ensemble.output.quantiles import quantiles
 from support import fill, grouped_scenario, layout_of
@@ -24,7 +24,7 @@ def result(tmp_path_factory):
     as float days) together with its layout."""
     directory = tmp_path_factory.mktemp("summary")
     layout = layout_of(grouped_scenario(directory, members=9))
-    store = WorkStore.open(directory / "result.nc", layout, resume=False, force=False)
+    store = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
     fill(store, layout, chunk=4)
     path = store.finish()
     with xr.open_dataset(path, decode_times=False) as dataset:
@@ -43,7 +43,7 @@ def test_peak_time_is_the_first_time_of_the_maximum():
     times = np.array([0.0, 1.0, 2.0, 3.0])
     state = np.array([[[1.0, 3.0, 3.0, 2.0], [1.0, np.nan, 0.0, 0.0]]])
     flow = np.array([[[np.nan, 2.0, 5.0, 5.0]]])
-    metrics = member_metrics(state, flow, times)
+    metrics = member_metrics({"state": state, "flow_count": flow}, times)
     np.testing.assert_array_equal(metrics["peak_value"], [[3.0, np.nan]])
     np.testing.assert_array_equal(metrics["peak_time"], [[1.0, np.nan]])
     np.testing.assert_array_equal(metrics["flow_peak_value"], [[5.0]])
@@ -60,7 +60,7 @@ def test_peaks_and_totals_of_made_up_members(result):
     times = layout.times
     n_groups = layout.n_groups
     for v in range(len(layout.variants)):
-        for m in range(layout.members):
+        for m in range(layout.member_count):
             for row in range(layout.n_states):
                 c, g = divmod(row, n_groups)
                 assert dataset.peak_value.values[v, m, c, g] == 100 + 10 * m + row + v
@@ -92,11 +92,11 @@ def test_trajectory_quantiles_equal_numpy_on_included_members(result):
     probabilities = dataset["quantile"].values
     for v in range(len(layout.variants)):
         keep = _included(dataset.status.values[v])
-        assert keep.sum() == layout.members - 2 and keep[3]
+        assert keep.sum() == layout.member_count - 2 and keep[3]
         for name in ("state", "flow_count"):
             expected = np.quantile(dataset[name].values[v][keep], probabilities, axis=0)
             np.testing.assert_array_equal(dataset[f"{name}_quantile"].values[v], expected)
-    np.testing.assert_array_equal(dataset.members_in_summary, [layout.members - 2] * 2)
+    np.testing.assert_array_equal(dataset.members_in_summary, [layout.member_count - 2] * 2)
 
 
 @pytest.mark.parametrize("metric", ["peak_value", "peak_time", "flow_peak_value",

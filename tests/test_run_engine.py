@@ -9,9 +9,10 @@ import numpy as np
 import pytest
 
 import ensemble.run.execute as execute
+import ensemble.run.journal as journal_module
 from ensemble import api
 from ensemble.model.lower import lower_model
-from ensemble.output.store import WorkStore
+from ensemble.run.journal import WorkJournal
 from ensemble.errors import RunFailed
 from ensemble.run.execute import open_client
 from ensemble.scenario.load import load_scenario
@@ -90,7 +91,7 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
     scenario = load_scenario(write_scenario(tmp_path, members=12))
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     layout = layout_of(scenario)
-    store = WorkStore.open(tmp_path / "result.nc", layout, resume=False, force=False)
+    store = WorkJournal.open(tmp_path / "result.nc", layout, resume=False, force=False)
     token = store.mark()
     assert store.shares_directory(token) and not store.shares_directory("elsewhere")
 
@@ -101,7 +102,7 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
                                            "numpy")
     assert saved == execute.ChunkSaved((0, 6, 12)) and store.saved() == [(0, 6, 12)]
 
-    driver = WorkStore.open(tmp_path / "driver.nc", layout, resume=False, force=False)
+    driver = WorkJournal.open(tmp_path / "driver.nc", layout, resume=False, force=False)
     output = execute.compute_chunk(scenario, models[0], (0, 6, 12), "numpy")
     driver.save(output.key, output.result, output.reported)
     chunk = "chunk-v0-0000000006-0000000012"
@@ -122,13 +123,13 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
 
 
 def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) -> None:
-    """The store's contract (ensemble/output/store.py): chunks saved during a run reach the
+    """The journal's contract (ensemble/run/journal.py): chunks saved during a run reach the
     durable list in the background, so a resume after a crash of the system keeps them.
     With the interval at zero every chunk arriving while no batch runs starts one; leaving
     waits for the last batch."""
-    monkeypatch.setattr(execute, "CHECKPOINT_SECONDS", 0.0)
+    monkeypatch.setattr(journal_module, "CHECKPOINT_SECONDS", 0.0)
     scenario = load_scenario(write_scenario(tmp_path, members=12))
-    store = WorkStore.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
+    store = WorkJournal.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
                            force=False)
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
@@ -161,7 +162,7 @@ def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -
 def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypatch,
                                                          misleading: bool,
                                                          refine_pilots: int) -> None:
-    """The store's contract (ensemble/output/selection.py): past the pilot, chunks keep
+    """The selection's contract (ensemble/output/selection.py): past the pilot, chunks keep
     only candidates for the quantiles, and the file has the bits of a run that keeps
     every chunk whole; with a misleading pilot (its values inflated by a third, so the
     brackets miss) the missed cells are computed again from the chunks, with the same
@@ -169,46 +170,48 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     candidates were cut with other brackets.  With refined brackets (from the first two
     pilots' worth of members; 40,000 members are too few for four), the chunks after them
     are cut with those and the ones before cut again at the finish."""
-    import ensemble.output.store as store_module
+    import ensemble.output.brackets as brackets_module
+    import ensemble.output.finish as finish_module
+    import ensemble.output.selection as selection_module
 
     monkeypatch.chdir(tmp_path)
-    monkeypatch.setattr(store_module, "REFINE_PILOTS", refine_pilots)
+    monkeypatch.setattr(brackets_module, "REFINE_PILOTS", refine_pilots)
     scenario = write_scenario(tmp_path, members=40_000, days=20, keep_members=False)
-    monkeypatch.setattr(store_module, "PILOT_BYTES", 0)
+    monkeypatch.setattr(brackets_module, "PILOT_BYTES", 0)
     reference = api.run(scenario, output=tmp_path / "whole.nc", workers=0, chunk=4000,
                         progress=False)
 
-    monkeypatch.setattr(store_module, "PILOT_BYTES", 2**30)
+    monkeypatch.setattr(brackets_module, "PILOT_BYTES", 2**30)
     if misleading:
-        real_ranges = store_module.pilot_ranges
-        monkeypatch.setattr(store_module, "pilot_ranges",
+        real_ranges = selection_module.pilot_ranges
+        monkeypatch.setattr(selection_module, "pilot_ranges",
                             lambda pilot, probabilities: real_ranges(pilot * 1.3,
                                                                      probabilities))
     kept = []
-    real_candidates = store_module.chunk_candidates
+    real_candidates = selection_module.chunk_candidates
 
     def counting_candidates(values, included, brackets, out=None):
         candidates = real_candidates(values, included, brackets, out)
         kept.append(candidates.values.size / values.size)
         return candidates
 
-    monkeypatch.setattr(store_module, "chunk_candidates", counting_candidates)
+    monkeypatch.setattr(selection_module, "chunk_candidates", counting_candidates)
     missed = []
-    real_recomputed = store_module.WorkStore._recomputed_quantiles
+    real_recomputed = finish_module.Finisher._recomputed_quantiles
 
-    def counting_recomputed(self, name, keys, included, cells, recompute):
+    def counting_recomputed(self, name, keys, included, cells):
         missed.append(len(cells))
-        return real_recomputed(self, name, keys, included, cells, recompute)
+        return real_recomputed(self, name, keys, included, cells)
 
-    monkeypatch.setattr(store_module.WorkStore, "_recomputed_quantiles", counting_recomputed)
+    monkeypatch.setattr(finish_module.Finisher, "_recomputed_quantiles", counting_recomputed)
     recut = []
-    real_recut = store_module.recut
+    real_recut = selection_module.recut
 
     def counting_recut(part, coarse, fine):
         recut.append(part)
         return real_recut(part, coarse, fine)
 
-    monkeypatch.setattr(store_module, "recut", counting_recut)
+    monkeypatch.setattr(selection_module, "recut", counting_recut)
     real_make_design = execute.make_design
 
     def failing_make_design(scenario, variant, model, members):

@@ -1,15 +1,17 @@
-"""Arrays -> the CF-1.10 result dataset of SPEC section 3: names, dimensions, dtypes,
-units, attributes, chunking and compression.
+"""Arrays -> the CF-1.10 result dataset: names, dimensions, dtypes, units, attributes,
+chunking and compression (the project's reference, ``ensemble/scenario/reference.md``,
+result file, documents every variable).
 
-Every variable of the result file is described here once (:func:`variable_spec`), and
-every way of making a result uses it: :func:`build_dataset` for the variables that fit
-in memory (written by xarray), :func:`create_variable` for the variables added later
-with netCDF4 (the trajectories of every member, chunk by chunk, and their quantiles,
-:func:`append_variables`), and :func:`dataset_from_results` for
-a whole ensemble held in memory (:func:`ensemble.api.simulate`).  Arrays arrive with the model's flat
-rows (``c * n_groups + g`` for states, ``f * n_groups + g`` for flows) and leave with
-separate compartment/flow and group dimensions, ``group`` just before ``time`` and
-``time`` last (CF-1.10 section 2.4, "Dimensions": T last is recommended).
+Every variable of the result file is described here once (:func:`variable_spec`, which
+reads the trajectory variables and their metrics from :mod:`.variables`), and every way
+of making a result uses it: :func:`build_dataset` for the variables that fit in memory
+(written by xarray, or returned whole by :func:`ensemble.simulate`), and
+:func:`create_variable` for the variables added later with netCDF4 (the trajectories of
+every member, chunk by chunk, and their quantiles, :func:`append_variables`).  Arrays
+arrive with the model's flat rows (``c * n_groups + g`` for states, ``f * n_groups + g``
+for flows) and leave with separate compartment/flow and group dimensions, ``group`` just
+before ``time`` and ``time`` last (CF-1.10 section 2.4, "Dimensions": T last is
+recommended).
 
 References
 ----------
@@ -30,11 +32,9 @@ import numpy as np
 import xarray as xr
 
 from ensemble.about import CAUTION
-from ensemble.records import STATUS_FLAGS, ChunkResult
-from ensemble.output.layout import STREAMED, ResultLayout
-from ensemble.output.metrics import (FLOW_METRICS, METRICS, STATE_METRICS, member_metrics,
-                                     summary_quantiles)
-from ensemble.output.quantiles import in_summary, member_quantiles
+from ensemble.output.layout import ResultLayout
+from ensemble.output.variables import METRIC_NAMES, TRAJECTORY_NAMES, metric, trajectory
+from ensemble.records import STATUS_FLAGS
 
 LABELLED_DIMS = ("variant", "compartment", "flow", "group")
 """Dimensions that carry a string label variable ``<dim>_name``."""
@@ -42,20 +42,6 @@ LABELLED_DIMS = ("variant", "compartment", "flow", "group")
 CHUNK_BYTES = 2**20
 """Target size of a netCDF chunk of the per-member variables without a time axis (the
 size of HDF5's default chunk cache)."""
-
-_COUNT = "number of persons"
-_BASE_NAMES = {
-    "state": f"{_COUNT} in the compartment",
-    "flow_count": f"{_COUNT} moved by the flow over the report interval ending at time",
-    "peak_value": f"largest reported {_COUNT} in the compartment",
-    "peak_time": f"first reported time of the largest {_COUNT} in the compartment",
-    "flow_peak_value": f"largest {_COUNT} moved by the flow over one report interval",
-    "flow_peak_time": f"end of the first report interval with the largest {_COUNT} "
-                      "moved by the flow",
-    "total_flow": f"{_COUNT} moved by the flow over the whole horizon",
-}
-_TIME_VALUED = ("peak_time", "flow_peak_time")
-
 
 @dataclass(frozen=True)
 class VariableSpec:
@@ -80,11 +66,46 @@ def time_attrs(layout: ResultLayout) -> dict[str, str]:
             "standard_name": "time", "axis": "T", "long_name": "time"}
 
 
-def _metric_attrs(layout: ResultLayout, metric: str) -> dict[str, object]:
-    if metric in _TIME_VALUED:
+def _trajectory_spec(layout: ResultLayout, name: str) -> VariableSpec:
+    """Every member's values of trajectory variable ``name``."""
+    variable = trajectory(name)
+    attrs: dict[str, object] = {"long_name": variable.long_name, "units": variable.units}
+    if variable.cell_methods:
+        attrs["cell_methods"] = variable.cell_methods
+    return VariableSpec(("variant", "member", *rows_dims(layout, variable.rows), "time"),
+                        np.float64, attrs)
+
+
+def _metric_spec(layout: ResultLayout, name: str) -> VariableSpec:
+    """Every member's values of metric ``name``: times for a peak time, else in the
+    units of its trajectory variable."""
+    found, variable = metric(name)
+    if found.kind == "peak_time":
         units = {k: v for k, v in time_attrs(layout).items() if k in ("units", "calendar")}
-        return {"long_name": _BASE_NAMES[metric], **units}
-    return {"long_name": _BASE_NAMES[metric], "units": "1"}
+    else:
+        units = {"units": variable.units}
+    return VariableSpec(("variant", "member", *rows_dims(layout, variable.rows)),
+                        np.float64, {"long_name": found.long_name, **units})
+
+
+def _quantile_spec(base: VariableSpec) -> VariableSpec:
+    """Quantiles over members of the variable ``base`` describes."""
+    attrs = {k: v for k, v in base.attrs.items() if k != "long_name"}
+    return VariableSpec(("variant", "quantile", *base.dims[2:]), np.float64,
+                        {"long_name": f"quantile over members of the {base.attrs['long_name']}",
+                         **attrs})
+
+
+def _difference_spec(layout: ResultLayout, name: str) -> VariableSpec:
+    """Quantiles over members of each member's metric ``name`` minus the same member's
+    in the ``compare_to`` variant (a difference of times in days)."""
+    found, variable = metric(name)
+    other = layout.scenario.output.compare_to
+    return VariableSpec(
+        ("variant", "quantile", *rows_dims(layout, variable.rows)), np.float64,
+        {"long_name": f"quantile over members of the member's {found.long_name} minus the "
+                      f"same member's in variant {other}",
+         "units": "days" if found.kind == "peak_time" else variable.units})
 
 
 def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
@@ -94,39 +115,19 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
     ------
     KeyError : ``name`` is not a variable of this layout's result file.
     """
-    compartments, flows = rows_dims(layout, "compartment"), rows_dims(layout, "flow")
-    rows_of = {**dict.fromkeys(STATE_METRICS, compartments),
-               **dict.fromkeys(FLOW_METRICS, flows)}
-    if name == "state":
-        return VariableSpec(("variant", "member", *compartments, "time"), np.float64,
-                            {"long_name": _BASE_NAMES["state"], "units": "1"})
-    if name == "flow_count":
-        return VariableSpec(("variant", "member", *flows, "time"), np.float64,
-                            {"long_name": _BASE_NAMES["flow_count"], "units": "1",
-                             "cell_methods": "time: sum"})
-    if name in ("state_quantile", "flow_count_quantile"):
-        base = variable_spec(layout, name.removesuffix("_quantile"))
-        attrs = {k: v for k, v in base.attrs.items() if k != "long_name"}
-        return VariableSpec(("variant", "quantile", *base.dims[2:]), np.float64,
-                            {"long_name": f"quantile over members of the {base.attrs['long_name']}",
-                             **attrs})
-    if name in METRICS:
-        return VariableSpec(("variant", "member", *rows_of[name]), np.float64,
-                            _metric_attrs(layout, name))
-    if name.endswith("_quantile") and name.removesuffix("_quantile") in METRICS:
-        metric = name.removesuffix("_quantile")
-        attrs = _metric_attrs(layout, metric)
-        attrs["long_name"] = f"quantile over members of the {attrs['long_name']}"
-        return VariableSpec(("variant", "quantile", *rows_of[metric]), np.float64, attrs)
+    if name in TRAJECTORY_NAMES:
+        return _trajectory_spec(layout, name)
+    if name in METRIC_NAMES:
+        return _metric_spec(layout, name)
+    base = name.removesuffix("_quantile")
+    if name.endswith("_quantile") and base in TRAJECTORY_NAMES:
+        return _quantile_spec(_trajectory_spec(layout, base))
+    if name.endswith("_quantile") and base in METRIC_NAMES:
+        return _quantile_spec(_metric_spec(layout, base))
+    compared = name.removeprefix("difference_quantile_")
     if (name.startswith("difference_quantile_") and layout.scenario.output.compare_to
-            and name.removeprefix("difference_quantile_") in METRICS):
-        metric = name.removeprefix("difference_quantile_")
-        other = layout.scenario.output.compare_to
-        return VariableSpec(
-            ("variant", "quantile", *rows_of[metric]), np.float64,
-            {"long_name": f"quantile over members of the member's {_BASE_NAMES[metric]} "
-                          f"minus the same member's in variant {other}",
-             "units": "days" if metric in _TIME_VALUED else "1"})
+            and compared in METRIC_NAMES):
+        return _difference_spec(layout, compared)
     if name == "members_in_summary":
         return VariableSpec(("variant",), np.int32, {
             "long_name": "number of members behind the quantiles (members without the "
@@ -159,12 +160,12 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
 
 def result_variables(layout: ResultLayout) -> tuple[str, ...]:
     """Names of every data variable of the complete result file, in file order."""
-    names = [*(STREAMED if layout.scenario.output.members else ()),
-             "state_quantile", "flow_count_quantile",
+    names = [*(TRAJECTORY_NAMES if layout.keep_members else ()),
+             *(f"{name}_quantile" for name in TRAJECTORY_NAMES),
              *(f"param_{p}" for p in layout.parameters),
-             *METRICS, *(f"{m}_quantile" for m in METRICS)]
+             *METRIC_NAMES, *(f"{m}_quantile" for m in METRIC_NAMES)]
     if layout.scenario.output.compare_to:
-        names.extend(f"difference_quantile_{m}" for m in METRICS)
+        names.extend(f"difference_quantile_{m}" for m in METRIC_NAMES)
     names.extend(["members_in_summary", "step_error", "observed_order", "status"])
     return tuple(names)
 
@@ -174,7 +175,7 @@ def coordinates(layout: ResultLayout) -> dict[str, xr.Variable]:
     :func:`encoding`)."""
     quantile_values = np.asarray(layout.scenario.output.quantiles, dtype=np.float64)
     coords = {
-        "member": xr.Variable("member", np.arange(layout.members, dtype=np.int32),
+        "member": xr.Variable("member", np.arange(layout.member_count, dtype=np.int32),
                               {"long_name": "ensemble member index (0-based)"}),
         "quantile": xr.Variable("quantile", quantile_values,
                                 {"long_name": "probability of the quantile over members",
@@ -194,7 +195,7 @@ def coordinates(layout: ResultLayout) -> dict[str, xr.Variable]:
 
 
 def global_attributes(layout: ResultLayout) -> dict[str, object]:
-    """The global attributes of SPEC section 3."""
+    """The global attributes of the result file."""
     scenario = layout.scenario
     attrs: dict[str, object] = {
         "Conventions": "CF-1.10",
@@ -203,7 +204,7 @@ def global_attributes(layout: ResultLayout) -> dict[str, object]:
         "history": layout.history,
         "scenario": scenario.source.text,
         "fingerprint": layout.fingerprint,
-        "members": np.int32(layout.members),
+        "members": np.int32(layout.member_count),
         "seed": np.int64(scenario.seed),
         "sampling": scenario.sampling,
         "solver_method": scenario.solver.method,
@@ -221,8 +222,8 @@ def file_shape(layout: ResultLayout, name: str, array: np.ndarray) -> np.ndarray
 
     The first two axes (variant and member or quantile) keep their lengths, so a chunk
     of members reshapes as well as the whole ensemble."""
-    sizes = {"time": layout.n_reports, "compartment": len(layout.compartments),
-             "flow": len(layout.flows), "group": layout.n_groups}
+    sizes = {"time": layout.n_reports, "group": layout.n_groups,
+             **{dim: len(layout.labels(dim)) for dim in ("compartment", "flow")}}
     trailing = tuple(sizes[d] for d in variable_spec(layout, name).dims[2:])
     return np.asarray(array).reshape(array.shape[:2] + trailing)
 
@@ -240,8 +241,8 @@ def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> 
 
     Returns
     -------
-    xarray.Dataset with the coordinates, label variables and global attributes of
-    SPEC section 3, the time coordinate as float days (CF-encoded).
+    xarray.Dataset with the coordinates, label variables and global attributes of the
+    result file, the time coordinate as float days (CF-encoded).
     """
     unknown = set(variables) - set(result_variables(layout))
     if unknown:
@@ -254,43 +255,6 @@ def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> 
         data_vars[name] = xr.Variable(spec.dims, values.astype(spec.dtype, copy=False),
                                       dict(spec.attrs))
     return xr.Dataset(data_vars, coords=coordinates(layout), attrs=global_attributes(layout))
-
-
-def dataset_from_results(layout: ResultLayout,
-                         results: Sequence[tuple[ChunkResult, Mapping[str, np.ndarray]]]
-                         ) -> xr.Dataset:
-    """The result dataset (not yet decoded) from every member of every variant in memory.
-
-    Parameters
-    ----------
-    layout : the result's layout.
-    results : per variant, in ``layout.variants`` order, (result, reported): the
-        :class:`ChunkResult` of members 0 .. members-1 and ``Design.reported``.
-
-    Returns
-    -------
-    The same variables, values and attributes as the file the streaming store writes
-    (without ``state`` and ``flow_count`` when ``output.members`` is false).
-    """
-    variables = {name: np.stack([getattr(result, name) for result, _ in results])
-                 for name in (*STREAMED, "step_error", "observed_order", "status")}
-    for name in layout.parameters:
-        values = np.stack([np.asarray(reported[name], dtype=np.float64)
-                           for _, reported in results])
-        variables[f"param_{name}"] = values.transpose(0, 2, 1) if values.ndim == 3 else values
-    variables.update(member_metrics(variables["state"], variables["flow_count"], layout.times))
-    included = in_summary(variables["status"])
-    probabilities = layout.scenario.output.quantiles
-    for name in STREAMED:
-        variables[f"{name}_quantile"] = np.stack(
-            [member_quantiles(variables[name][v], probabilities, included[v])
-             for v in range(len(layout.variants))])
-    variables.update(summary_quantiles(variables, variables["status"], probabilities,
-                                       layout.compare_index))
-    if not layout.scenario.output.members:
-        for name in STREAMED:
-            del variables[name]
-    return build_dataset(layout, variables)
 
 
 def _chunking(dims: tuple[str, ...], shape: tuple[int, ...]) -> tuple[int, ...]:

@@ -1,10 +1,13 @@
 """What a result file looks like apart from its numbers: labels, times, parameters,
 provenance (:class:`ResultLayout`).
+
+The layout takes the model's labels as given (the run layer lowers the model and reads
+them off), so this layer needs nothing of how trajectories are computed.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Literal
@@ -12,12 +15,8 @@ from typing import Literal
 import numpy as np
 
 from ensemble.about import PROGRAM, VERSION
-from ensemble.model.lower import LoweredModel, time_varying_parameters
+from ensemble.output.variables import TrajectoryVariable
 from ensemble.scenario.schema import Scenario
-
-
-STREAMED = ("state", "flow_count")
-"""Variables with every member's trajectories, written chunk by chunk."""
 
 
 @dataclass(frozen=True)
@@ -41,12 +40,13 @@ class ResultLayout:
 
     Attributes
     ----------
-    scenario : the validated scenario (title, start, quantiles, compression, the
-        ``members`` flag, ``compare_to``, the file's text for the ``scenario`` attribute).
+    scenario : the validated scenario (title, start, quantiles, compression, whether
+        every member's trajectories are kept, ``compare_to``, the file's text for the
+        ``scenario`` attribute).
     variants : variant names, in file order (index = the variant index of a chunk key).
     compartments, groups, flows : labels (``groups`` None without strata).
     times : (n_reports,) float64 reported times in days since the start.
-    members : members per variant.
+    member_count : members per variant.
     parameters : name -> :class:`ParameterInfo` for every parameter constant in time in
         every variant (reported as ``param_<name>``), in file order.
     time_varying_parameters : names of the parameters that change with time in some
@@ -63,7 +63,7 @@ class ResultLayout:
     groups: tuple[str, ...] | None
     flows: tuple[str, ...]
     times: np.ndarray
-    members: int
+    member_count: int
     parameters: Mapping[str, ParameterInfo]
     time_varying_parameters: tuple[str, ...]
     fingerprint: str
@@ -91,36 +91,48 @@ class ResultLayout:
         return len(self.times)
 
     @property
+    def keep_members(self) -> bool:
+        """Whether the result holds every member's trajectories (else their quantiles
+        only)."""
+        return bool(self.scenario.output.keep_members)
+
+    def labels(self, dim: str) -> tuple[str, ...]:
+        """The labels of the rows dimension ``dim`` of trajectory variables."""
+        return {"compartment": self.compartments, "flow": self.flows}[dim]
+
+    def row_count(self, variable: TrajectoryVariable) -> int:
+        """Flat rows of ``variable`` in a chunk: its labels times the groups."""
+        return len(self.labels(variable.rows)) * self.n_groups
+
+    def cell_count(self, variable: TrajectoryVariable) -> int:
+        """Reported times times rows of ``variable``: the cells of one member."""
+        return self.row_count(variable) * self.n_reports
+
+    @property
     def compare_index(self) -> int | None:
         """Index of the ``output.compare_to`` variant (None when not set)."""
         other = self.scenario.output.compare_to
         return self.variants.index(other) if other else None
 
     @classmethod
-    def from_scenario(cls, scenario: Scenario, models: Sequence[LoweredModel],
-                      fingerprint: str, history: str) -> ResultLayout:
+    def from_scenario(cls, scenario: Scenario, *, compartments: tuple[str, ...],
+                      groups: tuple[str, ...] | None, flows: tuple[str, ...],
+                      varying: Collection[str], fingerprint: str,
+                      history: str) -> ResultLayout:
         """The layout of ``scenario``'s result.
 
         Parameters
         ----------
         scenario : the validated scenario, with command-line overrides applied.
-        models : one compiled model per variant, in ``scenario.variants`` order (their
-            labels must agree).
+        compartments, groups, flows : the model's labels (the same in every variant).
+        varying : names of the parameters that change with time in some variant
+            (schedules and what is derived from them); they are not reported per member.
         fingerprint, history : see the class attributes.
         """
-        if len(models) != len(scenario.variants):
-            raise ValueError(f"{len(models)} compiled models for "
-                             f"{len(scenario.variants)} variants")
-        first = models[0]
-        for model in models[1:]:
-            if (model.compartments, model.groups, model.flows) != (
-                    first.compartments, first.groups, first.flows):
-                raise ValueError("compiled models of the variants disagree on labels")
         per_variant = [scenario.variant_parameters(v) for v in scenario.variants]
         names: list[str] = []
         for merged in per_variant:
             names.extend(n for n in merged if n not in names)
-        varying = set().union(*(time_varying_parameters(m) for m in per_variant))
         time_varying = tuple(n for n in names if n in varying)
         parameters: dict[str, ParameterInfo] = {}
         for name in names:
@@ -136,8 +148,8 @@ class ResultLayout:
         times = np.array([float(t) for t in scenario.report_times()], dtype=np.float64)
         return cls(scenario=scenario,
                    variants=tuple(v.name for v in scenario.variants),
-                   compartments=tuple(first.compartments), groups=first.groups,
-                   flows=tuple(first.flows), times=times, members=scenario.members,
+                   compartments=tuple(compartments), groups=groups,
+                   flows=tuple(flows), times=times, member_count=scenario.member_count,
                    parameters=MappingProxyType(parameters),
                    time_varying_parameters=time_varying,
                    fingerprint=fingerprint, history=history)

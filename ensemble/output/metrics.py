@@ -15,14 +15,7 @@ import numba
 import numpy as np
 
 from ensemble.output.quantiles import in_summary, member_quantiles
-
-STATE_METRICS = ("peak_value", "peak_time")
-"""Metrics with one value per member and state row."""
-
-FLOW_METRICS = ("flow_peak_value", "flow_peak_time", "total_flow")
-"""Metrics with one value per member and flow row."""
-
-METRICS = STATE_METRICS + FLOW_METRICS
+from ensemble.output.variables import METRIC_NAMES, TRAJECTORIES
 
 
 @numba.njit(cache=True, nogil=True)
@@ -81,31 +74,33 @@ def _time_scan(values: np.ndarray, times: np.ndarray, first: int
                  for array in (peak, when, total))
 
 
-def member_metrics(state: np.ndarray, flow_count: np.ndarray,
+def member_metrics(trajectories: Mapping[str, np.ndarray],
                    times: np.ndarray) -> dict[str, np.ndarray]:
-    """Peaks, peak times and totals of each member.
+    """The metrics of each member's trajectories (:data:`.variables.METRICS`).
 
     Parameters
     ----------
-    state : (..., n_states, n_reports) persons at each reported time.
-    flow_count : (..., n_flow_elements, n_reports) persons moved over the interval ending
-        at each reported time (the first entry, NaN, is ignored).
+    trajectories : name of each trajectory variable -> (..., rows, n_reports) values
+        (values before the variable's ``first_report`` are ignored).
     times : (n_reports,) reported times.
 
     Returns
     -------
-    ``peak_value``, ``peak_time`` (..., n_states); ``flow_peak_value``,
-    ``flow_peak_time``, ``total_flow`` (..., n_flow_elements), all float64.  A peak time is
-    the first reported time at which the largest value is reached; a trajectory with a
-    NaN has neither.  Totals add the intervals in time order, so a member's total has the
-    same bits whatever chunk it was computed in.
+    metric name -> (..., rows) float64.  A peak time is the first reported time at which
+    the largest value is reached; a trajectory with a NaN has neither.  Totals add the
+    values in time order, so a member's total has the same bits whatever chunk it was
+    computed in.
     """
     times = np.asarray(times, dtype=np.float64)
-    peak_value, peak_time, _ = _time_scan(state, times, 0)
-    flow_peak_value, flow_peak_time, total_flow = _time_scan(flow_count, times, 1)
-    return {"peak_value": peak_value, "peak_time": peak_time,
-            "flow_peak_value": flow_peak_value, "flow_peak_time": flow_peak_time,
-            "total_flow": total_flow}
+    metrics: dict[str, np.ndarray] = {}
+    for variable in TRAJECTORIES:
+        if not variable.metrics:
+            continue
+        peak, when, total = _time_scan(trajectories[variable.name], times,
+                                       variable.first_report)
+        taken = {"peak_value": peak, "peak_time": when, "total": total}
+        metrics.update((metric.name, taken[metric.kind]) for metric in variable.metrics)
+    return metrics
 
 
 def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
@@ -117,7 +112,8 @@ def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
 
     Parameters
     ----------
-    per_member : each name of :data:`METRICS` -> (variant, member, rows) values.
+    per_member : each metric name (:data:`.variables.METRIC_NAMES`) -> (variant, member,
+        rows) values.
     status : (variant, member) status bits.
     probabilities : the quantiles' probabilities.
     compare_to : index of the variant to subtract member by member; a member counts in
@@ -131,7 +127,7 @@ def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
     result: dict[str, np.ndarray] = {
         "members_in_summary": included.sum(axis=1).astype(np.int32)}
     n_variants = included.shape[0]
-    for name in METRICS:
+    for name in METRIC_NAMES:
         values = per_member[name]
         result[f"{name}_quantile"] = np.stack(
             [member_quantiles(values[v], probabilities, included[v])

@@ -5,7 +5,7 @@ scenario, the variant's compiled model, the member range, the backend), so a tas
 is rerun (its worker died, the run was resumed) gives the same bits.  The driver keeps a
 bounded window of tasks in flight.  A worker that sees the work directory (always on the
 local cluster; checked by a marker file on others) saves its chunk into the
-:class:`~ensemble.output.store.WorkStore` itself and hands back only the key, so the
+:class:`~ensemble.run.journal.WorkJournal` itself and hands back only the key, so the
 trajectories never cross to the driver; otherwise the driver saves each finished chunk at
 once and forgets it.  Memory stays bounded whatever the number of members.
 """
@@ -33,10 +33,11 @@ from ensemble.records import ChunkResult
 from ensemble.integrate.kernels.blocks import block_size
 from ensemble.errors import RunFailed, StoreWriteError
 from ensemble.methods import METHODS
-from ensemble.model.lower import LoweredModel, lower_model
-from ensemble.output.store import ResultLayout, WorkStore
+from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey
 from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
+from ensemble.run.journal import Checkpoints, WorkJournal
+from ensemble.run.layout import lowered_models, result_layout
 from ensemble.run.local import LocalStart, available_cores
 from ensemble.run.plan import default_chunk, fingerprint, plan_chunks
 from ensemble.sampling import make_design
@@ -47,10 +48,6 @@ DEFAULT_BACKEND = "compiled"
 run 5 to 13 times faster than the numpy reference and are cached on disk after their
 first compilation (``scripts/benchmark.py``).  ``--backend numpy`` selects the readable
 reference; the two agree to 1e-12 relative (``tests/test_compiled_backend.py``)."""
-
-CHECKPOINT_SECONDS = 60.0
-"""Seconds between two calls of :meth:`WorkStore.make_durable` on the chunks saved
-meanwhile: a crash of the operating system loses at most about this much work."""
 
 IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
@@ -112,13 +109,13 @@ class ChunkSaved:
 
 
 def compute_and_save_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
-                           store: WorkStore, token: str, backend: str = DEFAULT_BACKEND,
+                           store: WorkJournal, token: str, backend: str = DEFAULT_BACKEND,
                            kernel_threads: int | None = None, candidates: bool = False
                            ) -> ChunkOutput | ChunkSaved:
     """:func:`compute_chunk`, then save the chunk into ``store`` here (as candidates for
-    the quantiles when ``candidates`` and its pilot is in, :meth:`WorkStore.save`) when
+    the quantiles when ``candidates`` and its pilot is in, :meth:`WorkJournal.save`) when
     this process sees the store's directory (it reads back ``token``, from
-    :meth:`WorkStore.mark`), else hand the whole chunk back for the driver to save."""
+    :meth:`WorkJournal.mark`), else hand the whole chunk back for the driver to save."""
     if not store.shares_directory(token):
         return compute_chunk(scenario, model, key, backend, kernel_threads)
     output = compute_chunk(scenario, model, key, backend, kernel_threads,
@@ -231,11 +228,11 @@ def _in_process(scenario: Scenario, models: Sequence[LoweredModel],
 
 
 def _on_cluster(client: Client, scenario: Scenario, models: Sequence[LoweredModel],
-                keys: Sequence[ChunkKey], backend: str, store: WorkStore | None = None,
+                keys: Sequence[ChunkKey], backend: str, store: WorkJournal | None = None,
                 candidates: bool = False) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
-    With ``store``, a worker that sees its directory (:meth:`WorkStore.mark`, checked by
+    With ``store``, a worker that sees its directory (:meth:`WorkJournal.mark`, checked by
     every task) saves its chunk there itself and yields only the key.  At most
     :data:`IN_FLIGHT_PER_THREAD` tasks per worker thread are submitted at a time
     (re-counted as workers come and go).  A task whose worker dies is rerun elsewhere by
@@ -371,12 +368,12 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                  address: str | None = None, cluster: ClusterProfile | None = None,
                  resume: bool = False, force: bool = False,
                  progress: Progress | None = None, members: tuple[int, int] | None = None,
-                 finish: Callable[[WorkStore], Path] | None = None,
+                 finish: Callable[[WorkJournal], Path] | None = None,
                  started: LocalStart | None = None, processes: bool = False) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
-    :class:`~ensemble.output.store.WorkStore`); each finished chunk is saved there as
+    :class:`~ensemble.run.journal.WorkJournal`); each finished chunk is saved there as
     it arrives, and the result appears under ``scenario.output.path`` by an atomic rename
     when every chunk is in.
 
@@ -399,7 +396,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     members : ``(start, end)``: compute only those members of every variant (a shard,
         :mod:`ensemble.run.shards`); default all.
     finish : what to make of the store once every planned chunk is saved (default
-        :meth:`WorkStore.finish`, the result file; a shard writes its part file).
+        :meth:`WorkJournal.finish`, the result file; a shard writes its part file).
     started : the local cluster, already being started by the caller, to use when the
         run goes to a local cluster (the caller closes it).
     processes : local workers in processes of their own instead of threads of this one
@@ -421,13 +418,13 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     """
     progress = progress if progress is not None else Progress()
     path = Path(scenario.output.path)
-    models = [lower_model(scenario, variant) for variant in scenario.variants]
+    models = lowered_models(scenario)
     run_fingerprint = fingerprint(scenario, backend)
-    if resume and not force and WorkStore.is_complete(path, run_fingerprint):
+    if resume and not force and WorkJournal.is_complete(path, run_fingerprint):
         progress.note(f"{path} is already complete; nothing to do")
         return path
-    layout = ResultLayout.from_scenario(scenario, models, run_fingerprint, history)
-    store = WorkStore.open(path, layout, resume=resume, force=force)
+    layout = result_layout(scenario, models, run_fingerprint, history)
+    store = WorkJournal.open(path, layout, resume=resume, force=force)
 
     workers = workers if workers is not None else scenario.compute.workers
     address = address if address is not None else scenario.compute.address
@@ -468,10 +465,10 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                                                   backend).result)
 
 
-def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
+def _save_all(store: WorkJournal, outputs: Generator[Finished, None, None],
               progress: Progress, candidates: bool = False) -> None:
     """Save each finished chunk as it arrives (unless its worker saved it; as candidates
-    for the quantiles with ``candidates``, :meth:`WorkStore.save`), making the saved
+    for the quantiles with ``candidates``, :meth:`WorkJournal.save`), making the saved
     chunks durable every :data:`CHECKPOINT_SECONDS` in a background thread; on any
     exit (an interrupt, a failed save) close ``outputs`` at once, so that tasks still
     queued are cancelled while the client is open."""
@@ -481,39 +478,3 @@ def _save_all(store: WorkStore, outputs: Generator[Finished, None, None],
                 store.save(output.key, output.result, output.reported, candidates)
             checkpoints.add(output.key)
             progress.advance(output.key[2] - output.key[1])
-
-
-class Checkpoints:
-    """Makes saved chunks durable (:meth:`WorkStore.make_durable`) in a background thread,
-    at most one batch at a time and at most every ``interval`` seconds, so that syncing
-    never holds up the driver.  Leaving the context waits for the batch in progress and
-    raises its error, if any; chunks not yet synced stay trusted within this boot."""
-
-    def __init__(self, store: WorkStore, interval: float | None = None):
-        self.store = store
-        self.interval = CHECKPOINT_SECONDS if interval is None else interval
-        self.waiting: list[ChunkKey] = []
-        self.started = time.monotonic()
-        self.running: concurrent.futures.Future | None = None
-        self.pool = concurrent.futures.ThreadPoolExecutor(1, "ensemble-checkpoint")
-
-    def __enter__(self) -> Checkpoints:
-        return self
-
-    def add(self, key: ChunkKey) -> None:
-        """Chunk ``key`` is saved; start a batch if it is time."""
-        self.waiting.append(key)
-        if self.running is not None:
-            if not self.running.done():
-                return
-            self.running.result()
-            self.running = None
-        if time.monotonic() - self.started >= self.interval:
-            self.running = self.pool.submit(self.store.make_durable, self.waiting)
-            self.waiting = []
-            self.started = time.monotonic()
-
-    def __exit__(self, *exc_info) -> None:
-        self.pool.shutdown(wait=True)
-        if self.running is not None and exc_info[0] is None:
-            self.running.result()

@@ -7,9 +7,12 @@ members' trajectories, step errors, status and reported parameters exactly as co
 and what is needed to rebuild the scenario (its text, member count, seed, backend).
 
 :func:`merge_parts` feeds every part's members into one
-:class:`~ensemble.output.store.WorkStore` and finishes it, so the result is the file a
+:class:`~ensemble.run.journal.WorkJournal` and finishes it, so the result is the file a
 single run would have written, identical in every number: chunks are pure functions of the
-member indices, and the store's summaries do not depend on how members were chunked.
+member indices, and the summaries do not depend on how members were chunked.  A part
+stores the chunk results' own series (the trajectory variables of
+:mod:`ensemble.output.variables` that are not derived from others), from which the journal
+makes every trajectory variable again.
 """
 
 from __future__ import annotations
@@ -30,11 +33,14 @@ from typing import Any
 import netCDF4
 import numpy as np
 
+from ensemble.durable import replace_atomically
 from ensemble.errors import PartError
+from ensemble.output.layout import ResultLayout
+from ensemble.output.variables import TRAJECTORIES
 from ensemble.records import ChunkKey, ChunkResult
-from ensemble.model.lower import lower_model
-from ensemble.output.store import ResultLayout, WorkStore, partial_path
 from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
+from ensemble.run.journal import WorkJournal, partial_path
+from ensemble.run.layout import lowered_models, result_layout
 from ensemble.run.plan import fingerprint, plan_chunks, shard_range
 from ensemble.scenario.load import validate
 from ensemble.scenario.schema import Scenario
@@ -94,7 +100,7 @@ def default_part_path(scenario: Scenario, shard: Shard) -> Path:
 def engine_options(scenario: Scenario, shard: Shard, backend: str) -> dict[str, Any]:
     """Arguments of :func:`ensemble.run.execute.run_scenario` that make it run ``shard``
     only and end with its part file instead of a result."""
-    return {"members": shard.members(scenario.members),
+    return {"members": shard.members(scenario.member_count),
             "finish": functools.partial(write_part, shard=shard, backend=backend)}
 
 
@@ -111,46 +117,52 @@ def part_is_complete(path: str | os.PathLike[str], fingerprint: str, shard: Shar
 # ----------------------------------------------------------------------------- writing
 
 
-def write_part(store: WorkStore, shard: Shard, backend: str) -> Path:
-    """Write the part file of ``shard`` from the chunks saved in ``store``, atomically.
+STORED = tuple(variable for variable in TRAJECTORIES if variable.derive is None)
+"""The trajectory variables a part stores: the chunk results' own series."""
 
-    ``store`` is the work in progress of the part (opened at the part's path); every member
-    of the shard in every variant must be saved in it.  The file goes to a temporary name in
-    the destination directory, is fsynced and renamed to ``store.path``; then the work in
-    progress is removed.
+
+def write_part(journal: WorkJournal, shard: Shard, backend: str) -> Path:
+    """Write the part file of ``shard`` from the chunks saved in ``journal``, whole or not
+    at all (:func:`ensemble.durable.replace_atomically`), then remove the work in
+    progress.
+
+    ``journal`` is the work in progress of the part (opened at the part's path); every
+    member of the shard in every variant must be saved in it.
 
     Returns
     -------
     The part's path.
     """
-    layout = store.layout
-    scenario = layout.scenario
-    start, end = shard.members(layout.members)
-    missing = store.pending(plan_chunks(scenario, max(end - start, 1), members=(start, end)))
+    layout = journal.layout
+    start, end = shard.members(layout.member_count)
+    missing = journal.pending(plan_chunks(layout.scenario, max(end - start, 1),
+                                          members=(start, end)))
     if missing:
         raise RuntimeError(f"shard {shard}: members {missing} were never saved")
-    path = Path(store.path)
-    temporary = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
+    path = Path(journal.path)
+
+    def write(temporary: Path) -> None:
         with netCDF4.Dataset(temporary, "w", format="NETCDF4") as part:
             _define_part(part, layout, shard, backend, start, end)
-            for key in store.saved():
-                result, reported = store.load(key)
-                variant, first, last = key
-                rows = slice(first - start, last - start)
-                part["state"][variant, rows] = result.state
-                part["flow_count"][variant, rows] = result.flow_count
-                for name in ("step_error", "observed_order", "status"):
-                    part[name][variant, rows] = getattr(result, name)
-                for name in layout.parameters:
-                    part[f"param_{name}"][variant, ..., rows] = reported[name]
-        with open(temporary, "rb+") as handle:
-            os.fsync(handle.fileno())
-        os.replace(temporary, path)
-    finally:
-        temporary.unlink(missing_ok=True)
+            for key in journal.saved():
+                _write_chunk(part, layout, key, *journal.load(key), start)
+
+    replace_atomically(path, write)
     shutil.rmtree(partial_path(path), ignore_errors=True)
     return path
+
+
+def _write_chunk(part: netCDF4.Dataset, layout: ResultLayout, key: ChunkKey,
+                 result: ChunkResult, reported: dict[str, np.ndarray], start: int) -> None:
+    """One saved chunk's members into the part file."""
+    variant, first, last = key
+    rows = slice(first - start, last - start)
+    for variable in STORED:
+        part[variable.source][variant, rows] = getattr(result, variable.source)
+    for name in ("step_error", "observed_order", "status"):
+        part[name][variant, rows] = getattr(result, name)
+    for name in layout.parameters:
+        part[f"param_{name}"][variant, ..., rows] = reported[name]
 
 
 def _define_part(part: netCDF4.Dataset, layout: ResultLayout, shard: Shard, backend: str,
@@ -167,25 +179,25 @@ def _define_part(part: netCDF4.Dataset, layout: ResultLayout, shard: Shard, back
         "shard_count": np.int32(shard.count),
         "member_start": np.int64(start),
         "member_end": np.int64(end),
-        "members": np.int64(scenario.members),
+        "members": np.int64(scenario.member_count),
         "seed": np.int64(scenario.seed),
         "backend": backend,
         "scenario_path": os.path.abspath(scenario.source.path),
         "scenario": scenario.source.text,
     })
-    rows = {"state": layout.n_states, "flow_count": layout.n_flow_elements}
     part.createDimension("variant", len(layout.variants))
     part.createDimension("member", end - start)
     part.createDimension("group", layout.n_groups)
     part.createDimension("time", layout.n_reports)
     part.createVariable("member", "i8", ("member",))[:] = np.arange(start, end)
-    for name, n_rows in rows.items():
-        part.createDimension(f"{name}_row", n_rows)
+    for variable in STORED:
+        n_rows = layout.row_count(variable)
+        part.createDimension(f"{variable.source}_row", n_rows)
         per_member = max(1, CHUNK_BYTES // (8 * n_rows * layout.n_reports))
         part.createVariable(
-            name, "f8", ("variant", "member", f"{name}_row", "time"), zlib=True, complevel=1,
-            shuffle=True, chunksizes=(1, max(1, min(per_member, end - start)), n_rows,
-                                      layout.n_reports))
+            variable.source, "f8", ("variant", "member", f"{variable.source}_row", "time"),
+            zlib=True, complevel=1, shuffle=True,
+            chunksizes=(1, max(1, min(per_member, end - start)), n_rows, layout.n_reports))
     for name in ("step_error", "observed_order"):
         part.createVariable(name, "f8", ("variant", "member"))
     part.createVariable("status", "u1", ("variant", "member"))
@@ -294,14 +306,13 @@ def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLi
     check_parts(infos)
     infos.sort(key=lambda info: info.shard.index)
     scenario, backend = _scenario_of(infos[0], output)
-    models = [lower_model(scenario, variant) for variant in scenario.variants]
-    layout = ResultLayout.from_scenario(scenario, models, infos[0].fingerprint,
-                                        f"{infos[0].history}\n{history}")
-    store = WorkStore.open(output, layout, resume=False, force=force)
+    layout = result_layout(scenario, lowered_models(scenario), infos[0].fingerprint,
+                           f"{infos[0].history}\n{history}")
+    journal = WorkJournal.open(output, layout, resume=False, force=force)
     for info in infos:
         for key, result, reported in _read_chunks(info, layout):
-            store.save(key, result, reported)
-    return store.finish()
+            journal.save(key, result, reported)
+    return journal.finish()
 
 
 def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenario, str]:
@@ -312,7 +323,7 @@ def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenar
         members, seed, backend = int(part.members), int(part.seed), str(part.backend)
     scenario = validate(tomllib.loads(text, parse_float=Decimal), original, text)
     scenario = dataclasses.replace(
-        scenario, members=members, seed=seed,
+        scenario, member_count=members, seed=seed,
         output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if fingerprint(scenario, backend) != info.fingerprint:
         raise PartError(str(info.path), "", None, "made by a different version of "
@@ -326,7 +337,7 @@ def _read_chunks(info: PartInfo, layout: ResultLayout
     """A part's members as (key, result, reported), variant by variant, in blocks of at most
     :data:`BLOCK_BYTES` of trajectories."""
     start, end = info.members
-    per_member = 8 * (layout.n_states + layout.n_flow_elements) * layout.n_reports
+    per_member = 8 * sum(layout.cell_count(variable) for variable in STORED)
     block = max(1, BLOCK_BYTES // per_member)
     with netCDF4.Dataset(info.path) as part:
         part.set_auto_mask(False)
@@ -336,8 +347,8 @@ def _read_chunks(info: PartInfo, layout: ResultLayout
                 rows = slice(first - start, last - start)
                 result = ChunkResult(
                     members=np.arange(first, last, dtype=np.int64),
-                    state=part["state"][variant, rows],
-                    flow_count=part["flow_count"][variant, rows],
+                    **{variable.source: part[variable.source][variant, rows]
+                       for variable in STORED},
                     step_error=part["step_error"][variant, rows],
                     observed_order=part["observed_order"][variant, rows],
                     status=part["status"][variant, rows])

@@ -1,8 +1,9 @@
-"""The streaming store: durable chunks, resume, atomic finish, bounded memory.
+"""The work journal: durable chunks, resume, atomic finish, bounded memory.
 
-The expected values are the store's own contract (ensemble/output/store.py, SPEC section
-2 on ``--resume`` and ``--force``); quantiles are compared with ``numpy.quantile`` over
-all members held in memory (Hyndman and Fan 1996, definition 7).
+The expected values are the journal's own contract (ensemble/run/journal.py; the
+project's reference, ensemble/scenario/reference.md, on ``--resume`` and ``--force``);
+quantiles are compared with ``numpy.quantile`` over all members held in memory (Hyndman
+and Fan 1996, definition 7).
 """
 
 from __future__ import annotations
@@ -15,16 +16,16 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from ensemble.output import store as store_module
-from ensemble.output.selection import pilot_brackets
+from ensemble import durable
 from ensemble.errors import FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError
-from ensemble.output.store import (
-    WorkStore,
-    block_plan,
-    partial_path,
-    result_fingerprint,
-)
+from ensemble.output import brackets as brackets_module
+from ensemble.output import writer
+from ensemble.output.finish import block_plan
 from ensemble.output.quantiles import in_summary
+from ensemble.output.selection import pilot_brackets
+from ensemble.output.writer import result_fingerprint
+from ensemble.run import chunk_files
+from ensemble.run.journal import WorkJournal, partial_path
 from support import fill, grouped_scenario, layout_of, made_up_members
 
 
@@ -34,7 +35,7 @@ def layout(tmp_path):
 
 
 def _open(path, layout, **options):
-    return WorkStore.open(path, layout, **{"resume": False, "force": False, **options})
+    return WorkJournal.open(path, layout, **{"resume": False, "force": False, **options})
 
 
 def _numbers(path) -> dict[str, np.ndarray]:
@@ -102,7 +103,7 @@ def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
     stray = partial_path(path) / ".tmp-chunk-v0-0000000003-0000000006-99999"
     stray.mkdir()
     (stray / "state.npy").write_bytes(b"half a chunk")
-    half_written_result = tmp_path / ".tmp-r.nc-99999"
+    half_written_result = tmp_path / f".r.nc.x1y2z3{writer.UNFINISHED_SUFFIX}"
     half_written_result.write_bytes(b"killed while finishing")
     del killed
 
@@ -130,7 +131,7 @@ def test_after_a_crash_of_the_system_only_durable_chunks_are_kept(tmp_path, layo
     store.make_durable([(0, 0, 3)])
     assert _open(path, layout, resume=True).saved() == [(0, 0, 3), (0, 3, 6), (1, 0, 3)]
     for name in ("chunk-v0-0000000000-0000000003", "chunk-v0-0000000003-0000000006"):
-        (partial_path(path) / name / store_module.BOOT_FILE).write_text("an earlier boot")
+        (partial_path(path) / name / chunk_files.BOOT_FILE).write_text("an earlier boot")
     resumed = _open(path, layout, resume=True)
     assert resumed.saved() == [(0, 0, 3), (1, 0, 3)]
     np.testing.assert_array_equal(resumed.load((0, 0, 3))[0].state,
@@ -162,14 +163,14 @@ def test_an_existing_result_is_replaced_only_when_forced(tmp_path, layout):
     assert path.read_bytes() == b"an older result"      # untouched until finish
     store.finish()
     assert result_fingerprint(path) == layout.fingerprint
-    assert WorkStore.is_complete(path, layout.fingerprint)
-    assert not WorkStore.is_complete(path, "0" * 64)
+    assert WorkJournal.is_complete(path, layout.fingerprint)
+    assert not WorkJournal.is_complete(path, "0" * 64)
 
 
 def test_finish_names_missing_members(tmp_path, layout):
     store = _open(tmp_path / "r.nc", layout)
     fill(store, layout, chunk=5)
-    chunk = store._chunk_directory((1, 5, 10))
+    chunk = store.chunks.directory((1, 5, 10))
     for entry in chunk.iterdir():
         entry.unlink()
     chunk.rmdir()
@@ -195,7 +196,7 @@ def test_the_final_name_appears_only_complete(tmp_path, layout, monkeypatch):
             assert "state" in nc.variables and "flow_count" in nc.variables
         real_replace(source, target)
 
-    monkeypatch.setattr(store_module.os, "replace", checking_replace)
+    monkeypatch.setattr(durable.os, "replace", checking_replace)
     store.finish()
     assert seen == [layout.fingerprint]
 
@@ -216,11 +217,11 @@ def test_a_full_disk_keeps_the_chunks_for_resume(tmp_path, layout, monkeypatch, 
     def disk_full(*args, **kwargs):
         raise failure
 
-    monkeypatch.setattr(WorkStore, "_stream_trajectories", disk_full)
+    monkeypatch.setattr(writer, "write_trajectories", disk_full)
     with pytest.raises(StoreWriteError, match=message):
         store.finish()
     assert not path.exists()
-    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".tmp-")] == []
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
     monkeypatch.undo()
     resumed = _open(path, layout, resume=True)
     assert len(resumed.saved()) == 4
@@ -283,17 +284,17 @@ def test_brackets_derived_block_by_block_equal_those_of_the_whole_pilot(tmp_path
     once (the selection's own contract, ensemble/output/selection.py)."""
     pilot = 1000
     layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
-    monkeypatch.setattr(store_module, "PILOT_MEMBERS", pilot)
-    monkeypatch.setattr(store_module, "PILOT_BLOCK_BYTES", 3 * pilot * 8)
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBERS", pilot)
+    monkeypatch.setattr(brackets_module, "PILOT_BLOCK_BYTES", 3 * pilot * 8)
     store = _open(tmp_path / "r.nc", layout)
-    assert store.pilot_members() == pilot
+    assert store.brackets.pilot_members() == pilot
     for first in (0, 600):
         store.save((1, first, first + 600), *made_up_members(layout, 1, first, first + 600))
-    assert store.brackets(0) is None                    # variant 0 has no pilot yet
+    assert store.brackets.pilot(0) is None              # variant 0 has no pilot yet
     result, _ = made_up_members(layout, 1, 0, pilot)
     included = in_summary(result.status)
     assert not included.all()                           # members 1 and 2 are left out
-    derived = store.brackets(1)
+    derived = store.brackets.pilot(1)
     for name in ("state", "flow_count"):
         values = getattr(result, name).transpose(2, 1, 0).reshape(-1, pilot)
         expected = pilot_brackets(values[:, included].copy(), layout.scenario.output.quantiles)

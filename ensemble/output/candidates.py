@@ -1,0 +1,97 @@
+"""Saved chunks of one variant read as candidates for the quantiles, whatever each chunk
+keeps (:mod:`.selection` for the method).
+
+Used by the finish (exact quantiles from the candidates) and by the refinement of the
+brackets (:mod:`.brackets`), both working through cells in blocks of about a given
+number of bytes of candidates, each thread in buffers of its own that it reuses.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+
+from ensemble.output import selection
+from ensemble.output.selection import Brackets, Candidates
+from ensemble.output.sources import MemberSource
+from ensemble.records import ChunkKey
+
+ReadValues = Callable[[int, int, int], np.ndarray]
+"""``read(part, start, stop)``: candidate values ``start .. stop - 1`` of part ``part``
+(the ``read`` of :func:`.selection.order_statistics`)."""
+
+
+def reusable(workspace: threading.local, name: str, shape: tuple[int, ...]) -> np.ndarray:
+    """A float64 array of ``shape`` over the thread's buffer ``name``, grown as needed."""
+    size = math.prod(shape)
+    buffer = getattr(workspace, name, None)
+    if buffer is None or buffer.size < size:
+        buffer = np.empty(size)
+        setattr(workspace, name, buffer)
+    return buffer[:size].reshape(shape)
+
+
+def summed_counts(parts: Sequence[Candidates], brackets: Brackets
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(below, nans, inside) of the chunks' candidates summed: (cells, K), (cells,) and
+    (cells, K)."""
+    cells, intervals = brackets.lower.shape
+    return (sum(np.asarray(part.below) for part in parts),
+            sum(np.asarray(part.nans) for part in parts),
+            sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts))
+
+
+def cells_per_block(inside: np.ndarray, block_bytes: int) -> int:
+    """Cells whose candidates (``inside``: (cells, K) counts) take about
+    ``block_bytes``."""
+    per_cell = 8 * max(1, int(inside.sum()) // len(inside))
+    return max(1, block_bytes // per_cell)
+
+
+def candidate_parts(source: MemberSource, name: str, keys: Sequence[ChunkKey],
+                    included: np.ndarray, brackets: Brackets, coarse: Brackets,
+                    cells: int, workspace: threading.local,
+                    pool: ThreadPoolExecutor | None = None
+                    ) -> tuple[list[Candidates], ReadValues]:
+    """Every chunk of ``keys`` (of one variant, whose members behind the quantiles
+    ``included`` marks) as candidates of trajectory variable ``name`` cut with
+    ``brackets``, and how to read their values.
+
+    Chunks cut with ``brackets`` stay in the source (their values read as needed), those
+    cut with the ``coarse`` brackets are cut again, whole ones are cut here, and any
+    other (not expected) is cut from every value, which the source supplies; on the
+    ``pool``'s threads if given.
+    """
+    digest = brackets.digest()
+
+    def prepare(key: ChunkKey) -> tuple[Candidates, bool]:
+        cut_with = source.cut_with(key, name)
+        if cut_with == digest:
+            return source.candidates(key, name, with_values=False), True
+        if cut_with is not None and cut_with == coarse.digest():
+            return selection.recut(source.candidates(key, name, with_values=True),
+                                   coarse, brackets), False
+        if cut_with is None:
+            values = source.read_cells(key, name, 0,
+                                       reusable(workspace, "whole", (cells, key[2] - key[1])))
+        else:
+            values = np.ascontiguousarray(source.whole(key, name))
+        return selection.chunk_candidates(values, included[key[1]:key[2]], brackets), False
+
+    prepared = list(pool.map(prepare, keys) if pool is not None else map(prepare, keys))
+    parts = [part for part, _ in prepared]
+    stored = [kept for _, kept in prepared]
+
+    def read(index: int, start: int, stop: int) -> np.ndarray:
+        """Values ``start .. stop - 1`` of part ``index``, read into this thread's
+        buffer when the source keeps them."""
+        if not stored[index]:
+            return parts[index].values[start:stop]
+        return source.read_candidate_values(keys[index], name, start,
+                                            reusable(workspace, "read", (stop - start,)))
+
+    return parts, read
