@@ -108,10 +108,6 @@ TRAJECTORIES: tuple[TrajectoryVariable, ...] = (
 
 TRAJECTORY_NAMES = tuple(variable.name for variable in TRAJECTORIES)
 
-SOURCES = tuple(dict.fromkeys(variable.source for variable in TRAJECTORIES))
-"""The chunk result's series the trajectory variables are made from (what a part file
-stores)."""
-
 METRICS: tuple[tuple[Metric, TrajectoryVariable], ...] = tuple(
     (metric, variable) for variable in TRAJECTORIES for metric in variable.metrics)
 """Every per-member metric with the trajectory variable it is made from, in file order."""
