@@ -345,10 +345,10 @@ def subset(design: Design, members: np.ndarray) -> Design:
 # ----------------------------------------------------------------- output tests
 
 GROUPED_TOML = """\
-# Illustrative only: an invented village of two age groups.
+# Illustrative only: an invented village (a coined name) of two age groups.
 [scenario]
 name = "two-groups"
-title = "Hollow Ford (invented): two-group SIR"
+title = "Vemmaroth (invented village): two-group SIR"
 {start}
 days = 12
 members = {members}
