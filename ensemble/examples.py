@@ -74,7 +74,7 @@ def seir_text(*, members: int = 40, days: int = 30, method: str = "rk4", step: f
         day 10 by a step schedule of ``contact_scale``).
     output, keep_members
         Result path and whether it keeps every member's trajectories (``[output]
-        members``).
+        keep_members``).
     name, title
         ``[scenario]`` name and title.
     """
@@ -110,7 +110,7 @@ step = {step}
 
 [output]
 path = "{output}"
-members = {str(keep_members).lower()}
+keep_members = {str(keep_members).lower()}
 """
 
 

@@ -15,7 +15,7 @@ states, a 16 x 16 contact matrix), 365 days at step 0.25 with RK4, it measures
 and prints member-steps per second and the ratios against (d) measured in the same run;
 then the cost per step of the implicit methods on the 16-group model relative to RK4,
 and the end-to-end time and peak memory of ``ensemble run`` (a subprocess) for 200,000
-SEIR members (``members = false``, the step check on) against (d) doing the same
+SEIR members (``keep_members = false``, the step check on) against (d) doing the same
 integrations (the run at h and the check at h/2: three times the steps).
 
 Each figure is the best of a few repetitions (the machine may be shared).  Models and
@@ -310,7 +310,7 @@ class Case:
         rows = np.arange(count)
         design = self.design
         part.design = dataclasses.replace(
-            design, members=design.members[rows], parameters=design.parameters[:, rows],
+            design, member_index=design.member_index[rows], parameters=design.parameters[:, rows],
             initial=design.initial[:, rows], invalid_start=design.invalid_start[rows],
             schedule_values=tuple(v[:, rows] for v in design.schedule_values))
         part.n_members = count
@@ -495,7 +495,7 @@ def report_end_to_end(directory: Path, n_members: int, case: Case, reference: fl
     steps = DAYS * STEPS_PER_REPORT
     reference_seconds = n_members * steps * 3 / reference
     print(f"\n== end to end: ensemble run --backend compiled, {n_members} SEIR members, "
-          "members = false, step check on (h and h/2) ==")
+          "keep_members = false, step check on (h and h/2) ==")
     print(f"exit status {best.returncode}, wall {wall:.1f} s (fastest of "
           f"{', '.join(f'{run.wall:.1f}' for run in runs)} s), peak memory of the process "
           f"tree {max(run.watch.peak for run in runs) / 1e9:.2f} GB (goal < 2 GB), CPU time "

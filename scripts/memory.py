@@ -1,7 +1,7 @@
 """Peak resident memory of a large `ensemble run`, against the 2 GB goal of issue 4.
 
 Writes an illustrative SEIR scenario (invented numbers) with 200,000 members over 365
-days, ``members = false`` and the step check on, runs ``ensemble run`` on it in a
+days, ``keep_members = false`` and the step check on, runs ``ensemble run`` on it in a
 subprocess, samples the resident memory of the whole process tree (the driver and its
 dask workers) with psutil, and prints the peak (also the driver's and the largest
 worker's), its ratio to 2 GB, and the wall time split into computing and writing.

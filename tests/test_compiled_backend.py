@@ -144,7 +144,7 @@ def _load(tmp_path, text: str, name: str):
     scenario = load_scenario(str(path))
     variant = scenario.variants[0]
     model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.members))
+    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
     return scenario, model, design
 
 
@@ -219,7 +219,7 @@ def test_step_check_compared_in_the_kernel_has_the_bits_of_step_error(two_group,
         model, design, METHODS[method], half, int(round(float(solver.report_every) / half)),
         scenario.n_reports, solver.newton, solver.check.atol, coarse.state, 2,
         METHODS[method].order, 1e-3)
-    assert design.members.size % block_size(model, METHODS[method]) != 0
+    assert design.member_index.size % block_size(model, METHODS[method]) != 0
     assert np.array_equal(error, expected, equal_nan=True)
     assert np.isnan(error[[3, 5]]).all() and np.isfinite(np.delete(error, [3, 5])).all()
     assert (error > 0).any()
@@ -234,7 +234,7 @@ def test_compiled_rk4_matches_scipy(tmp_path, cache):
     scenario, model, design = _load(tmp_path, SEIR, "seir")
     member_index = np.arange(0, 700, 100)
     subset = dataclasses.replace(
-        design, members=design.members[member_index],
+        design, member_index=design.member_index[member_index],
         parameters=design.parameters[:, member_index],
         initial=design.initial[:, member_index],
         invalid_start=design.invalid_start[member_index])
@@ -264,7 +264,7 @@ def test_member_gets_same_bits_in_any_chunk_and_thread_count(tmp_path, cache):
     def chunk(start, stop):
         rows = np.arange(start, stop)
         return dataclasses.replace(
-            design, members=design.members[rows], parameters=design.parameters[:, rows],
+            design, member_index=design.member_index[rows], parameters=design.parameters[:, rows],
             initial=design.initial[:, rows], invalid_start=design.invalid_start[rows])
 
     threads = kernel_threads()
@@ -293,7 +293,7 @@ def test_second_process_loads_kernel_from_disk_without_compiling(tmp_path):
         from ensemble.methods import METHODS
         from ensemble.integrate.kernels.cache import KernelCache
         from ensemble.integrate.kernels.launch import integrate_fixed_compiled
-        scenario = load_scenario({str(scenario_path)!r}, members=8)
+        scenario = load_scenario({str(scenario_path)!r}, member_count=8)
         model = lower_model(scenario, scenario.variants[0])
         design = make_design(scenario, scenario.variants[0], model, np.arange(8))
         integrate_fixed_compiled(model, design, METHODS["forward-euler"], 0.25, 4, 3,
@@ -371,7 +371,7 @@ def test_implicit_member_gets_same_bits_in_any_chunk(two_group, method):
     whole = _run(integrate_fixed_compiled, scenario, model, design, method)
     rows = np.arange(2, 9)
     part = dataclasses.replace(
-        design, members=design.members[rows], parameters=design.parameters[:, rows],
+        design, member_index=design.member_index[rows], parameters=design.parameters[:, rows],
         initial=design.initial[:, rows], invalid_start=design.invalid_start[rows],
         schedule_values=tuple(v[:, rows] for v in design.schedule_values))
     alone = _run(integrate_fixed_compiled, scenario, model, part, method)

@@ -16,10 +16,10 @@ def test_seir_text_carries_its_settings(tmp_path, sampling):
     scenario = load_text(tmp_path, seir_text(members=7, days=12, method="heun", step=0.5,
                                              sampling=sampling, keep_members=False,
                                              output="town.nc", distancing=True))
-    assert (scenario.members, scenario.days, scenario.solver.method) == (7, 12, "heun")
+    assert (scenario.member_count, scenario.days, scenario.solver.method) == (7, 12, "heun")
     assert float(scenario.solver.step) == 0.5
     assert scenario.sampling == sampling
-    assert (scenario.output.path, scenario.output.members) == ("town.nc", False)
+    assert (scenario.output.path, scenario.output.keep_members) == ("town.nc", False)
     assert [variant.name for variant in scenario.variants] == ["no-change", "distancing"]
     assert len(load_text(tmp_path, seir_text()).variants) == 1
 

@@ -52,8 +52,8 @@ def scenario_with(tmp_path, rate: str = "S * (contacts @ (1 / (q - 1)))",
 def design_and_rates(scenario):
     variant = scenario.variants[0]
     model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.members))
-    s = np.empty((0, scenario.members))
+    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
+    s = np.empty((0, scenario.member_count))
     rates = RateFunctions(model).rates(0.0, design.initial, design.parameters, s)
     return model, design, rates
 

@@ -141,7 +141,7 @@ def assert_same_design(whole: Design, parts: list[Design]):
     def joined(get):
         return np.concatenate([get(p) for p in parts], axis=-1)
 
-    assert np.array_equal(whole.members, joined(lambda d: d.members))
+    assert np.array_equal(whole.member_index, joined(lambda d: d.member_index))
     assert np.array_equal(whole.parameters, joined(lambda d: d.parameters))
     assert np.array_equal(whole.initial, joined(lambda d: d.initial), equal_nan=True)
     assert np.array_equal(whole.invalid_start, joined(lambda d: d.invalid_start))

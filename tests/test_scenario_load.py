@@ -95,12 +95,12 @@ def error_of(load, text: str) -> ScenarioError:
 
 def test_defaults(load) -> None:
     scenario = load(MINIMAL)
-    assert (scenario.members, scenario.seed, scenario.sampling) == (1, 0, "random")
+    assert (scenario.member_count, scenario.seed, scenario.sampling) == (1, 0, "random")
     assert [v.name for v in scenario.variants] == ["baseline"]
     assert scenario.variants[0].title is None and not scenario.variants[0].parameters
     assert scenario.output.path == "results/tiny.nc"
     assert scenario.output.quantiles == (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
-    assert (scenario.output.members, scenario.output.compression) == (True, 4)
+    assert (scenario.output.keep_members, scenario.output.compression) == (True, 4)
     assert scenario.output.compare_to is None
     solver = scenario.solver
     assert (solver.method, solver.step, solver.report_every) == ("rk4", Fraction(1, 4), 1)
@@ -159,11 +159,11 @@ def test_days_off_the_report_grid(load) -> None:
 
 def test_command_line_overrides(load) -> None:
     scenario = load(edit(MINIMAL, "days = 10", "days = 10\nmembers = 7\nseed = 3"),
-                    members=50, seed=11)
-    assert (scenario.members, scenario.seed) == (50, 11)
+                    member_count=50, seed=11)
+    assert (scenario.member_count, scenario.seed) == (50, 11)
 
 
-@pytest.mark.parametrize("overrides, key", [({"members": 0}, "scenario.members"),
+@pytest.mark.parametrize("overrides, key", [({"member_count": 0}, "scenario.members"),
                                             ({"seed": -1}, "scenario.seed")])
 def test_invalid_overrides(load, overrides, key) -> None:
     with pytest.raises(ScenarioError) as caught:
@@ -380,8 +380,8 @@ def test_warnings(load) -> None:
     sobol = text + '\n[sampling]\nmethod = "sobol"\n'
     warnings = scenario_warnings(load(sobol))
     assert len(warnings) == 1 and "power of two" in warnings[0] and "1024" in warnings[0]
-    assert scenario_warnings(load(sobol, members=1024)) == []
-    few = scenario_warnings(load(text, members=20))
+    assert scenario_warnings(load(sobol, member_count=1024)) == []
+    few = scenario_warnings(load(text, member_count=20))
     assert len(few) == 1 and "20 member" in few[0]
 
 

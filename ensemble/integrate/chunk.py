@@ -91,7 +91,7 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
 
     result = run(1)
     status = result.status.copy()
-    n_members = len(design.members)
+    n_members = len(design.member_index)
     error = np.full(n_members, np.nan)
     order = np.full(n_members, np.nan)
     if check.enabled and check.levels == 2 and backend == "compiled":
@@ -112,6 +112,6 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
                                    noise_floor(method, solver.newton))
     if check.enabled:
         mark_failed_checks(error, status)
-    return ChunkResult(members=np.asarray(design.members), state=result.state,
+    return ChunkResult(members=np.asarray(design.member_index), state=result.state,
                        flow_count=result.flow_count, step_error=error,
                        observed_order=order, status=status)

@@ -219,7 +219,7 @@ class _ChunkStepper:
 
     def __init__(self, model: LoweredModel, design: Design, method: Method, step: float,
                  newton: Newton):
-        n_members = len(design.members)
+        n_members = len(design.member_index)
         self.method = method
         self.step = step
         self.newton = newton
@@ -350,7 +350,7 @@ def integrate_fixed(model: LoweredModel, design: Design, method: Method, step: f
         States and flow counts at the reported times, and each member's status bits.
         The exact arithmetic is described in the module docstring.
     """
-    n_members = len(design.members)
+    n_members = len(design.member_index)
     stepper = _ChunkStepper(model, design, method, step, newton)
     state = np.empty((n_members, model.n_states, n_reports))
     flow_count = np.empty((n_members, model.n_flow_elements, n_reports))

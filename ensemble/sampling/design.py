@@ -33,7 +33,7 @@ class Design:
 
     Attributes
     ----------
-    members : (M,) int64 member indices (0-based, within the variant).
+    member_index : (M,) int64 member indices (0-based, within the variant).
     parameters : (n_parameter_slots, M) float64, rows as ``LoweredModel.parameter_slots``.
     schedule_values : per ``LoweredModel.schedule_slots`` entry, (n_knots, M) float64.
     initial : (n_states, M) float64 initial state (NaN for invalid starts).
@@ -42,7 +42,7 @@ class Design:
         constant in time in this variant (sampled, given or derived), for ``param_<name>``.
     """
 
-    members: np.ndarray
+    member_index: np.ndarray
     parameters: np.ndarray
     schedule_values: tuple[np.ndarray, ...]
     initial: np.ndarray
@@ -51,10 +51,10 @@ class Design:
 
 
 def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
-                members: np.ndarray) -> Design:
-    """Draw and derive the inputs of ``members`` of ``variant``.
+                member_index: np.ndarray) -> Design:
+    """Draw and derive the inputs of members ``member_index`` of ``variant``.
 
-    Member i's values depend only on the scenario (seed, sampling method, ``members``)
+    Member i's values depend only on the scenario (seed, sampling method, member count)
     and i, never on which other members are asked for at the same time.
 
     Parameters
@@ -63,27 +63,27 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
     variant : one of ``scenario.variants``.
     model : ``lower_model(scenario, variant)``: its values constant in time, and the
         rows of its parameters and schedules.
-    members : member indices in [0, scenario.members), e.g. ``np.arange(a, b)``.
+    member_index : member indices in [0, scenario.member_count), e.g. ``np.arange(a, b)``.
     """
-    members = np.asarray(members, dtype=np.int64).reshape(-1)
+    member_index = np.asarray(member_index, dtype=np.int64).reshape(-1)
     trees = model.constants
     with np.errstate(all="ignore"):
-        inputs = input_rows(scenario, variant, trees.inputs, members)
+        inputs = input_rows(scenario, variant, trees.inputs, member_index)
         values = _Evaluated(trees, inputs)
-        initial, invalid = initial_state(scenario, values.initial, members.size)
-        return Design(members=members, parameters=values.slots,
+        initial, invalid = initial_state(scenario, values.initial, member_index.size)
+        return Design(member_index=member_index, parameters=values.slots,
                       schedule_values=values.knots, initial=initial, invalid_start=invalid,
                       reported=values.reported)
 
 
 def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element],
-               members: np.ndarray) -> np.ndarray:
+               member_index: np.ndarray) -> np.ndarray:
     """(n_inputs, M): each given or drawn parameter element's value per member."""
     parameters = scenario.variant_parameters(variant)
     drawn = [element for element in elements
              if isinstance(parameters[element[0]].form, Distribution)]
-    uniforms = uniform_draws(scenario, drawn, members)
-    rows = np.empty((len(elements), members.size))
+    uniforms = uniform_draws(scenario, drawn, member_index)
+    rows = np.empty((len(elements), member_index.size))
     for row, (name, g) in enumerate(elements):
         rows[row] = _input_value(parameters[name], g, uniforms)
     return rows

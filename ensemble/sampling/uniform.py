@@ -68,29 +68,30 @@ def uncertain_columns(scenario: Scenario) -> tuple[ColumnKey, ...]:
 
 
 def uniform_draws(scenario: Scenario, keys: Sequence[ColumnKey],
-                  members: np.ndarray) -> dict[ColumnKey, np.ndarray]:
+                  member_index: np.ndarray) -> dict[ColumnKey, np.ndarray]:
     """Draws in (0, 1) of columns ``keys`` for member indices ``members``.
 
     Parameters
     ----------
-    scenario : gives ``seed``, ``sampling`` and ``members`` (the ensemble size).
+    scenario : gives ``seed``, ``sampling`` and ``member_count`` (the ensemble size).
     keys : the columns wanted; for ``sobol`` each must be in :func:`uncertain_columns`.
-    members : (M,) member indices in [0, scenario.members).
+    member_index : (M,) member indices in [0, scenario.member_count).
 
     Returns
     -------
     dict mapping each key to an (M,) float64 array.
     """
-    members = np.asarray(members, dtype=np.int64)
-    if members.size and (members.min() < 0 or members.max() >= scenario.members):
-        raise ValueError(f"member indices must lie in [0, {scenario.members})")
+    member_index = np.asarray(member_index, dtype=np.int64)
+    n_members = scenario.member_count
+    if member_index.size and (member_index.min() < 0 or member_index.max() >= n_members):
+        raise ValueError(f"member indices must lie in [0, {scenario.member_count})")
     if scenario.sampling == "random":
-        return {key: _random_column(scenario.seed, key, members) for key in keys}
+        return {key: _random_column(scenario.seed, key, member_index) for key in keys}
     if scenario.sampling == "latin-hypercube":
-        return {key: _latin_hypercube_column(scenario.seed, key, scenario.members, members)
+        return {key: _latin_hypercube_column(scenario.seed, key, n_members, member_index)
                 for key in keys}
     if scenario.sampling == "sobol":
-        return _sobol_columns(scenario.seed, uncertain_columns(scenario), keys, members)
+        return _sobol_columns(scenario.seed, uncertain_columns(scenario), keys, member_index)
     raise ValueError(f"unknown sampling method {scenario.sampling!r}")
 
 
@@ -106,13 +107,13 @@ def _stream(seed: int, tag: str, key: ColumnKey) -> np.random.PCG64:
                                                    _name_hash(name), element]))
 
 
-def _runs(members: np.ndarray) -> Iterator[tuple[int, slice]]:
+def _runs(member_index: np.ndarray) -> Iterator[tuple[int, slice]]:
     """(first member, positions) of each run of consecutive indices in ``members``."""
-    breaks = np.flatnonzero(np.diff(members) != 1) + 1
-    bounds = np.concatenate(([0], breaks, [members.size]))
+    breaks = np.flatnonzero(np.diff(member_index) != 1) + 1
+    bounds = np.concatenate(([0], breaks, [member_index.size]))
     for begin, end in zip(bounds[:-1], bounds[1:]):
         if end > begin:
-            yield int(members[begin]), slice(int(begin), int(end))
+            yield int(member_index[begin]), slice(int(begin), int(end))
 
 
 def _open_unit(raw: np.ndarray) -> np.ndarray:
@@ -120,18 +121,19 @@ def _open_unit(raw: np.ndarray) -> np.ndarray:
     return ((raw >> np.uint64(12)).astype(np.float64) + 0.5) * 2.0 ** -52
 
 
-def _stream_values(seed: int, tag: str, key: ColumnKey, members: np.ndarray) -> np.ndarray:
+def _stream_values(seed: int, tag: str, key: ColumnKey,
+                   member_index: np.ndarray) -> np.ndarray:
     """Output i of the column's stream, mapped into (0, 1), for each i in ``members``."""
-    out = np.empty(members.size)
-    for first, positions in _runs(members):
+    out = np.empty(member_index.size)
+    for first, positions in _runs(member_index):
         bit_generator = _stream(seed, tag, key)
         bit_generator.advance(first)
         out[positions] = _open_unit(bit_generator.random_raw(positions.stop - positions.start))
     return out
 
 
-def _random_column(seed: int, key: ColumnKey, members: np.ndarray) -> np.ndarray:
-    return _stream_values(seed, "random", key, members)
+def _random_column(seed: int, key: ColumnKey, member_index: np.ndarray) -> np.ndarray:
+    return _stream_values(seed, "random", key, member_index)
 
 
 @functools.lru_cache(maxsize=_PERMUTATION_CACHE_SIZE)
@@ -144,16 +146,16 @@ def _latin_hypercube_permutation(seed: int, key: ColumnKey, size: int) -> np.nda
 
 
 def _latin_hypercube_column(seed: int, key: ColumnKey, size: int,
-                            members: np.ndarray) -> np.ndarray:
+                            member_index: np.ndarray) -> np.ndarray:
     """Member i's draw lies in stratum perm_i: (perm_i + jitter_i) / size."""
-    strata = _latin_hypercube_permutation(seed, key, size)[members].astype(np.float64)
-    jitter = _stream_values(seed, "latin-hypercube-jitter", key, members)
+    strata = _latin_hypercube_permutation(seed, key, size)[member_index].astype(np.float64)
+    jitter = _stream_values(seed, "latin-hypercube-jitter", key, member_index)
     inside = np.minimum(strata + jitter, np.nextafter(strata + 1.0, 0.0))
     return inside / size
 
 
 def _sobol_columns(seed: int, columns: tuple[ColumnKey, ...], keys: Sequence[ColumnKey],
-                   members: np.ndarray) -> dict[ColumnKey, np.ndarray]:
+                   member_index: np.ndarray) -> dict[ColumnKey, np.ndarray]:
     position: Mapping[ColumnKey, int] = {key: j for j, key in enumerate(columns)}
     missing = [key for key in keys if key not in position]
     if missing:
@@ -162,8 +164,8 @@ def _sobol_columns(seed: int, columns: tuple[ColumnKey, ...], keys: Sequence[Col
         return {}
     from scipy.stats import qmc     # here only: scipy.stats takes half a second to import
 
-    points = np.empty((members.size, len(columns)))
-    for first, rows in _runs(members):
+    points = np.empty((member_index.size, len(columns)))
+    for first, rows in _runs(member_index):
         engine = qmc.Sobol(len(columns), scramble=True, bits=SOBOL_BITS,
                            rng=np.random.Generator(_stream(seed, "sobol", ("", 0))))
         if first:

@@ -63,7 +63,7 @@ def _heading(scenario: Scenario) -> str:
     if scenario.description:
         lines.append(_INDENT + scenario.description)
     start = f"from {scenario.start.isoformat()}, " if scenario.start else ""
-    lines.append(f"{_INDENT}{start}{time_text(scenario.days)} days, {scenario.members} "
+    lines.append(f"{_INDENT}{start}{time_text(scenario.days)} days, {scenario.member_count} "
                  f"member(s) per variant, seed {scenario.seed}")
     lines.append(f"{_INDENT}file {scenario.source.path}")
     return "\n".join(lines)
@@ -210,7 +210,7 @@ def _output(scenario: Scenario) -> str:
     rows = [
         ("path", output.path),
         ("quantiles", _numbers_text(output.quantiles)),
-        ("members", "kept (state and flow_count)" if output.members
+        ("keep_members", "yes (state and flow_count)" if output.keep_members
          else "left out (summaries only)"),
         ("compression", str(output.compression)),
     ]

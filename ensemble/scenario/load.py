@@ -43,14 +43,14 @@ _TOP_LEVEL = ("scenario", "model", "parameters", "sampling", "variants", "solver
               "compute")
 
 
-def load_scenario(path: str | Path, *, members: int | None = None,
+def load_scenario(path: str | Path, *, member_count: int | None = None,
                   seed: int | None = None) -> Scenario:
     """Read, check and complete the scenario file at ``path``.
 
     Parameters
     ----------
     path : the scenario file (TOML).
-    members, seed : command-line overrides of ``[scenario] members`` and ``seed``.
+    member_count, seed : command-line overrides of ``[scenario] members`` and ``seed``.
 
     Returns
     -------
@@ -72,8 +72,8 @@ def load_scenario(path: str | Path, *, members: int | None = None,
         raise ScenarioError(file, "", None, f"TOML syntax error: {exc}") from None
     scenario = validate(data, file, text)
     overrides: dict[str, int] = {}
-    if members is not None:
-        overrides["members"] = _override(file, "members", members, minimum=1)
+    if member_count is not None:
+        overrides["member_count"] = _override(file, "members", member_count, minimum=1)
     if seed is not None:
         overrides["seed"] = _override(file, "seed", seed, minimum=0)
     return dataclasses.replace(scenario, **overrides) if overrides else scenario
@@ -115,7 +115,7 @@ def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
     assert output and compute and sampling
     return Scenario(
         name=head.name, title=head.title, description=head.description, start=head.start,
-        days=head.days, members=head.members, seed=head.seed,
+        days=head.days, member_count=head.member_count, seed=head.seed,
         model=parts.model(structure), parameters=MappingProxyType(parts.resolved.parameters),
         sampling=sampling, variants=parts.variants,  # type: ignore[arg-type]
         solver=solver.solver(structure.population), output=output, compute=compute,
@@ -167,12 +167,13 @@ class _ModelParts:
 def scenario_warnings(scenario: Scenario) -> list[str]:
     """What a modeller should know about a valid scenario before running it."""
     warnings = []
-    members = scenario.members
-    if scenario.sampling == "sobol" and members & (members - 1):
-        warnings.append(f"sobol sampling with {members} members, which is not a power of "
-                        f"two: the points lose their balance (use {_next_power_of_two(members)})")
-    if members < 100:
-        warnings.append(f"only {members} member(s): the outer quantiles "
+    n_members = scenario.member_count
+    if scenario.sampling == "sobol" and n_members & (n_members - 1):
+        warnings.append(f"sobol sampling with {n_members} members, which is not a power of "
+                        "two: the points lose their balance "
+                        f"(use {_next_power_of_two(n_members)})")
+    if n_members < 100:
+        warnings.append(f"only {n_members} member(s): the outer quantiles "
                         f"{scenario.output.quantiles[0]:g} and {scenario.output.quantiles[-1]:g} "
                         "rest on very few members")
     if not scenario.solver.check.enabled:
@@ -195,8 +196,8 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
                                 f"fall after the horizon of {time_text(scenario.days)} days "
                                 "and have no effect")
     uncertain = [p for p in scenario.parameters.values() if isinstance(p.form, Distribution)]
-    if not uncertain and members > 1 and not any(v.parameters for v in scenario.variants):
-        warnings.append(f"no parameter is drawn from a distribution: all {members} members "
+    if not uncertain and n_members > 1 and not any(v.parameters for v in scenario.variants):
+        warnings.append(f"no parameter is drawn from a distribution: all {n_members} members "
                         "of a variant are identical")
     return warnings
 

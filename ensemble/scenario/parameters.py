@@ -279,8 +279,8 @@ class ParameterReader:
                 raise reader.error(f"{draft.path}.schedule[{i}]", None,
                                    f"is a {kind} while the first value is a {knot_shapes[0]}: "
                                    "every value of a schedule must have the same shape")
-        form = Schedule(tuple(day for day, _ in draft.knots), tuple(values),  # type: ignore[arg-type]
-                        draft.between)  # type: ignore[arg-type]
+        form = Schedule(tuple(day for day, _ in draft.knots),
+                        tuple(values), draft.between)  # type: ignore[arg-type]
         return Parameter(draft.name, form, knot_shapes[0], draft.units,  # type: ignore[arg-type]
                          draft.description)
 

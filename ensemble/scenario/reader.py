@@ -298,4 +298,5 @@ class Reader:
             shape = expressions.infer_shape(text.tree, shapes)
         except ExpressionError as exc:
             raise self.error(text.path, text.text, str(exc)) from None
-        return Expression(text.text, text.tree, text.path, shape, text.names)  # type: ignore[arg-type]
+        return Expression(text.text, text.tree, text.path, shape,  # type: ignore[arg-type]
+                          text.names)

@@ -220,7 +220,7 @@ class Output:
 
     path: str
     quantiles: tuple[float, ...]
-    members: bool = True
+    keep_members: bool = True
     compare_to: str | None = None
     compression: int = 4
 
@@ -256,7 +256,7 @@ class Scenario:
     description: str | None
     start: date | None
     days: Fraction
-    members: int
+    member_count: int
     seed: int
     model: Model
     parameters: Mapping[str, Parameter]

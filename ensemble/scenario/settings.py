@@ -27,7 +27,7 @@ class Head:
     description: str | None
     start: date | None
     days: Fraction
-    members: int
+    member_count: int
     seed: int
 
 
@@ -65,8 +65,8 @@ def read_head(reader: Reader, value: object) -> Head:
         description=reader.get(table, path, "description", reader.string, None),
         start=reader.get(table, path, "start", reader.date, None),
         days=reader.get(table, path, "days", reader.positive_time),
-        members=reader.get(table, path, "members",
-                           lambda v, p: reader.integer(v, p, minimum=1), 1),
+        member_count=reader.get(table, path, "members",
+                                lambda v, p: reader.integer(v, p, minimum=1), 1),
         seed=reader.get(table, path, "seed", lambda v, p: reader.integer(v, p, minimum=0), 0))
 
 
@@ -126,7 +126,7 @@ def read_output(reader: Reader, value: object, name: str,
                 variant_names: list[str] | None) -> Output:
     """The ``[output]`` table; ``compare_to`` is checked once the variants are known."""
     path = "output"
-    table = reader.table(value, path, ("path", "quantiles", "members", "compare_to",
+    table = reader.table(value, path, ("path", "quantiles", "keep_members", "compare_to",
                                        "compression"))
     compare_to = None
     if "compare_to" in table and variant_names is not None:
@@ -137,7 +137,7 @@ def read_output(reader: Reader, value: object, name: str,
                         f"results/{name}.nc"),
         quantiles=reader.get(table, path, "quantiles", lambda v, p: _quantiles(reader, v, p),
                              DEFAULT_QUANTILES),
-        members=reader.get(table, path, "members", reader.boolean, True),
+        keep_members=reader.get(table, path, "keep_members", reader.boolean, True),
         compare_to=compare_to,
         compression=reader.get(table, path, "compression",
                                lambda v, p: reader.integer(v, p, minimum=0, maximum=9), 4))

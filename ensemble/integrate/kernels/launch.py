@@ -98,7 +98,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
         arrays (the layout the kernel writes fastest); copy them where contiguity matters.
     """
     module, padded = _kernel_and_padding(model, method, design)
-    n_members = design.members.shape[0]
+    n_members = design.member_index.shape[0]
     if buffers is None:
         state = np.empty((n_reports, model.n_states, padded))
         flow_count = np.empty((n_reports, model.n_flow_elements, padded))
@@ -140,7 +140,7 @@ def step_error_compiled(model: LoweredModel, design: Design, method: Method, ste
         value in either run) and the refined run's status bits.
     """
     module, padded = _kernel_and_padding(model, method, design)
-    n_members = design.members.shape[0]
+    n_members = design.member_index.shape[0]
     reference = np.ascontiguousarray(coarse.transpose(2, 1, 0))
     error = np.empty(padded)
     status = np.empty(padded, np.uint8)
@@ -156,7 +156,7 @@ def _kernel_and_padding(model: LoweredModel, method: Method, design: Design
                         ) -> tuple[ModuleType, int]:
     """The kernel module, and the members of ``design`` padded to whole blocks."""
     module, source = KernelCache.for_environment().load(model, method)
-    return module, max(1, -(-design.members.shape[0] // source.block)) * source.block
+    return module, max(1, -(-design.member_index.shape[0] // source.block)) * source.block
 
 
 def _columns(array: np.ndarray, columns: np.ndarray | None) -> np.ndarray:
@@ -220,5 +220,5 @@ def _launch(module: ModuleType, model: LoweredModel, design: Design, step: float
                int(steps_per_report), int(n_reports), float(atol), float(newton.tol),
                int(newton.max_iter), state, flow_count, status, compare is not None,
                reference, float(rtol), float(gain), error)
-    status[:design.members.shape[0]][invalid] = INVALID_START
+    status[:design.member_index.shape[0]][invalid] = INVALID_START
     return invalid
