@@ -1,4 +1,4 @@
-"""The symbolic state Jacobian of the compiled rates against central finite differences.
+"""The symbolic state Jacobian of the lowered rates against central finite differences.
 
 Central differences (y + h e_j and y - h e_j) have truncation error O(h^2) and round-off
 error O(eps / h) (Nocedal & Wright 2006, Numerical Optimization, 2nd ed., sec. 8.1); with

@@ -1,8 +1,9 @@
-"""make_design on scenarios read by the loader and compiled by lower_model.
+"""make_design on scenarios read by the loader and lowered by lower_model.
 
 Values are checked against hand computations with numpy on the same draws, and the
-design's invariants (chunking, common random numbers, the initial-state rules of SPEC
-section 1) against the scenario file's contract.
+design's invariants (chunking, common random numbers, the initial-state rules of
+``initial`` in the project's reference, ``ensemble/scenario/reference.md``) against the
+scenario file's contract.
 """
 
 from __future__ import annotations
@@ -240,7 +241,7 @@ def test_schedule_knots_evaluated_per_member(tmp_path):
 
 
 def test_initial_state_with_rest_and_expressions(tmp_path):
-    """S takes the rest of each group's population (SPEC section 1, ``initial``)."""
+    """S takes the rest of each group's population (the reference, ``initial``)."""
     sc = age(tmp_path, 50)
     variant = sc.variants[0]
     model = lower_model(sc, variant)
@@ -259,7 +260,8 @@ def test_initial_state_with_rest_and_expressions(tmp_path):
 
 def test_impossible_drawn_start_is_flagged_with_nan(tmp_path):
     """A drawn start above the group's population is impossible: the member is flagged
-    and holds NaN; the other members are untouched (SPEC section 1, status bit 8)."""
+    and holds NaN; the other members are untouched (the reference, ``initial`` and
+    status bit 8)."""
     sc = age(tmp_path, 400, seed_high=3000)
     d = design(sc, 0, np.arange(400))
     seeds = d.reported["seeds"]
@@ -329,8 +331,8 @@ matrices = { contact = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]] }
     ('{ S = 990, I = "seed_infectious" }', False),
 ])
 def test_start_without_rest_must_add_up_to_the_population(tmp_path, initial, all_valid):
-    """Without "rest" the starts must add up to the population (SPEC section 1, relative
-    tolerance 1e-9); a member whose drawn starts do not is an impossible start."""
+    """Without "rest" the starts must add up to the population (the reference,
+    ``initial``: relative tolerance 1e-9); a member whose drawn starts do not is an impossible start."""
     scenario = load_text(tmp_path, f"""
         [scenario]
         name = "no-rest"

@@ -1,7 +1,7 @@
-"""Scalar intermediate form of a compiled model's rates.
+"""Scalar intermediate form of a lowered model's rates and values constant in time.
 
-:mod:`ensemble.model.lower` lowers every vector-valued expression of the scenario to one
-scalar tree per group element, with parameters, matrices and ``N`` resolved.  Nodes are
+:mod:`ensemble.model.lowering` lowers every vector-valued expression of the scenario to
+one scalar tree per group element, with parameters, matrices and ``N`` resolved.  Nodes are
 frozen (hence hashable) dataclasses, so equal subtrees compare equal and code generators
 can share common subexpressions through a dict.
 
@@ -11,7 +11,8 @@ A tree reads, for one member at one stage:
 - :class:`StateRef` row ``index`` of the state array (compartment-major, group-minor:
   ``index = compartment * n_groups + group``);
 - :class:`ParamRef` row ``index`` of the per-member constant parameter array
-  (``LoweredModel.parameter_slots``);
+  (``LoweredModel.parameter_slots``; in the trees of the values constant in time, the
+  input array of :class:`~ensemble.model.constants.ConstantTrees`);
 - :class:`ScheduleRef` row ``index`` of the per-member schedule values in force at this
   stage (``LoweredModel.schedule_slots``);
 - :class:`TimeRef` the stage time t (days since start);

@@ -88,7 +88,7 @@ class LoweredModel:
 
 
 def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
-    """Compile ``scenario``'s model with ``variant``'s parameters and matrices.
+    """Lower ``scenario``'s model with ``variant``'s parameters and matrices.
 
     Every flow's rate becomes one scalar tree per group element: compartments and ``N``
     become state rows, parameters constant in time become per-member slots (only those a

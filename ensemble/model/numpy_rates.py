@@ -1,4 +1,4 @@
-"""The numpy reference evaluator of a compiled model's rates over a chunk of members.
+"""The numpy reference evaluator of a lowered model's rates over a chunk of members.
 
 :class:`RateFunctions` turns the scalar IR of a :class:`~ensemble.model.lower.LoweredModel`
 into two functions over rows of member arrays (states x members): the flow rates and
@@ -29,11 +29,11 @@ class RateFunctions:
 
     Parameters
     ----------
-    model : the compiled model.
+    model : the lowered model.
 
     Attributes
     ----------
-    model : the compiled model.
+    model : the lowered model.
     jacobian_flow, jacobian_state : (nnz,) intp, the flow element and state row of each
         non-zero partial derivative, in the order :meth:`rate_jacobian` writes them
         (flow elements in order, each one's states ascending).

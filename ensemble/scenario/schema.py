@@ -177,7 +177,8 @@ class Variant:
 
 @dataclass(frozen=True)
 class StepCheck:
-    """The per-member step-refinement check (SPEC section 1, ``[solver] check``)."""
+    """The per-member step-refinement check (``[solver.check]`` in the project's reference,
+    ``ensemble/scenario/reference.md``)."""
 
     refine: int = 2
     levels: int = 2
