@@ -1,4 +1,4 @@
-"""The fixed-step one-step methods of SPEC section 1 ``[solver] method``, as data.
+"""The fixed-step one-step methods of ``[solver] method`` (reference.md), as data.
 
 Explicit methods are Butcher tableaux (A, b, c): for a step of size h from (t, y),
 stage i evaluates the flow rates ``r_i = R(t + c_i h, Y_i)`` with
@@ -28,7 +28,7 @@ class Method:
 
     Attributes
     ----------
-    name : the SPEC name (``"rk4"``, ``"backward-euler"``, ...).
+    name : the name a scenario gives in ``[solver] method`` (``"rk4"``, ``"backward-euler"``, ...).
     order : classical order of convergence p (used by the step check).
     a : (s, s) strictly lower-triangular Runge-Kutta matrix, or None for a theta method.
     b : (s,) weights, or None for a theta method.
@@ -77,4 +77,4 @@ METHODS: dict[str, Method] = {
     "backward-euler": Method(name="backward-euler", order=1, theta=1.0),
     "trapezoid": Method(name="trapezoid", order=2, theta=0.5),
 }
-"""Every method of SPEC section 1, by its SPEC name."""
+"""Every method a scenario may choose, by the name it gives."""
