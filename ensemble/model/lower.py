@@ -1,5 +1,6 @@
 """Scenario model -> :class:`LoweredModel`: scalar rate trees, their state derivatives,
-and the stoichiometry that turns flow rates into the right-hand side.
+the stoichiometry that turns flow rates into the right-hand side, and the values that are
+constant in time per member (:mod:`ensemble.model.constants`).
 
 The right-hand side of every model is ``dy/dt = stoichiometry @ rates(t, y)``; its
 Jacobian with respect to the state is ``stoichiometry @ d rates / d y``.

@@ -112,15 +112,15 @@ class _Evaluated:
     """
 
     def __init__(self, trees: ConstantTrees, inputs: np.ndarray):
-        groups: list[tuple[ScalarNode, ...]] = [trees.slots, *trees.schedule_knots,
-                                                *(c for c in trees.initial if c is not None),
-                                                *map(_items, trees.parameters.values())]
-        roots = [root for group in groups for root in group]
+        parts: list[tuple[ScalarNode, ...]] = [trees.slots, *trees.schedule_knots,
+                                               *(c for c in trees.initial if c is not None),
+                                               *map(_items, trees.parameters.values())]
+        roots = [root for part in parts for root in part]
         n_members = inputs.shape[1]
         out = np.empty((len(roots), n_members))
         no_rows = np.empty((0, n_members))
         NumpyProgram("constants", roots)(0.0, no_rows, inputs, no_rows, out)
-        bounds = np.cumsum([0] + [len(group) for group in groups])
+        bounds = np.cumsum([0] + [len(part) for part in parts])
         blocks = iter([out[a:b].copy() for a, b in zip(bounds[:-1], bounds[1:])])
         self.slots = next(blocks)
         self.knots = tuple(next(blocks) for _ in trees.schedule_knots)
