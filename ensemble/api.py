@@ -58,7 +58,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     force : replace an existing result.
     progress : draw a progress bar on standard error (default: when it is a terminal).
     backend : ``"numpy"`` or ``"compiled"`` integration (default
-        :data:`ensemble.run.execute.DEFAULT_BACKEND`).
+        :data:`ensemble.run.tasks.DEFAULT_BACKEND`).
     history : the result's ``history`` attribute (default: this call and the time).
     cluster : a cluster profile (name or path, :mod:`ensemble.run.clusters`; default the
         file's ``[compute] cluster``) whose batch-system worker jobs do the work;
@@ -108,8 +108,9 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
     """:func:`run` once the scenario is loaded and any local cluster is starting."""
     import dataclasses
 
-    from ensemble.run.execute import (DEFAULT_BACKEND, Progress, fewer_collections,
-                                      run_scenario)
+    from ensemble.run.execute import fewer_collections, run_scenario
+    from ensemble.run.progress import Progress
+    from ensemble.run.tasks import DEFAULT_BACKEND
     from ensemble.run.plan import fingerprint
     from ensemble.run.shards import Shard, engine_options, part_is_complete
 
@@ -196,7 +197,7 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
     from ensemble.output.finish import Finisher
     from ensemble.output.sources import MembersInMemory
     from ensemble.output.writer import result_dataset
-    from ensemble.run.execute import DEFAULT_BACKEND, compute_chunk
+    from ensemble.run.tasks import DEFAULT_BACKEND, compute_chunk
     from ensemble.run.layout import lowered_models, result_layout
     from ensemble.run.plan import fingerprint
 
@@ -325,7 +326,7 @@ def array_script(scenario: Scenario | str | os.PathLike[str], cluster: ClusterPr
     """
     import dataclasses
 
-    from ensemble.run.shards import array_script as driver
+    from ensemble.run.job_array import array_script as driver
     from ensemble.errors import UsageError
 
     if not isinstance(scenario, Scenario):

@@ -15,7 +15,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
-from typing import Optional
+from typing import Annotated, Optional
 
 import psutil
 import typer
@@ -54,65 +54,64 @@ def _shard_option(text: Optional[str]):
         raise typer.BadParameter(str(error)) from None
 
 
+ScenarioFile = Annotated[Path, typer.Argument(help="Scenario file (TOML).")]
+OutputFile = Annotated[Optional[Path], typer.Option(
+    "--output", "-o", help="Result file (default: the file's output.path).")]
+MemberCount = Annotated[Optional[int], typer.Option(
+    "--members", min=1, help="Members per variant, instead of the file's.")]
+Seed = Annotated[Optional[int], typer.Option(
+    "--seed", min=0, help="Seed, instead of the file's.")]
+ChunkSize = Annotated[Optional[int], typer.Option(
+    "--chunk", min=1, help="Members per task (changes no number of the result).")]
+BackendChoice = Annotated[Optional[Backend], typer.Option(
+    "--backend", help="Integration backend (changes numbers at round-off level).")]
+Force = Annotated[bool, typer.Option("--force", help="Replace an existing result file.")]
+
+
 @app.command()
 def run(
-    scenario: Path = typer.Argument(..., help="Scenario file (TOML)."),
-    output: Optional[Path] = typer.Option(
-        None, "--output", "-o", help="Result file (default: the file's output.path)."),
-    members: Optional[int] = typer.Option(
-        None, "--members", min=1, help="Members per variant, instead of the file's."),
-    seed: Optional[int] = typer.Option(
-        None, "--seed", min=0, help="Seed, instead of the file's."),
-    chunk: Optional[int] = typer.Option(
-        None, "--chunk", min=1, help="Members per task (changes no number of the result)."),
-    workers: Optional[int] = typer.Option(
-        None, "--workers", min=0,
+    scenario: ScenarioFile,
+    output: OutputFile = None,
+    members: MemberCount = None,
+    seed: Seed = None,
+    chunk: ChunkSize = None,
+    workers: Annotated[Optional[int], typer.Option(
+        "--workers", min=0,
         help="Workers on this machine (default one per core): threads of this process, "
-             "or processes with --processes; 0: no dask, everything in this process."),
-    processes: bool = typer.Option(
-        False, "--processes",
+             "or processes with --processes; 0: no dask, everything in this process.")
+    ] = None,
+    processes: Annotated[bool, typer.Option(
+        "--processes",
         help="Local workers in processes of their own (a worker that dies loses only its "
-             "task) instead of threads."),
-    dashboard: bool = typer.Option(
-        False, "--dashboard",
-        help="Serve dask's dashboard from the local cluster and print its address."),
-    address: Optional[str] = typer.Option(
-        None, "--address", help="A running dask scheduler to use, e.g. tcp://host:8786."),
-    resume: bool = typer.Option(
-        False, "--resume", help="Continue an interrupted run from <output>.partial."),
-    force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
-    backend: Optional[Backend] = typer.Option(
-        None, "--backend", help="Integration backend (changes numbers at round-off level)."),
-    cluster: Optional[str] = typer.Option(
-        None, "--cluster",
+             "task) instead of threads.")] = False,
+    dashboard: Annotated[bool, typer.Option(
+        "--dashboard",
+        help="Serve dask's dashboard from the local cluster and print its address.")
+    ] = False,
+    address: Annotated[Optional[str], typer.Option(
+        "--address", help="A running dask scheduler to use, e.g. tcp://host:8786.")] = None,
+    resume: Annotated[bool, typer.Option(
+        "--resume", help="Continue an interrupted run from <output>.partial.")] = False,
+    force: Force = False,
+    backend: BackendChoice = None,
+    cluster: Annotated[Optional[str], typer.Option(
+        "--cluster",
         help="Cluster profile (NAME in ./configs or ~/.config/ensemble/clusters, or a path) "
-             "whose batch jobs run the workers; 'local' is this machine."),
-    shard: Optional[str] = typer.Option(
-        None, "--shard", metavar="I/N", callback=_shard_option,
-        help="Run only shard I of N (0-based) into a part file for `ensemble merge`."),
+             "whose batch jobs run the workers; 'local' is this machine.")] = None,
+    shard: Annotated[Optional[str], typer.Option(
+        "--shard", metavar="I/N", callback=_shard_option,
+        help="Run only shard I of N (0-based) into a part file for `ensemble merge`.")
+    ] = None,
 ) -> None:
     """Run every variant of SCENARIO and write the result file."""
-    import shlex
-    import signal
     import time
 
-    from ensemble.about import CAUTION
     from ensemble import api
-    from ensemble.errors import UsageError
     from ensemble.run.journal import partial_path
 
-    logging.getLogger("distributed").setLevel(logging.ERROR)
-    signal.signal(signal.SIGTERM, _interrupt)
-    signal.signal(signal.SIGINT, _interrupt)
     began = time.monotonic()
-    history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
-    with _reported():
-        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
-        profile = api.cluster_profile(cluster if cluster is not None
-                                      else loaded.compute.cluster)
-        if profile is not None and address is not None:
-            raise UsageError("--cluster", "", None, "--cluster and --address both name "
-                             "where the workers are", "give one")
+    _stop_on_signals()
+    loaded, profile = _loaded_for_run(scenario, members, seed, cluster, address)
     if shard is not None and output is None:
         output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
@@ -120,13 +119,58 @@ def run(
     with _reported(work=partial_path(output or loaded.output.path)):
         path = api.run(loaded, output=output, chunk=chunk, workers=workers,
                        address=address, resume=resume, force=force,
-                       backend=backend.value if backend else None, history=history,
-                       cluster=profile or "local", shard=shard, processes=processes,
-                       dashboard=dashboard)
+                       backend=backend.value if backend else None,
+                       history=_history(), cluster=profile or "local", shard=shard,
+                       processes=processes, dashboard=dashboard)
+    _report_run(path, loaded, time.monotonic() - began)
+
+
+def _stop_on_signals() -> None:
+    """Ctrl-C and SIGTERM interrupt the run (:func:`_interrupt`); dask's own logging is
+    kept to errors."""
+    import signal
+
+    logging.getLogger("distributed").setLevel(logging.ERROR)
+    signal.signal(signal.SIGTERM, _interrupt)
+    signal.signal(signal.SIGINT, _interrupt)
+
+
+def _history() -> str:
+    """The ``history`` line of what this command makes: the time and the command."""
+    import shlex
+
+    from ensemble import api
+
+    return api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
+
+
+def _loaded_for_run(scenario: Path, members: int | None, seed: int | None,
+                    cluster: str | None, address: str | None):
+    """The scenario (with the overrides) and the cluster profile of ``ensemble run``
+    (exit 2 when either is invalid, or when both a profile and an address are given)."""
+    from ensemble import api
+    from ensemble.errors import UsageError
+
+    with _reported():
+        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
+        profile = api.cluster_profile(cluster if cluster is not None
+                                      else loaded.compute.cluster)
+        if profile is not None and address is not None:
+            raise UsageError("--cluster", "", None, "--cluster and --address both name "
+                             "where the workers are", "give one")
+    return loaded, profile
+
+
+def _report_run(path: Path, loaded, seconds: float) -> None:
+    """What a finished run prints: the result, its size and time, the members behind
+    each status bit, and the caution."""
+    from ensemble import api
+    from ensemble.about import CAUTION
+
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
     typer.echo(f"{loaded.member_count} members x {len(loaded.variants)} variants "
-               f"in {time.monotonic() - began:.1f} s")
+               f"in {seconds:.1f} s")
     flagged = ", ".join(f"{word} {count}" for word, count in counts.items())
     typer.echo(f"flagged members: {flagged}")
     typer.echo(CAUTION)
@@ -160,7 +204,7 @@ def _reported(work: Path | None = None) -> Iterator[None]:
 
 
 @app.command()
-def check(scenario: Path = typer.Argument(..., help="Scenario file (TOML).")) -> None:
+def check(scenario: ScenarioFile) -> None:
     """Validate SCENARIO and print its model, parameters, variants, solver and warnings."""
     from ensemble import api
     from ensemble.scenario.describe import describe
@@ -171,8 +215,8 @@ def check(scenario: Path = typer.Argument(..., help="Scenario file (TOML).")) ->
 
 
 @app.command()
-def summary(result: Path = typer.Argument(..., help="Result file written by ensemble run.")
-            ) -> None:
+def summary(result: Annotated[Path, typer.Argument(
+        help="Result file written by ensemble run.")]) -> None:
     """Print, per variant, quantiles over members of each compartment's peak size and
     time and of each flow's total and peak, and the members behind each status bit."""
     from ensemble import api
@@ -184,35 +228,29 @@ def summary(result: Path = typer.Argument(..., help="Result file written by ense
 
 @app.command()
 def merge(
-    parts: list[Path] = typer.Argument(..., help="The part file of every shard."),
-    output: Path = typer.Option(..., "--output", "-o", help="Result file to write."),
-    force: bool = typer.Option(False, "--force", help="Replace an existing result file."),
+    parts: Annotated[list[Path], typer.Argument(help="The part file of every shard.")],
+    output: Annotated[Path, typer.Option("--output", "-o", help="Result file to write.")],
+    force: Force = False,
 ) -> None:
     """Join the part files of a sharded run (`run --shard I/N`) into the result file."""
-    import shlex
-
     from ensemble import api
 
-    history = api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
     with _reported():
-        path = api.merge(parts, output, force=force, history=history)
+        path = api.merge(parts, output, force=force, history=_history())
     typer.echo(f"result: {path} (from {len(parts)} parts)")
 
 
 @app.command("array-script")
 def array_script(
-    scenario: Path = typer.Argument(..., help="Scenario file (TOML)."),
-    cluster: str = typer.Option(..., "--cluster", help="Cluster profile (slurm or pbs)."),
-    shards: int = typer.Option(..., "--shards", min=1, help="Number of array tasks."),
-    output: Optional[Path] = typer.Option(
-        None, "--output", "-o", help="Result file (default: the file's output.path)."),
-    members: Optional[int] = typer.Option(
-        None, "--members", min=1, help="Members per variant, instead of the file's."),
-    seed: Optional[int] = typer.Option(
-        None, "--seed", min=0, help="Seed, instead of the file's."),
-    chunk: Optional[int] = typer.Option(
-        None, "--chunk", min=1, help="Members per task inside each shard."),
-    backend: Optional[Backend] = typer.Option(None, "--backend", help="Integration backend."),
+    scenario: ScenarioFile,
+    cluster: Annotated[str, typer.Option("--cluster",
+                                         help="Cluster profile (slurm or pbs).")],
+    shards: Annotated[int, typer.Option("--shards", min=1, help="Number of array tasks.")],
+    output: OutputFile = None,
+    members: MemberCount = None,
+    seed: Seed = None,
+    chunk: ChunkSize = None,
+    backend: BackendChoice = None,
 ) -> None:
     """Print a bash script that submits SCENARIO as a job array of shards plus a merge job
     that runs only if every shard succeeded. Run it with bash on the login node."""

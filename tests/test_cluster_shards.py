@@ -51,7 +51,7 @@ class CompletedCommand:
 
 @given(members=st.integers(1, 500), count=st.integers(1, 60))
 def test_shards_cover_every_member_exactly_once(members: int, count: int) -> None:
-    ranges = [Shard(index, count).members(members) for index in range(count)]
+    ranges = [Shard(index, count).member_range(members) for index in range(count)]
     covered = [m for start, end in ranges for m in range(start, end)]
     assert covered == list(range(members))
     sizes = [end - start for start, end in ranges]
@@ -60,7 +60,7 @@ def test_shards_cover_every_member_exactly_once(members: int, count: int) -> Non
 
 def test_shard_split_formula() -> None:
     # The README's job arrays: members floor(I*M/N) .. floor((I+1)*M/N) - 1; M = 10, N = 3.
-    assert [Shard(i, 3).members(10) for i in range(3)] == [(0, 3), (3, 6), (6, 10)]
+    assert [Shard(i, 3).member_range(10) for i in range(3)] == [(0, 3), (3, 6), (6, 10)]
 
 
 @pytest.mark.parametrize("text", ["3/3", "-1/3", "1", "a/b", "1/0", "1/3/4"])

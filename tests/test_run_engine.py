@@ -9,12 +9,15 @@ import numpy as np
 import pytest
 
 import ensemble.run.execute as execute
+import ensemble.run.executors as executors
 import ensemble.run.journal as journal_module
+import ensemble.run.tasks as tasks
 from ensemble import api
 from ensemble.model.lower import lower_model
 from ensemble.run.journal import WorkJournal
 from ensemble.errors import RunFailed
-from ensemble.run.execute import open_client
+from ensemble.run.executors import open_client
+from ensemble.run.progress import Progress
 from ensemble.scenario.load import load_scenario
 from support import assert_same_numbers, layout_of, write_scenario
 
@@ -26,14 +29,14 @@ def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
     member exactly once and gives the bits of an uninterrupted run."""
     monkeypatch.chdir(tmp_path)     # the result goes to result.nc, as the file says
     scenario = write_scenario(tmp_path)
-    real_make_design = execute.make_design
+    real_make_design = tasks.make_design
 
     def failing_make_design(scenario, variant, model, members):
         if 25 in members:
             raise FloatingPointError("an illustrative failure")
         return real_make_design(scenario, variant, model, members)
 
-    monkeypatch.setattr(execute, "make_design", failing_make_design)
+    monkeypatch.setattr(tasks, "make_design", failing_make_design)
     with pytest.raises(RunFailed) as failure:
         api.run(scenario, workers=0, chunk=10, progress=False)
     message = str(failure.value)
@@ -49,14 +52,14 @@ def test_failed_chunk_stops_the_run_and_keeps_finished_chunks(tmp_path: Path,
         computed.extend((variant.name, int(member)) for member in members)
         return real_make_design(scenario, variant, model, members)
 
-    monkeypatch.setattr(execute, "make_design", counting_make_design)
+    monkeypatch.setattr(tasks, "make_design", counting_make_design)
     resumed = api.run(scenario, workers=0, chunk=7, resume=True, progress=False)
     everything = {(name, member) for name in ("no-change", "distancing")
                   for member in range(40)}
     kept = {("no-change", member) for member in range(20)}
     assert sorted(computed) == sorted(everything - kept), "resume redid saved members"
 
-    monkeypatch.setattr(execute, "make_design", real_make_design)
+    monkeypatch.setattr(tasks, "make_design", real_make_design)
     reference = api.run(scenario, output=tmp_path / "reference.nc", workers=0,
                         progress=False)
     assert_same_numbers(resumed, reference)
@@ -68,7 +71,7 @@ def test_a_task_error_on_a_worker_becomes_run_failed(tmp_path: Path) -> None:
     scenario = load_scenario(write_scenario(tmp_path))
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     with open_client(workers=1) as client:
-        outputs = execute._on_cluster(client, scenario, models, [(1, 35, 45)], "numpy")
+        outputs = executors.on_cluster(client, scenario, models, [(1, 35, 45)], "numpy")
         with pytest.raises(RunFailed, match=r"members 35\.\.44 of variant 'distancing'"):
             list(outputs)
 
@@ -95,15 +98,15 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
     token = store.mark()
     assert store.shares_directory(token) and not store.shares_directory("elsewhere")
 
-    elsewhere = execute.compute_and_save_chunk(scenario, models[0], (0, 0, 6), store,
+    elsewhere = tasks.compute_and_save_chunk(scenario, models[0], (0, 0, 6), store,
                                                "elsewhere", "numpy")
-    assert isinstance(elsewhere, execute.ChunkOutput) and store.saved() == []
-    saved = execute.compute_and_save_chunk(scenario, models[0], (0, 6, 12), store, token,
+    assert isinstance(elsewhere, tasks.ChunkOutput) and store.saved() == []
+    saved = tasks.compute_and_save_chunk(scenario, models[0], (0, 6, 12), store, token,
                                            "numpy")
-    assert saved == execute.ChunkSaved((0, 6, 12)) and store.saved() == [(0, 6, 12)]
+    assert saved == tasks.ChunkSaved((0, 6, 12)) and store.saved() == [(0, 6, 12)]
 
     driver = WorkJournal.open(tmp_path / "driver.nc", layout, resume=False, force=False)
-    output = execute.compute_chunk(scenario, models[0], (0, 6, 12), "numpy")
+    output = tasks.compute_chunk(scenario, models[0], (0, 6, 12), "numpy")
     driver.save(output.key, output.result, output.reported)
     chunk = "chunk-v0-0000000006-0000000012"
     for name in ("state.npy", "flow_count.npy"):
@@ -116,9 +119,9 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
             np.testing.assert_array_equal(ours[name], theirs[name], err_msg=name)
 
     with open_client(workers=1) as client:
-        outputs = list(execute._on_cluster(client, scenario, models, [(1, 0, 12)], "numpy",
+        outputs = list(executors.on_cluster(client, scenario, models, [(1, 0, 12)], "numpy",
                                            store))
-    assert outputs == [execute.ChunkSaved((1, 0, 12))]
+    assert outputs == [tasks.ChunkSaved((1, 0, 12))]
     assert store.saved() == [(0, 6, 12), (1, 0, 12)]
 
 
@@ -133,15 +136,15 @@ def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) 
                            force=False)
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
-    outputs = execute._in_process(scenario, models, keys, "numpy")
-    execute._save_all(store, outputs, execute.Progress(bar=False))
+    outputs = executors.in_process(scenario, models, keys, "numpy")
+    execute.save_all(store, outputs, Progress(bar=False))
     durable = (store.work / "durable-chunks").read_text().split()
     assert durable and set(durable) <= {path.name for path in store.work.glob("chunk-*")}
     assert "chunk-v0-0000000000-0000000006" in durable
 
 
 def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -> None:
-    """The engine's contract (ensemble/run/execute.py): a worker writes chunk after chunk
+    """The task's contract (ensemble/run/tasks.py): a worker writes chunk after chunk
     into the same arrays (ReportBuffers); each chunk has the bits it has in fresh arrays,
     including a last, shorter chunk, whatever was left in the arrays before."""
     from ensemble.integrate.kernels.launch import ReportBuffers
@@ -150,8 +153,8 @@ def test_chunks_written_into_reused_buffers_have_the_same_bits(tmp_path: Path) -
     model = lower_model(scenario, scenario.variants[1])
     buffers = ReportBuffers()
     for key in [(1, 0, 16), (1, 16, 32), (1, 32, 40), (1, 0, 16)]:
-        reused = execute.compute_chunk(scenario, model, key, "compiled", 1, buffers)
-        fresh = execute.compute_chunk(scenario, model, key, "compiled", 1)
+        reused = tasks.compute_chunk(scenario, model, key, "compiled", 1, buffers)
+        fresh = tasks.compute_chunk(scenario, model, key, "compiled", 1)
         for name in ("state", "flow_count", "step_error", "observed_order", "status"):
             np.testing.assert_array_equal(getattr(reused.result, name),
                                           getattr(fresh.result, name), err_msg=name)
@@ -212,14 +215,14 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
         return real_recut(part, coarse, fine)
 
     monkeypatch.setattr(selection_module, "recut", counting_recut)
-    real_make_design = execute.make_design
+    real_make_design = tasks.make_design
 
     def failing_make_design(scenario, variant, model, members):
         if 21_000 in members and variant.name == "distancing":
             raise FloatingPointError("an illustrative failure")
         return real_make_design(scenario, variant, model, members)
 
-    monkeypatch.setattr(execute, "make_design", failing_make_design)
+    monkeypatch.setattr(tasks, "make_design", failing_make_design)
     with pytest.raises(RunFailed):
         api.run(scenario, workers=0, chunk=4000, progress=False)
     refined = sorted((tmp_path / "result.nc.partial").glob("refined-brackets-*"))
@@ -227,7 +230,7 @@ def test_candidate_chunks_give_the_bits_of_whole_chunks(tmp_path: Path, monkeypa
     # a chunk cut with other brackets (not expected) is computed again at the finish
     tampered = sorted((tmp_path / "result.nc.partial").glob("chunk-*/state-brackets"))[-1]
     tampered.write_text("other brackets")
-    monkeypatch.setattr(execute, "make_design", real_make_design)
+    monkeypatch.setattr(tasks, "make_design", real_make_design)
     resumed = api.run(scenario, workers=0, chunk=5000, resume=True, progress=False)
     assert kept and min(kept) < 1.0, "no chunk was kept as candidates"
     assert bool(missed) == misleading, "only a misleading pilot misses cells"

@@ -45,7 +45,7 @@ def test_shard_index_out_of_range_is_refused() -> None:
 def test_chunks_cover_every_member_of_every_variant_once(tmp_path_factory, members: int,
                                                          chunk: int) -> None:
     scenario = dataclasses.replace(_scenario(tmp_path_factory.mktemp("plan")),
-                                   members=members)
+                                   member_count=members)
     keys = plan_chunks(scenario, chunk)
     for variant in range(len(scenario.variants)):
         covered = [m for v, start, end in keys if v == variant for m in range(start, end)]
@@ -55,23 +55,23 @@ def test_chunks_cover_every_member_of_every_variant_once(tmp_path_factory, membe
 
 def test_chunks_of_a_shard_stay_inside_it(tmp_path: Path) -> None:
     scenario = _scenario(tmp_path)
-    keys = plan_chunks(scenario, 7, members=shard_range(1, 3, scenario.members))
+    keys = plan_chunks(scenario, 7, member_range=shard_range(1, 3, scenario.member_count))
     assert {(start, end) for _, start, end in keys} == {(13, 20), (20, 26)}
 
 
 def test_default_chunk_gives_several_tasks_per_worker(tmp_path: Path) -> None:
     """Common practice, no source: at least a few tasks per worker keep the load
     balanced."""
-    scenario = dataclasses.replace(_scenario(tmp_path), members=10_000)
+    scenario = dataclasses.replace(_scenario(tmp_path), member_count=10_000)
     chunk = default_chunk(scenario, n_states=4, n_flow_elements=3, workers=8)
     assert 1 <= chunk <= 10_000 // (4 * 8) + 1
-    assert default_chunk(dataclasses.replace(scenario, members=1), 4, 3, workers=8) == 1
+    assert default_chunk(dataclasses.replace(scenario, member_count=1), 4, 3, workers=8) == 1
 
 
 def test_default_chunk_bounds_the_memory_of_a_task(tmp_path: Path) -> None:
     """A chunk's trajectories (states and flow counts, float64, every reported time) stay
     within MAX_CHUNK_BYTES, whatever the backend's speed."""
-    scenario = dataclasses.replace(_scenario(tmp_path), members=10**6)
+    scenario = dataclasses.replace(_scenario(tmp_path), member_count=10**6)
     rows = 80 + 64                                   # e.g. 16 age groups, 5 compartments
     for backend in ("numpy", "compiled"):
         chunk = default_chunk(scenario, 80, 64, workers=1, backend=backend)
@@ -83,13 +83,13 @@ def test_default_chunk_bounds_the_memory_of_a_task(tmp_path: Path) -> None:
 def test_default_chunk_is_whole_kernel_blocks(tmp_path: Path) -> None:
     """A chunk of at least one block of the compiled kernel is cut to whole blocks (no
     padded members), still within MAX_CHUNK_BYTES; a smaller one is left as it is."""
-    scenario = dataclasses.replace(_scenario(tmp_path), members=10**6)
+    scenario = dataclasses.replace(_scenario(tmp_path), member_count=10**6)
     unblocked = default_chunk(scenario, 4, 3, backend="compiled")
     chunk = default_chunk(scenario, 4, 3, backend="compiled", block=512)
     assert unblocked % 512 != 0, "pick a case the rounding changes"
     assert chunk % 512 == 0 and unblocked - 512 < chunk <= unblocked
     assert chunk * 7 * scenario.n_reports * 8 <= MAX_CHUNK_BYTES
-    small = dataclasses.replace(scenario, members=100)
+    small = dataclasses.replace(scenario, member_count=100)
     assert (default_chunk(small, 4, 3, backend="compiled", block=512)
             == default_chunk(small, 4, 3, backend="compiled"))
 
@@ -99,7 +99,7 @@ def test_fingerprint_follows_what_changes_numbers(tmp_path: Path) -> None:
     base = fingerprint(scenario)
     assert len(base) == 64
     changed = [
-        dataclasses.replace(scenario, members=scenario.members + 1),
+        dataclasses.replace(scenario, member_count=scenario.member_count + 1),
         dataclasses.replace(scenario, seed=scenario.seed + 1),
         dataclasses.replace(scenario, solver=dataclasses.replace(scenario.solver,
                                                                  method="heun")),

@@ -1,14 +1,15 @@
-"""Running a scenario: the chunk plan and fingerprint (:mod:`.plan`), the local cluster
-(:mod:`.local`), and the engine that computes chunks on dask workers and saves them as
-they finish (:mod:`.execute`).
+"""Running a scenario: the chunk plan and fingerprint (:mod:`.plan`), one chunk's task
+(:mod:`.tasks`), where the tasks run (:mod:`.executors`, :mod:`.local`,
+:mod:`.clusters`), the work journal of saved chunks (:mod:`.journal`,
+:mod:`.chunk_files`), the engine that ties them together (:mod:`.execute`), and sharded
+runs with their part files and job arrays (:mod:`.shards`, :mod:`.job_array`).
 
 The names below are imported from their modules when first used, so that importing a
 light module of this package (:mod:`.local`) does not import the whole pipeline.
 """
 
-_EXPORTS = {"compute_chunk": "execute", "open_client": "execute",
-            "run_scenario": "execute", "fingerprint": "plan", "plan_chunks": "plan",
-            "shard_range": "plan"}
+_EXPORTS = {"compute_chunk": "tasks", "open_client": "executors", "run_scenario": "execute",
+            "fingerprint": "plan", "plan_chunks": "plan", "shard_range": "plan"}
 
 
 def __getattr__(name: str):

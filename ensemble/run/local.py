@@ -42,7 +42,7 @@ page-faults them in again (measured: 103 ms against 12 ms of system time per chu
 1,536 SEIR members over a year), and the allocator's default keeps memory bounded by
 the largest task."""
 
-WARM_MODULES = ("ensemble.run.execute", "ensemble.integrate.kernels.launch")
+WARM_MODULES = ("ensemble.run.tasks", "ensemble.integrate.kernels.launch")
 """Modules a worker imports as it starts, before its first chunk arrives."""
 
 

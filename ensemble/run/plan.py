@@ -130,7 +130,7 @@ def default_chunk(scenario: Scenario, n_states: int, n_flow_elements: int,
     bytes_per_member = (n_states + n_flow_elements) * scenario.n_reports * 8
     chunk = min(TARGET_WORK_PER_CHUNK[backend] / work_per_member,
                 MAX_CHUNK_BYTES / bytes_per_member)
-    chunk = int(min(chunk, math.ceil(scenario.members / (TASKS_PER_WORKER * max(workers, 1)))))
+    chunk = int(min(chunk, math.ceil(scenario.member_count / (TASKS_PER_WORKER * max(workers, 1)))))
     if chunk >= block:
         chunk -= chunk % block
     return max(1, chunk)
@@ -144,32 +144,33 @@ def split(start: int, end: int, chunk: int) -> list[tuple[int, int]]:
 
 
 def plan_chunks(scenario: Scenario, chunk: int, *,
-                members: tuple[int, int] | None = None) -> list[ChunkKey]:
+                member_range: tuple[int, int] | None = None) -> list[ChunkKey]:
     """The chunks of a run: every variant's members cut into ranges of at most ``chunk``.
 
     Parameters
     ----------
-    scenario : the validated scenario (``scenario.members`` per variant).
+    scenario : the validated scenario (``scenario.member_count`` per variant).
     chunk : members per chunk (>= 1).
-    members : ``(start, end)`` to plan only those members of every variant (a shard,
-        :func:`shard_range`); default all.
+    member_range : ``(start, end)`` to plan only those members of every variant (a
+        shard, :func:`shard_range`); default all.
 
     Returns
     -------
     Chunk keys, variant by variant, in member order.
     """
-    start, end = members if members is not None else (0, scenario.members)
+    start, end = member_range if member_range is not None else (0, scenario.member_count)
     return [(variant, first, last)
             for variant in range(len(scenario.variants))
             for first, last in split(start, end, chunk)]
 
 
-def shard_range(index: int, count: int, members: int) -> tuple[int, int]:
-    """Members ``floor(I*M/N) .. floor((I+1)*M/N) - 1`` of shard I of N (SPEC section 2),
-    returned as ``(start, end)`` with the end excluded.
+def shard_range(index: int, count: int, member_count: int) -> tuple[int, int]:
+    """Members ``floor(I*M/N) .. floor((I+1)*M/N) - 1`` of shard I of N (M members per
+    variant; the project's reference, ``ensemble/scenario/reference.md``), returned as
+    ``(start, end)`` with the end excluded.
 
     Every member falls in exactly one shard, and shard sizes differ by at most one.
     """
     if not 0 <= index < count:
         raise ValueError(f"shard {index}/{count}: the index must be 0 .. {count - 1}")
-    return index * members // count, (index + 1) * members // count
+    return index * member_count // count, (index + 1) * member_count // count

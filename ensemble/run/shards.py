@@ -20,9 +20,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
-import shlex
 import shutil
-import sys
 import tomllib
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
@@ -38,7 +36,6 @@ from ensemble.errors import PartError
 from ensemble.output.layout import ResultLayout
 from ensemble.output.variables import TRAJECTORIES
 from ensemble.records import ChunkKey, ChunkResult
-from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
 from ensemble.run.journal import WorkJournal, partial_path
 from ensemble.run.layout import lowered_models, result_layout
 from ensemble.run.plan import fingerprint, plan_chunks, shard_range
@@ -83,7 +80,7 @@ class Shard:
             raise ValueError(f"expected I/N, e.g. 0/8, not {text!r}")
         return cls(int(index), int(count))
 
-    def members(self, total: int) -> tuple[int, int]:
+    def member_range(self, total: int) -> tuple[int, int]:
         """``(start, end)`` of this shard's members out of ``total`` (end excluded)."""
         return shard_range(self.index, self.count, total)
 
@@ -100,7 +97,7 @@ def default_part_path(scenario: Scenario, shard: Shard) -> Path:
 def engine_options(scenario: Scenario, shard: Shard, backend: str) -> dict[str, Any]:
     """Arguments of :func:`ensemble.run.execute.run_scenario` that make it run ``shard``
     only and end with its part file instead of a result."""
-    return {"members": shard.members(scenario.member_count),
+    return {"member_range": shard.member_range(scenario.member_count),
             "finish": functools.partial(write_part, shard=shard, backend=backend)}
 
 
@@ -134,9 +131,9 @@ def write_part(journal: WorkJournal, shard: Shard, backend: str) -> Path:
     The part's path.
     """
     layout = journal.layout
-    start, end = shard.members(layout.member_count)
+    start, end = shard.member_range(layout.member_count)
     missing = journal.pending(plan_chunks(layout.scenario, max(end - start, 1),
-                                          members=(start, end)))
+                                          member_range=(start, end)))
     if missing:
         raise RuntimeError(f"shard {shard}: members {missing} were never saved")
     path = Path(journal.path)
@@ -217,7 +214,7 @@ class PartInfo:
     path: Path
     fingerprint: str
     shard: Shard
-    members: tuple[int, int]
+    member_range: tuple[int, int]
     history: str
 
 
@@ -240,7 +237,8 @@ def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
                         "parts are made by `ensemble run --shard I/N`")
     return PartInfo(path=path, fingerprint=str(attributes["fingerprint"]),
                     shard=Shard(int(attributes["shard_index"]), int(attributes["shard_count"])),
-                    members=(int(attributes["member_start"]), int(attributes["member_end"])),
+                    member_range=(int(attributes["member_start"]),
+                                  int(attributes["member_end"])),
                     history=str(attributes["history"]))
 
 
@@ -320,10 +318,10 @@ def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenar
     ``output``, checked against the part's fingerprint."""
     with netCDF4.Dataset(info.path) as part:
         text, original = str(part.scenario), str(part.scenario_path)
-        members, seed, backend = int(part.members), int(part.seed), str(part.backend)
+        member_count, seed, backend = int(part.members), int(part.seed), str(part.backend)
     scenario = validate(tomllib.loads(text, parse_float=Decimal), original, text)
     scenario = dataclasses.replace(
-        scenario, member_count=members, seed=seed,
+        scenario, member_count=member_count, seed=seed,
         output=dataclasses.replace(scenario.output, path=os.fspath(output)))
     if fingerprint(scenario, backend) != info.fingerprint:
         raise PartError(str(info.path), "", None, "made by a different version of "
@@ -336,7 +334,7 @@ def _read_chunks(info: PartInfo, layout: ResultLayout
                  ) -> Iterator[tuple[tuple[int, int, int], ChunkResult, dict[str, np.ndarray]]]:
     """A part's members as (key, result, reported), variant by variant, in blocks of at most
     :data:`BLOCK_BYTES` of trajectories."""
-    start, end = info.members
+    start, end = info.member_range
     per_member = 8 * sum(layout.cell_count(variable) for variable in STORED)
     block = max(1, BLOCK_BYTES // per_member)
     with netCDF4.Dataset(info.path) as part:
@@ -355,99 +353,3 @@ def _read_chunks(info: PartInfo, layout: ResultLayout
                 reported = {name: part[f"param_{name}"][variant, ..., rows]
                             for name in layout.parameters}
                 yield (variant, first, last), result, reported
-
-
-# ----------------------------------------------------------------------------- job arrays
-
-_ARRAY = {
-    # system: (submit, array directive, index variable, log directives, dependency option)
-    "slurm": ("sbatch --parsable", "--array=0-{last}", "SLURM_ARRAY_TASK_ID",
-              ("-o {logs}/%x-%A_%a.log",), "--kill-on-invalid-dep=yes --dependency=afterok:"),
-    "pbs": ("qsub", "-J 0-{last}", "PBS_ARRAY_INDEX",
-            ("-j oe", "-o {logs}/"), "-W depend=afterok:"),
-}
-"""How each batch system submits a job array and a job that waits for all of it: SLURM
-(sbatch(1): ``--array``, ``SLURM_ARRAY_TASK_ID``, ``--dependency=afterok:<array job>`` waits
-for every task) and PBS Pro (qsub(1B): ``-J``, ``PBS_ARRAY_INDEX``, ``-W depend=afterok:``
-on the array's ``<id>[]`` waits for every subjob)."""
-
-_JOB_END = "ENSEMBLE_JOB_SCRIPT"
-
-
-def array_script(scenario: Scenario, profile: ClusterProfile, shards: int, *,
-                 run_options: Sequence[str], cwd: Path) -> str:
-    """A bash driver that submits ``shards`` shards as one job array and a merge job.
-
-    The merge job starts only if every array task succeeded, and writes the result to
-    ``scenario.output.path``; the parts go to the directory ``<result stem>.parts`` beside
-    it, with one log per task.  Each array task runs ``ensemble run --shard I/N --resume``
-    on the job's own cores, so resubmitting the driver after a failure recomputes only the
-    shards whose part is missing.
-
-    Parameters
-    ----------
-    scenario : the validated scenario (overrides applied), whose file the jobs read.
-    profile : the batch-system profile (header, walltime, setup lines).
-    shards : number of array tasks, 1 .. members.
-    run_options : command-line options carried into every shard's ``ensemble run``
-        (e.g. ``["--members", "5000", "--seed", "7"]``).
-    cwd : the directory the jobs work in.
-
-    Returns
-    -------
-    The script's text.
-    """
-    submit, directive, index, log_lines, depend = _ARRAY[profile.system]
-    prefix = header_prefix(profile)
-    result = (cwd / scenario.output.path).resolve()
-    parts = result.with_name(f"{result.stem}.parts")
-    scenario_path = (cwd / scenario.source.path).resolve()
-    command = [sys.executable, "-m", "ensemble"]
-    last = shards - 1
-    shard_run = shlex.join([*command, "run", str(scenario_path), *run_options,
-                            "--workers", str(profile.processes), "--resume"])
-    part = f"{shlex.quote(str(parts))}/shard-${{{index}}}-of-{shards}.nc"
-    shard_job = [
-        job_header(profile, f"ensemble-{scenario.name}"),
-        f"{prefix} {directive.format(last=last)}",
-        *(f"{prefix} {line.format(logs=parts)}" for line in log_lines),
-        *environment_lines(profile),
-        f"cd {shlex.quote(str(cwd))}",
-        f'exec {shard_run} --shard "${{{index}}}/{shards}" --output {part}',
-    ]
-    merge_run = shlex.join([*command, "merge"])
-    merge_job = [
-        job_header(profile, f"ensemble-{scenario.name}-merge"),
-        *(f"{prefix} {line.format(logs=parts).replace('%a', 'merge')}"
-          for line in log_lines),
-        *environment_lines(profile),
-        f"cd {shlex.quote(str(cwd))}",
-        f"exec {merge_run} {shlex.quote(str(parts))}/shard-{{0..{last}}}-of-{shards}.nc "
-        f"--output {shlex.quote(str(result))}",
-    ]
-    lines = [
-        "#!/usr/bin/env bash",
-        f"# Submits {scenario.name!r} as a {profile.system.upper()} job array of {shards} "
-        f"shards and a merge job that",
-        "# runs only if every shard succeeds. Made by `ensemble array-script`; run it with "
-        "bash on the login node.",
-        f"# Result: {result}",
-        f"# Parts and logs: {parts}/",
-        "set -euo pipefail",
-        f"mkdir -p {shlex.quote(str(parts))}",
-        f"shards=$({submit} <<'{_JOB_END}'",
-        "#!/usr/bin/env bash",
-        *shard_job,
-        _JOB_END,
-        ")",
-        'shards=${shards%%;*}',
-        f"merge=$({submit} {depend}\"$shards\" <<'{_JOB_END}'",
-        "#!/usr/bin/env bash",
-        *merge_job,
-        _JOB_END,
-        ")",
-        'merge=${merge%%;*}',
-        'echo "submitted the shards as job array $shards and the merge as job $merge"',
-        f'echo "result, when job $merge has ended: "{shlex.quote(str(result))}',
-    ]
-    return "\n".join(lines) + "\n"
