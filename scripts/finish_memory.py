@@ -1,4 +1,4 @@
-"""Peak memory of the result store's finish step at full size.
+"""Peak memory of the work journal's finish step at full size.
 
 Saves made-up chunks of a 200,000-member SEIR over 365 days (one variant, 366 reports)
 into a work directory, then runs ``WorkJournal.finish`` in a fresh process and prints that

@@ -1,4 +1,4 @@
-"""Peak resident memory of a large `ensemble run`, against the 2 GB goal of issue 4.
+"""Peak resident memory of a large `ensemble run`, against the project's 2 GB goal.
 
 Writes an illustrative SEIR scenario (invented numbers) with 200,000 members over 365
 days, ``keep_members = false`` and the step check on, runs ``ensemble run`` on it in a
@@ -30,7 +30,8 @@ import psutil
 from ensemble.examples import seir_text
 
 GOAL_BYTES = 2 * 10**9
-"""Issue 4: a 200,000-member SEIR over 365 days must run in under 2 GB resident memory."""
+"""The project's goal: a 200,000-member SEIR over 365 days runs in under 2 GB resident
+memory."""
 
 
 def sample(root: psutil.Process) -> tuple[int, int, int]:

@@ -35,9 +35,9 @@ from support import fill, grouped_scenario, layout_of, load_text
 
 def _made_up_file(directory: Path, **options) -> Path:
     layout = layout_of(grouped_scenario(directory, members=7, **options))
-    store = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
-    fill(store, layout, chunk=3)
-    return store.finish()
+    journal = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
+    fill(journal, layout, chunk=3)
+    return journal.finish()
 
 
 @pytest.fixture(scope="module")
@@ -51,8 +51,9 @@ def undated(tmp_path_factory) -> Path:
 
 
 UNDATED_TIME_RULE = "\u00a75.1 Independent Latitude, Longitude, Vertical, and Time Axes"
-"""Without ``start`` SPEC section 3 gives ``time`` units "days" (no reference date); the
-checker takes a variable named ``time`` for a CF time axis, which needs one (CF 4.4)."""
+"""Without ``start`` the reference (ensemble/scenario/reference.md, result file) gives
+``time`` units "days" (no reference date); the checker takes a variable named ``time``
+for a CF time axis, which needs one (CF 4.4)."""
 
 
 def _cf_failures(path: Path) -> list[dict]:

@@ -24,16 +24,16 @@ def result(tmp_path_factory):
     as float days) together with its layout."""
     directory = tmp_path_factory.mktemp("summary")
     layout = layout_of(grouped_scenario(directory, members=9))
-    store = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
-    fill(store, layout, chunk=4)
-    path = store.finish()
+    journal = WorkJournal.open(directory / "result.nc", layout, resume=False, force=False)
+    fill(journal, layout, chunk=4)
+    path = journal.finish()
     with xr.open_dataset(path, decode_times=False) as dataset:
         yield dataset.load(), layout
 
 
 def _included(status: np.ndarray) -> np.ndarray:
-    """Members behind the quantiles, by SPEC section 3: neither bit 4 (non-finite) nor
-    bit 8 (impossible start) set."""
+    """Members behind the quantiles, by the project's reference (result file): neither
+    bit 4 (non-finite) nor bit 8 (impossible start) set."""
     return (status & 4 == 0) & (status & 8 == 0)
 
 
@@ -75,8 +75,8 @@ def test_peaks_and_totals_of_made_up_members(result):
 
 
 def test_flow_count_is_nan_first_and_sums_to_total_flow(result):
-    """SPEC section 3: flow_count covers (time - report_every, time], so nothing at the
-    first time; over the horizon it adds up to total_flow."""
+    """The project's reference (result file): flow_count covers (time - report_every,
+    time], so nothing at the first time; over the horizon it adds up to total_flow."""
     dataset, _ = result
     assert np.isnan(dataset.flow_count.isel(time=0)).all()
     assert not np.isnan(dataset.flow_count.isel(time=slice(1, None))).any()

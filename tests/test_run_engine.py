@@ -1,5 +1,5 @@
-"""The run engine's handling of a chunk that fails (issue 4 part 6: a failure during a run
-is reported in one line, and the chunks finished before it are kept for --resume)."""
+"""The run engine's handling of a chunk that fails (a failure during a run is reported in
+one line, and the chunks finished before it are kept for --resume)."""
 
 from __future__ import annotations
 
@@ -77,7 +77,8 @@ def test_a_task_error_on_a_worker_becomes_run_failed(tmp_path: Path) -> None:
 
 
 def test_resume_without_work_in_progress_starts_afresh(tmp_path: Path) -> None:
-    """SPEC section 2: --resume starts afresh when there is no <PATH>.partial."""
+    """The project's reference (command line): --resume starts afresh when there is no
+    <PATH>.partial."""
     scenario = write_scenario(tmp_path, members=6)
     result = api.run(scenario, output=tmp_path / "result.nc", workers=0, resume=True,
                      progress=False)
@@ -94,25 +95,25 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
     scenario = load_scenario(write_scenario(tmp_path, members=12))
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     layout = layout_of(scenario)
-    store = WorkJournal.open(tmp_path / "result.nc", layout, resume=False, force=False)
-    token = store.mark()
-    assert store.shares_directory(token) and not store.shares_directory("elsewhere")
+    journal = WorkJournal.open(tmp_path / "result.nc", layout, resume=False, force=False)
+    token = journal.mark()
+    assert journal.shares_directory(token) and not journal.shares_directory("elsewhere")
 
-    elsewhere = tasks.compute_and_save_chunk(scenario, models[0], (0, 0, 6), store,
+    elsewhere = tasks.compute_and_save_chunk(scenario, models[0], (0, 0, 6), journal,
                                                "elsewhere", "numpy")
-    assert isinstance(elsewhere, tasks.ChunkOutput) and store.saved() == []
-    saved = tasks.compute_and_save_chunk(scenario, models[0], (0, 6, 12), store, token,
+    assert isinstance(elsewhere, tasks.ChunkOutput) and journal.saved() == []
+    saved = tasks.compute_and_save_chunk(scenario, models[0], (0, 6, 12), journal, token,
                                            "numpy")
-    assert saved == tasks.ChunkSaved((0, 6, 12)) and store.saved() == [(0, 6, 12)]
+    assert saved == tasks.ChunkSaved((0, 6, 12)) and journal.saved() == [(0, 6, 12)]
 
     driver = WorkJournal.open(tmp_path / "driver.nc", layout, resume=False, force=False)
     output = tasks.compute_chunk(scenario, models[0], (0, 6, 12), "numpy")
     driver.save(output.key, output.result, output.reported)
     chunk = "chunk-v0-0000000006-0000000012"
     for name in ("state.npy", "flow_count.npy"):
-        assert ((store.work / chunk / name).read_bytes()
+        assert ((journal.work / chunk / name).read_bytes()
                 == (driver.work / chunk / name).read_bytes()), name
-    with np.load(store.work / chunk / "members.npz") as ours, \
+    with np.load(journal.work / chunk / "members.npz") as ours, \
             np.load(driver.work / chunk / "members.npz") as theirs:
         assert sorted(ours.files) == sorted(theirs.files)
         for name in ours.files:
@@ -120,9 +121,9 @@ def test_a_worker_saves_its_chunk_only_where_it_sees_the_work_directory(tmp_path
 
     with open_client(workers=1) as client:
         outputs = list(executors.on_cluster(client, scenario, models, [(1, 0, 12)], "numpy",
-                                           store))
+                                           journal))
     assert outputs == [tasks.ChunkSaved((1, 0, 12))]
-    assert store.saved() == [(0, 6, 12), (1, 0, 12)]
+    assert journal.saved() == [(0, 6, 12), (1, 0, 12)]
 
 
 def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) -> None:
@@ -132,14 +133,14 @@ def test_checkpoints_make_the_saved_chunks_durable(tmp_path: Path, monkeypatch) 
     waits for the last batch."""
     monkeypatch.setattr(journal_module, "CHECKPOINT_SECONDS", 0.0)
     scenario = load_scenario(write_scenario(tmp_path, members=12))
-    store = WorkJournal.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
+    journal = WorkJournal.open(tmp_path / "result.nc", layout_of(scenario), resume=False,
                            force=False)
     models = [lower_model(scenario, variant) for variant in scenario.variants]
     keys = [(0, 0, 6), (0, 6, 12), (1, 0, 12)]
     outputs = executors.in_process(scenario, models, keys, "numpy")
-    execute.save_all(store, outputs, Progress(bar=False))
-    durable = (store.work / "durable-chunks").read_text().split()
-    assert durable and set(durable) <= {path.name for path in store.work.glob("chunk-*")}
+    execute.save_all(journal, outputs, Progress(bar=False))
+    durable = (journal.work / "durable-chunks").read_text().split()
+    assert durable and set(durable) <= {path.name for path in journal.work.glob("chunk-*")}
     assert "chunk-v0-0000000000-0000000006" in durable
 
 

@@ -51,38 +51,38 @@ def _assert_same_numbers(first, second):
 
 
 def test_pending_cuts_partly_saved_chunks_to_what_is_missing(tmp_path, layout):
-    store = _open(tmp_path / "r.nc", layout)
-    store.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
-    store.save((0, 8, 10), *made_up_members(layout, 0, 8, 10))
+    journal = _open(tmp_path / "r.nc", layout)
+    journal.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
+    journal.save((0, 8, 10), *made_up_members(layout, 0, 8, 10))
     asked = [(0, 0, 6), (0, 6, 10), (1, 0, 10)]
-    assert store.pending(asked) == [(0, 4, 6), (0, 6, 8), (1, 0, 10)]
-    assert store.saved() == [(0, 0, 4), (0, 8, 10)]
+    assert journal.pending(asked) == [(0, 4, 6), (0, 6, 8), (1, 0, 10)]
+    assert journal.saved() == [(0, 0, 4), (0, 8, 10)]
 
 
 def test_save_checks_keys_members_and_shapes(tmp_path, layout):
-    store = _open(tmp_path / "r.nc", layout)
-    store.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
+    journal = _open(tmp_path / "r.nc", layout)
+    journal.save((0, 0, 4), *made_up_members(layout, 0, 0, 4))
     with pytest.raises(ValueError, match="overlaps"):
-        store.save((0, 2, 6), *made_up_members(layout, 0, 2, 6))
+        journal.save((0, 2, 6), *made_up_members(layout, 0, 2, 6))
     with pytest.raises(ValueError, match="holds members"):
-        store.save((0, 5, 9), *made_up_members(layout, 0, 4, 8))
+        journal.save((0, 5, 9), *made_up_members(layout, 0, 4, 8))
     with pytest.raises(ValueError, match="outside"):
-        store.save((0, 8, 11), *made_up_members(layout, 0, 8, 11))
+        journal.save((0, 8, 11), *made_up_members(layout, 0, 8, 11))
     result, reported = made_up_members(layout, 1, 0, 3)
     del reported["infectious_days"]
     with pytest.raises(ValueError, match="infectious_days"):
-        store.save((1, 0, 3), result, reported)
+        journal.save((1, 0, 3), result, reported)
     result, reported = made_up_members(layout, 1, 0, 3)
     reported["susceptibility"] = reported["susceptibility"][0]     # one group missing
     with pytest.raises(ValueError, match="susceptibility.*expected"):
-        store.save((1, 0, 3), result, reported)
+        journal.save((1, 0, 3), result, reported)
 
 
 def test_load_returns_what_was_saved(tmp_path, layout):
-    store = _open(tmp_path / "r.nc", layout)
+    journal = _open(tmp_path / "r.nc", layout)
     result, reported = made_up_members(layout, 1, 3, 7)
-    store.save((1, 3, 7), result, reported)
-    loaded, loaded_reported = store.load((1, 3, 7))
+    journal.save((1, 3, 7), result, reported)
+    loaded, loaded_reported = journal.load((1, 3, 7))
     for name in ("members", "state", "flow_count", "step_error", "observed_order", "status"):
         np.testing.assert_array_equal(getattr(loaded, name), getattr(result, name))
     for name in reported:
@@ -125,10 +125,10 @@ def test_after_a_crash_of_the_system_only_durable_chunks_are_kept(tmp_path, layo
     (the system crashed, its data may never have reached the disk) is recomputed unless
     make_durable listed it; chunks of this boot are kept as they are."""
     path = tmp_path / "r.nc"
-    store = _open(path, layout)
+    journal = _open(path, layout)
     for key in [(0, 0, 3), (0, 3, 6), (1, 0, 3)]:
-        store.save(key, *made_up_members(layout, *key))
-    store.make_durable([(0, 0, 3)])
+        journal.save(key, *made_up_members(layout, *key))
+    journal.make_durable([(0, 0, 3)])
     assert _open(path, layout, resume=True).saved() == [(0, 0, 3), (0, 3, 6), (1, 0, 3)]
     for name in ("chunk-v0-0000000000-0000000003", "chunk-v0-0000000003-0000000006"):
         (partial_path(path) / name / chunk_files.BOOT_FILE).write_text("an earlier boot")
@@ -158,24 +158,24 @@ def test_an_existing_result_is_replaced_only_when_forced(tmp_path, layout):
     path.write_bytes(b"an older result")
     with pytest.raises(ResultExists):
         _open(path, layout)
-    store = _open(path, layout, force=True)
-    fill(store, layout, chunk=5)
+    journal = _open(path, layout, force=True)
+    fill(journal, layout, chunk=5)
     assert path.read_bytes() == b"an older result"      # untouched until finish
-    store.finish()
+    journal.finish()
     assert result_fingerprint(path) == layout.fingerprint
     assert WorkJournal.is_complete(path, layout.fingerprint)
     assert not WorkJournal.is_complete(path, "0" * 64)
 
 
 def test_finish_names_missing_members(tmp_path, layout):
-    store = _open(tmp_path / "r.nc", layout)
-    fill(store, layout, chunk=5)
-    chunk = store.chunks.directory((1, 5, 10))
+    journal = _open(tmp_path / "r.nc", layout)
+    fill(journal, layout, chunk=5)
+    chunk = journal.chunks.directory((1, 5, 10))
     for entry in chunk.iterdir():
         entry.unlink()
     chunk.rmdir()
     with pytest.raises(IncompleteWork, match="members 5-9 of variant 'fewer-contacts'"):
-        store.finish()
+        journal.finish()
     assert not (tmp_path / "r.nc").exists()
 
 
@@ -183,8 +183,8 @@ def test_the_final_name_appears_only_complete(tmp_path, layout, monkeypatch):
     """At the rename, the final name is still absent and the temporary is a complete
     result in the same directory (so the rename is atomic)."""
     path = tmp_path / "r.nc"
-    store = _open(path, layout)
-    fill(store, layout, chunk=5)
+    journal = _open(path, layout)
+    fill(journal, layout, chunk=5)
     seen = []
     real_replace = os.replace
 
@@ -197,7 +197,7 @@ def test_the_final_name_appears_only_complete(tmp_path, layout, monkeypatch):
         real_replace(source, target)
 
     monkeypatch.setattr(durable.os, "replace", checking_replace)
-    store.finish()
+    journal.finish()
     assert seen == [layout.fingerprint]
 
 
@@ -211,15 +211,15 @@ def test_a_full_disk_keeps_the_chunks_for_resume(tmp_path, layout, monkeypatch, 
     RuntimeError, which is how a full disk shows up inside HDF5) is a StoreWriteError;
     no temporary stays behind and the chunks are there for a resume."""
     path = tmp_path / "r.nc"
-    store = _open(path, layout)
-    fill(store, layout, chunk=5)
+    journal = _open(path, layout)
+    fill(journal, layout, chunk=5)
 
     def disk_full(*args, **kwargs):
         raise failure
 
     monkeypatch.setattr(writer, "write_trajectories", disk_full)
     with pytest.raises(StoreWriteError, match=message):
-        store.finish()
+        journal.finish()
     assert not path.exists()
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
     monkeypatch.undo()
@@ -238,11 +238,11 @@ def test_an_unwritable_destination_is_a_store_error(tmp_path, layout):
 
 def test_without_members_the_file_keeps_summaries_only(tmp_path):
     layout = layout_of(grouped_scenario(tmp_path, members=10, keep_members=False))
-    store = _open(tmp_path / "r.nc", layout)
-    fill(store, layout, chunk=4)
-    loaded, _ = store.load((0, 0, 4))
+    journal = _open(tmp_path / "r.nc", layout)
+    fill(journal, layout, chunk=4)
+    loaded, _ = journal.load((0, 0, 4))
     assert loaded.state.shape[0] == 4           # the work in progress keeps trajectories
-    store.finish()
+    journal.finish()
     with netCDF4.Dataset(tmp_path / "r.nc") as nc:
         assert "state" not in nc.variables and "flow_count" not in nc.variables
         assert {"state_quantile", "peak_value", "status"} <= set(nc.variables)
@@ -264,11 +264,11 @@ def test_finish_gathers_thousands_of_members_in_small_blocks(tmp_path):
     for all members is 24 kB): finish uses many blocks, none over the budget, and its
     quantiles equal numpy.quantile over all members in memory."""
     layout = layout_of(grouped_scenario(tmp_path, members=3000))
-    store = _open(tmp_path / "r.nc", layout, block_bytes=100_000)
-    fill(store, layout, chunk=700)
-    store.finish()
-    assert store.largest_block_bytes <= 100_000
-    assert store.block_count >= 2 * 2 * layout.n_reports
+    journal = _open(tmp_path / "r.nc", layout, block_bytes=100_000)
+    fill(journal, layout, chunk=700)
+    journal.finish()
+    assert journal.largest_block_bytes <= 100_000
+    assert journal.block_count >= 2 * 2 * layout.n_reports
     with xr.open_dataset(tmp_path / "r.nc", decode_times=False) as dataset:
         keep = (dataset.status.values & 12) == 0
         for v in range(2):
@@ -279,22 +279,22 @@ def test_finish_gathers_thousands_of_members_in_small_blocks(tmp_path):
 
 def test_brackets_derived_block_by_block_equal_those_of_the_whole_pilot(tmp_path,
                                                                          monkeypatch):
-    """The store reads its pilot a few cells at a time (excluded members as NaN); the
+    """The journal reads its pilot a few cells at a time (excluded members as NaN); the
     brackets equal :func:`pilot_brackets` of the included pilot members held in memory at
     once (the selection's own contract, ensemble/output/selection.py)."""
     pilot = 1000
     layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
     monkeypatch.setattr(brackets_module, "PILOT_MEMBERS", pilot)
     monkeypatch.setattr(brackets_module, "PILOT_BLOCK_BYTES", 3 * pilot * 8)
-    store = _open(tmp_path / "r.nc", layout)
-    assert store.brackets.pilot_members() == pilot
+    journal = _open(tmp_path / "r.nc", layout)
+    assert journal.brackets.pilot_members() == pilot
     for first in (0, 600):
-        store.save((1, first, first + 600), *made_up_members(layout, 1, first, first + 600))
-    assert store.brackets.pilot(0) is None              # variant 0 has no pilot yet
+        journal.save((1, first, first + 600), *made_up_members(layout, 1, first, first + 600))
+    assert journal.brackets.pilot(0) is None              # variant 0 has no pilot yet
     result, _ = made_up_members(layout, 1, 0, pilot)
     included = in_summary(result.status)
     assert not included.all()                           # members 1 and 2 are left out
-    derived = store.brackets.pilot(1)
+    derived = journal.brackets.pilot(1)
     for name in ("state", "flow_count"):
         values = getattr(result, name).transpose(2, 1, 0).reshape(-1, pilot)
         expected = pilot_brackets(values[:, included].copy(), layout.scenario.output.quantiles)

@@ -19,9 +19,9 @@ from support import write_scenario
 
 @given(members=st.integers(0, 10_000), count=st.integers(1, 300))
 def test_shards_cover_every_member_once(members: int, count: int) -> None:
-    """SPEC section 2: shard I of N holds members floor(I*M/N) .. floor((I+1)*M/N) - 1;
-    together the shards hold every member exactly once, in order, with sizes differing by
-    at most one."""
+    """The project's reference (sharded runs): shard I of N holds members
+    floor(I*M/N) .. floor((I+1)*M/N) - 1; together the shards hold every member exactly
+    once, in order, with sizes differing by at most one."""
     ranges = [shard_range(index, count, members) for index in range(count)]
     assert ranges[0][0] == 0 and ranges[-1][1] == members
     assert all(ranges[i][1] == ranges[i + 1][0] for i in range(count - 1))
