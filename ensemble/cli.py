@@ -72,7 +72,7 @@ Force = Annotated[bool, typer.Option("--force", help="Replace an existing result
 def run(
     scenario: ScenarioFile,
     output: OutputFile = None,
-    members: MemberCount = None,
+    member_count: MemberCount = None,
     seed: Seed = None,
     chunk: ChunkSize = None,
     workers: Annotated[Optional[int], typer.Option(
@@ -111,7 +111,7 @@ def run(
 
     began = time.monotonic()
     _stop_on_signals()
-    loaded, profile = _loaded_for_run(scenario, members, seed, cluster, address)
+    loaded, profile = _loaded_for_run(scenario, member_count, seed, cluster, address)
     if shard is not None and output is None:
         output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
@@ -144,7 +144,7 @@ def _history() -> str:
     return api.history_line(shlex.join(["ensemble", *sys.argv[1:]]))
 
 
-def _loaded_for_run(scenario: Path, members: int | None, seed: int | None,
+def _loaded_for_run(scenario: Path, member_count: int | None, seed: int | None,
                     cluster: str | None, address: str | None):
     """The scenario (with the overrides) and the cluster profile of ``ensemble run``
     (exit 2 when either is invalid, or when both a profile and an address are given)."""
@@ -152,7 +152,7 @@ def _loaded_for_run(scenario: Path, members: int | None, seed: int | None,
     from ensemble.errors import UsageError
 
     with _reported():
-        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed)
         profile = api.cluster_profile(cluster if cluster is not None
                                       else loaded.compute.cluster)
         if profile is not None and address is not None:
@@ -247,7 +247,7 @@ def array_script(
                                          help="Cluster profile (slurm or pbs).")],
     shards: Annotated[int, typer.Option("--shards", min=1, help="Number of array tasks.")],
     output: OutputFile = None,
-    members: MemberCount = None,
+    member_count: MemberCount = None,
     seed: Seed = None,
     chunk: ChunkSize = None,
     backend: BackendChoice = None,
@@ -256,12 +256,12 @@ def array_script(
     that runs only if every shard succeeded. Run it with bash on the login node."""
     from ensemble import api
 
-    carried = {"--members": members, "--seed": seed, "--chunk": chunk,
+    carried = {"--members": member_count, "--seed": seed, "--chunk": chunk,
                "--backend": backend.value if backend else None}
     run_options = [str(item) for option, value in carried.items() if value is not None
                    for item in (option, value)]
     with _reported():
-        loaded = api.load_scenario(scenario, member_count=members, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed)
         text = api.array_script(loaded, cluster, shards, output=output,
                                 run_options=run_options)
     typer.echo(text, nl=False)

@@ -284,10 +284,10 @@ def test_brackets_derived_block_by_block_equal_those_of_the_whole_pilot(tmp_path
     once (the selection's own contract, ensemble/output/selection.py)."""
     pilot = 1000
     layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
-    monkeypatch.setattr(brackets_module, "PILOT_MEMBERS", pilot)
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBER_COUNT", pilot)
     monkeypatch.setattr(brackets_module, "PILOT_BLOCK_BYTES", 3 * pilot * 8)
     journal = _open(tmp_path / "r.nc", layout)
-    assert journal.brackets.pilot_members() == pilot
+    assert journal.brackets.pilot_member_count() == pilot
     for first in (0, 600):
         journal.save((1, first, first + 600), *made_up_members(layout, 1, first, first + 600))
     assert journal.brackets.pilot(0) is None              # variant 0 has no pilot yet

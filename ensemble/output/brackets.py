@@ -30,17 +30,17 @@ from ensemble.output.candidates import (candidate_parts, cells_per_block, reusab
                                         summed_counts)
 from ensemble.output.layout import ResultLayout
 from ensemble.output.quantiles import in_summary
-from ensemble.output.selection import PILOT_MEMBERS, Brackets, merged_brackets
+from ensemble.output.selection import PILOT_MEMBER_COUNT, Brackets, merged_brackets
 from ensemble.output.sources import MemberSource
 from ensemble.output.variables import TRAJECTORIES, TRAJECTORY_NAMES, TrajectoryVariable
 from ensemble.records import ChunkKey
 
 PILOT_BYTES = 512 * 2**20
-"""Largest size of a pilot's trajectories (:meth:`BracketCache.pilot_members`)."""
+"""Largest size of a pilot's trajectories (:meth:`BracketCache.pilot_member_count`)."""
 
 REFINE_PILOTS = 4
 """The refined brackets come from the first ``REFINE_PILOTS`` pilots' worth of members
-(:meth:`BracketCache.refine_members`): half as wide as the pilot's."""
+(:meth:`BracketCache.refining_member_count`): half as wide as the pilot's."""
 
 PILOT_BLOCK_BYTES = 16 * 2**20
 """Pilot values sorted at once when brackets are derived."""
@@ -79,7 +79,7 @@ class BracketCache:
         """A copy for another task keeps no brackets: it reads the directory."""
         return {**self.__dict__, "_known": {}, "_unrefined": set()}
 
-    def pilot_members(self) -> int:
+    def pilot_member_count(self) -> int:
         """Members at the start of each variant whose trajectories are kept whole and
         give the brackets; the members after them may be saved as candidates only.  0
         (every member kept whole) when the result holds the members' trajectories, when
@@ -87,17 +87,17 @@ class BracketCache:
         more than :data:`PILOT_BYTES`."""
         layout = self.layout
         cells = sum(layout.cell_count(variable) for variable in TRAJECTORIES)
-        if (layout.keep_members or layout.member_count < 4 * PILOT_MEMBERS
-                or cells * PILOT_MEMBERS * 8 > PILOT_BYTES):
+        if (layout.keep_members or layout.member_count < 4 * PILOT_MEMBER_COUNT
+                or cells * PILOT_MEMBER_COUNT * 8 > PILOT_BYTES):
             return 0
-        return PILOT_MEMBERS
+        return PILOT_MEMBER_COUNT
 
-    def refine_members(self) -> int:
+    def refining_member_count(self) -> int:
         """Members at the start of each variant whose candidates give refined brackets
         (half as wide as the pilot's); the chunks that start after them are cut with
         those.  0 (the pilot's brackets throughout) without a pilot or when the ensemble
         is too small to gain."""
-        refine = REFINE_PILOTS * self.pilot_members()
+        refine = REFINE_PILOTS * self.pilot_member_count()
         return refine if refine and self.layout.member_count >= 2 * refine else 0
 
     def pilot(self, variant: int) -> dict[str, Brackets] | None:
@@ -106,7 +106,7 @@ class BracketCache:
         known = self._read("pilot", variant)
         if known is not None:
             return known
-        pilot = self.pilot_members()
+        pilot = self.pilot_member_count()
         if not pilot or not self.source.covers(variant, pilot):
             return None
         with self._exclusive(wait=True):
@@ -123,14 +123,14 @@ class BracketCache:
     def cutting(self, key: ChunkKey) -> dict[str, Brackets] | None:
         """The brackets to cut chunk ``key`` with: None (keep it whole) in its variant's
         pilot or while the pilot is not saved; the refined brackets past
-        :meth:`refine_members` once they are stored or can be derived without waiting
+        :meth:`refining_member_count` once they are stored or can be derived without waiting
         (the first members all saved, no other derivation running); else the pilot's."""
         variant, first, _ = key
-        pilot = self.pilot_members()
+        pilot = self.pilot_member_count()
         if not 0 < pilot <= first:
             return None
         coarse = self.pilot(variant)
-        refine = self.refine_members()
+        refine = self.refining_member_count()
         if coarse is None or not 0 < refine <= first:
             return coarse
         known = self.refined(variant)

@@ -37,7 +37,7 @@ from ensemble.output.quantiles import interpolate, linear_ranks
 MARGIN_SD = 6.0
 """Half-width of a bracket in standard deviations of the pilot's binomial rank count."""
 
-PILOT_MEMBERS = 8192
+PILOT_MEMBER_COUNT = 8192
 """Members of the pilot (the first members of each variant)."""
 
 
@@ -141,25 +141,25 @@ def _cut(values, included, lower, upper, used, below, nans, offsets, out):
     ``nans``; the members of the odd slots are copied to ``out`` interval by interval
     from ``offsets[c * K + k]`` on, in member order.  Returns how many values were
     kept."""
-    cells, members = values.shape
+    cells, member_count = values.shape
     intervals = lower.shape[1]
     ignored = 2 * intervals + 2
-    slots = np.empty(members, np.int32)
-    chosen = np.empty(members + 1, np.int32)
+    slots = np.empty(member_count, np.int32)
+    chosen = np.empty(member_count + 1, np.int32)
     cursor = np.empty(intervals, np.int64)
     kept = 0
     for c in range(cells):
         row = values[c]
-        for m in range(members):
+        for m in range(member_count):
             slots[m] = 0
         for k in range(used[c]):
             low = lower[c, k]
             high = upper[c, k]
-            for m in range(members):
+            for m in range(member_count):
                 value = row[m]
                 slots[m] += (value >= low) + (value > high)
         missing = 0
-        for m in range(members):
+        for m in range(member_count):
             value = row[m]
             keep = included[m] & (value == value)
             missing += included[m] & (value != value)
@@ -169,7 +169,7 @@ def _cut(values, included, lower, upper, used, below, nans, offsets, out):
         for k in range(used[c]):
             under = 0
             within = 0
-            for m in range(members):
+            for m in range(member_count):
                 under += slots[m] < 2 * k + 1
                 within += slots[m] == 2 * k + 1
             below[c, k] = under
@@ -179,7 +179,7 @@ def _cut(values, included, lower, upper, used, below, nans, offsets, out):
         for k in range(used[c], intervals):
             offsets[c * intervals + k] = kept
         found = 0
-        for m in range(members):
+        for m in range(member_count):
             chosen[found] = m
             found += slots[m] & 1
         for i in range(found):
