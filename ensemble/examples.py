@@ -1,9 +1,9 @@
 """Illustrative scenario texts with invented numbers, for notebooks, tests and scripts.
 
 Every population, contact rate and parameter range below is made up: the texts show the
-shape of a scenario file (SPEC section 1) at a chosen size, not any real epidemic.  Write
-one to a ``.toml`` file and load it with :func:`ensemble.scenario.load.load_scenario`, or
-pass the file to ``ensemble run``.
+shape of a scenario file (the project's reference, ``ensemble/scenario/reference.md``) at
+a chosen size, not any real epidemic.  Write one to a ``.toml`` file and load it with
+:func:`ensemble.scenario.load.load_scenario`, or pass the file to ``ensemble run``.
 """
 
 from __future__ import annotations

@@ -184,6 +184,7 @@ def _run(integrate, scenario, model, design, method, step=None):
                      solver.newton, solver.check.atol)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("method", list(METHODS))
 def test_compiled_matches_numpy_reference(two_group, method):
     """Same numbers as the numpy stepper to 1e-12 relative, NaN where it has NaN, and
@@ -280,6 +281,7 @@ def test_member_gets_same_bits_in_any_chunk_and_thread_count(tmp_path, cache):
         set_kernel_threads(threads)
 
 
+@pytest.mark.slow
 def test_second_process_loads_kernel_from_disk_without_compiling(tmp_path):
     """The generated text and numba's machine code are cached on disk: a fresh process
     running the same model finds the kernel file and gets a numba cache hit."""
