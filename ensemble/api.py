@@ -164,7 +164,7 @@ def open_result(path: str | os.PathLike[str]) -> xr.Dataset:
     import xarray as xr
 
     from ensemble.output.dataset import with_label_indexes
-    from ensemble.output.writer import result_fingerprint
+    from ensemble.output.result_file import result_fingerprint
 
     result_fingerprint(path)
     return with_label_indexes(xr.open_dataset(path, decode_timedelta=False))

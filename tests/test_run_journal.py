@@ -19,11 +19,11 @@ import xarray as xr
 from ensemble import durable
 from ensemble.errors import FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError
 from ensemble.output import brackets as brackets_module
-from ensemble.output import writer
+from ensemble.output import result_file, writer
 from ensemble.output.finish import block_plan
 from ensemble.output.quantiles import in_summary
 from ensemble.output.selection import pilot_brackets
-from ensemble.output.writer import result_fingerprint
+from ensemble.output.result_file import result_fingerprint
 from ensemble.run import chunk_files
 from ensemble.run.journal import WorkJournal, partial_path
 from support import fill, grouped_scenario, layout_of, made_up_members
@@ -103,7 +103,7 @@ def test_resume_after_a_kill_finishes_the_same_file(tmp_path, layout):
     stray = partial_path(path) / ".tmp-chunk-v0-0000000003-0000000006-99999"
     stray.mkdir()
     (stray / "state.npy").write_bytes(b"half a chunk")
-    half_written_result = tmp_path / f".r.nc.x1y2z3{writer.UNFINISHED_SUFFIX}"
+    half_written_result = tmp_path / f".r.nc.x1y2z3{result_file.UNFINISHED_SUFFIX}"
     half_written_result.write_bytes(b"killed while finishing")
     del killed
 

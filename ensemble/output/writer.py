@@ -7,12 +7,12 @@ per-member variables are written by xarray while the quantiles of the trajectori
 selected (netCDF compresses without the interpreter lock), then those quantiles and,
 when the result keeps them, every member's trajectories chunk by chunk are added with
 netCDF4.  It is written under a temporary name beside its final one and renamed into
-place once complete (:func:`ensemble.durable.replace_atomically`).
+place once complete (:func:`ensemble.durable.replace_atomically`); what makes a file a
+complete result is in :mod:`.result_file`.
 """
 
 from __future__ import annotations
 
-import os
 import shutil
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -22,20 +22,13 @@ import numpy as np
 import xarray as xr
 
 from ensemble.durable import replace_atomically
-from ensemble.errors import NotAResult, StoreWriteError
+from ensemble.errors import StoreWriteError
 from ensemble.output.dataset import (append_variables, build_dataset, create_variable,
                                      encoding, file_shape)
 from ensemble.output.finish import Finisher
 from ensemble.output.quantiles import in_summary
+from ensemble.output.result_file import UNFINISHED_SUFFIX
 from ensemble.output.variables import TRAJECTORY_NAMES
-
-UNFINISHED_SUFFIX = ".unfinished"
-"""Ending of the temporary name a result file is written under (``.<name>.<random>``
-before it): a leftover of a killed finish is recognised by it and removed on resume."""
-
-COMPLETE_MARK = "members_in_summary"
-"""A variable only a finished result file holds."""
-
 
 def result_dataset(finisher: Finisher) -> xr.Dataset:
     """Every variable of the result as one dataset in memory (not yet decoded): the
@@ -69,11 +62,6 @@ def write_result(path: Path, finisher: Finisher, kept_in: Path) -> Path:
     return path
 
 
-def unfinished_files(path: Path) -> list[Path]:
-    """Temporaries of result ``path`` left by a finish that was killed."""
-    return sorted(path.parent.glob(f".{path.name}.*{UNFINISHED_SUFFIX}"))
-
-
 def _write_file(target: Path, finisher: Finisher) -> None:
     """Write every variable of the result into the file ``target``."""
     layout = finisher.layout
@@ -104,44 +92,3 @@ def write_trajectories(target: Path, finisher: Finisher) -> None:
                 member_major = finisher.source.trajectory(key, name)[np.newaxis]
                 variable[variant, first:end] = file_shape(layout, name, member_major)[0]
                 del member_major
-
-
-def result_fingerprint(path: str | os.PathLike[str]) -> str:
-    """The fingerprint of the complete result file at ``path``.
-
-    A complete result is a netCDF file with the global attribute ``fingerprint`` and the
-    variable :data:`COMPLETE_MARK` (written only when a result is finished), and
-    without the ``ensemble_part`` attribute of a shard's part file.
-
-    Raises
-    ------
-    NotAResult : missing, a work-in-progress directory, not netCDF, or not complete.
-    """
-    path = Path(path)
-    if path.is_dir() or path.name.endswith(".partial"):
-        raise NotAResult(str(path), "", None, "is the work in progress of an unfinished "
-                         "run, not a result", "finish it by running again with --resume")
-    if not path.is_file():
-        raise NotAResult(str(path), "", None, "does not exist")
-    try:
-        with netCDF4.Dataset(path) as nc:
-            fingerprint = getattr(nc, "fingerprint", None)
-            complete = COMPLETE_MARK in nc.variables
-            part = "ensemble_part" in nc.ncattrs()
-    except OSError as error:
-        raise NotAResult(str(path), "", None, f"is not a netCDF file ({error})") from error
-    if part:
-        raise NotAResult(str(path), "", None, "is a part file (one shard of a run), not a "
-                         "result", "join the parts with ensemble merge")
-    if fingerprint is None or not complete:
-        raise NotAResult(str(path), "", None, "is not a complete ensemble result (a part "
-                         "file, or another netCDF file)")
-    return str(fingerprint)
-
-
-def is_complete(path: str | os.PathLike[str], fingerprint: str) -> bool:
-    """True when ``path`` is a complete result file with this ``fingerprint``."""
-    try:
-        return result_fingerprint(path) == fingerprint
-    except NotAResult:
-        return False

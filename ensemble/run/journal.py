@@ -45,7 +45,7 @@ from ensemble.output.layout import ResultLayout
 from ensemble.output.quantiles import in_summary
 from ensemble.output.sources import check_chunk, chunk_member_arrays
 from ensemble.output.variables import TRAJECTORIES
-from ensemble.output.writer import is_complete, unfinished_files, write_result
+from ensemble.output.result_file import is_complete, unfinished_files
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.chunk_files import BOOT_FILE, CHUNK_PREFIX, MEMBER_FILE, ChunkFiles
 
@@ -348,6 +348,8 @@ class WorkJournal:
             must be computed again and ``recompute`` is None.
         StoreWriteError : the file could not be written; the chunks are kept.
         """
+        from ensemble.output.writer import write_result   # xarray: only to write a result
+
         self._check_complete()
         chunks = ChunkFiles(self.work, self.layout, recompute)
         finisher = Finisher(self.layout, chunks,
