@@ -12,8 +12,10 @@ array: one row per element of each parameter drawn from a distribution or given 
 number (:attr:`ConstantTrees.inputs`).  No tree reads a state, a schedule or the time.
 
 A matrix-valued intermediate is a :class:`~ensemble.model.lowering.Matrix` of one tree per
-entry, held per member (``R0 * contacts`` depends on the member's draw); a function of a
-whole matrix evaluated once per member can take its entries from there.
+entry, held per member (``R0 * contacts`` depends on the member's draw).  A
+``spectral_radius`` of such a matrix is no scalar operation: it becomes one more row of the
+input array (:attr:`ConstantTrees.radii`), computed per member from the values of the
+matrix's entries before the trees that read it are evaluated.
 """
 
 from __future__ import annotations
@@ -39,8 +41,11 @@ class ConstantTrees:
 
     Attributes
     ----------
-    inputs : the rows of the input array, file order: every element of each parameter
-        drawn from a distribution or given as a number.
+    inputs : the first rows of the input array, file order: every element of each
+        parameter drawn from a distribution or given as a number.
+    radii : the matrices whose spectral radii are the next rows of the input array, in
+        order: row ``len(inputs) + j`` is the spectral radius of ``radii[j]`` (rows of
+        entries, None for a structural zero), whose trees read only earlier rows.
     parameters : every parameter constant in time (given, drawn or derived), file order:
         one tree, or a :class:`~ensemble.model.lowering.Vector` for a parameter over groups.
     slots : the value of each row of ``LoweredModel.parameter_slots``.
@@ -50,6 +55,7 @@ class ConstantTrees:
     """
 
     inputs: tuple[Element, ...]
+    radii: tuple[tuple[tuple[ScalarNode | None, ...], ...], ...]
     parameters: Mapping[str, ScalarNode | Vector]
     slots: tuple[ScalarNode, ...]
     schedule_knots: tuple[tuple[ScalarNode, ...], ...]
@@ -86,13 +92,17 @@ def lower_constants(scenario: Scenario, variant: Variant, slots: Sequence[Elemen
     varying = time_varying_parameters(lowering.parameters)
     parameters = {name: lowering.name(name) for name in lowering.parameters
                   if name not in varying}
+    slot_values = tuple(_element(parameters[name], element) for name, element in slots)
+    knots = tuple(lowering.knots(name, element) for name, element in schedule_slots)
+    initial = tuple(lowering.initial(scenario.model.initial.get(compartment, 0.0))
+                    for compartment in scenario.model.compartments)
     return ConstantTrees(
         inputs=lowering.inputs,
+        radii=tuple(matrix.rows for matrix in lowering.radii),
         parameters=parameters,  # type: ignore[arg-type]
-        slots=tuple(_element(parameters[name], element) for name, element in slots),
-        schedule_knots=tuple(lowering.knots(name, element) for name, element in schedule_slots),
-        initial=tuple(lowering.initial(scenario.model.initial.get(compartment, 0.0))
-                      for compartment in scenario.model.compartments),
+        slots=slot_values,
+        schedule_knots=knots,
+        initial=initial,
     )
 
 
@@ -122,6 +132,14 @@ class _ConstantLowering(ExpressionLowering):
                 elements = self.n_groups if parameter.shape == "vector" else 1
                 inputs.extend((name, g) for g in range(elements))
         self.inputs = tuple(inputs)
+        self.radii: dict[Matrix, int] = {}
+
+    def spectral_radius(self, matrix: Matrix) -> ScalarNode:
+        """The input row holding the spectral radius of ``matrix`` (one row per distinct
+        matrix, after the given and drawn rows)."""
+        if matrix not in self.radii:
+            self.radii[matrix] = len(self.radii)
+        return ParamRef(len(self.inputs) + self.radii[matrix])
 
     def name(self, name: str) -> Value:
         if name == "pi":

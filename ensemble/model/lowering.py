@@ -11,8 +11,12 @@ wherever it is written.
 A value during lowering is a scalar tree, a :class:`Vector` (one tree per group) or a
 :class:`Matrix` (one tree per entry, so a matrix whose entries depend on drawn values is
 held per member).  Scalars broadcast over groups and over matrix entries; ``@`` is matrix
-times vector, ``sum`` adds a vector's elements; sums are folded left to right in group
-order, so a member's value never depends on the other members computed with it.
+times vector or matrix, ``sum`` adds a vector's elements, ``diag`` puts a vector on the
+diagonal of a matrix whose other entries are structural zeros; sums are folded left to
+right in group order, so a member's value never depends on the other members computed
+with it.  ``spectral_radius`` is no scalar operation: the lowering of the values constant
+in time (:mod:`ensemble.model.constants`) turns each into a value computed once per member
+from the entries of its matrix; a rate cannot use it.
 
 Structural zeros.  A zero entry of a matrix written as numbers in the scenario file is
 structural: ``M @ v`` has no term for it and ``scalar * M`` keeps it zero, whatever the
@@ -101,16 +105,29 @@ class ExpressionLowering:
             args = [self.lower(a) for a in node.args]
             if node.function == "sum":
                 return fold_sum(_vector_items(args[0]))
+            if node.function == "diag":
+                return _diagonal(_vector_items(args[0]))
+            if node.function == "spectral_radius":
+                if not isinstance(args[0], Matrix):
+                    raise ValueError("spectral_radius() takes a matrix")
+                return self.spectral_radius(args[0])
             return self._elementwise(node.function, args)
         if not isinstance(node, Binary):
             raise TypeError(f"not an expression node: {node!r}")
         left, right = self.lower(node.left), self.lower(node.right)
         if node.op == "@":
+            if isinstance(right, Matrix):
+                return _matrix_times_matrix(left, right)
             return _matrix_times_vector(left, right)
         op = _BINARY_OPERATIONS[node.op]
         if isinstance(left, Matrix) or isinstance(right, Matrix):
             return _matrix_arithmetic(op, left, right)
         return self._elementwise(op, [left, right])
+
+    def spectral_radius(self, matrix: Matrix) -> ScalarNode:
+        """The tree standing for the spectral radius of ``matrix``: only the values
+        constant in time compute one (once per member, before integration)."""
+        raise ValueError("spectral_radius() is computed once per member, not in a rate")
 
     def _map(self, op: str, value: Value) -> Value:
         if isinstance(value, Matrix):
@@ -150,6 +167,29 @@ def _matrix_times_vector(matrix: Value, vector: Value) -> Vector:
     return Vector(tuple(
         fold_sum([apply("mul", m, v) for m, v in zip(row, vector.items) if m is not None])
         for row in matrix.rows))
+
+
+def _matrix_times_matrix(left: Value, right: Value) -> Matrix:
+    """Entry (g, h) is the sum over k of A[g, k] B[k, h], in order of k, leaving out the
+    terms with a structural zero; an entry without terms is a structural zero."""
+    if not isinstance(left, Matrix) or not isinstance(right, Matrix):
+        raise ValueError("'@' takes a matrix and a vector or a matrix")
+    size = len(right.rows)
+    rows = []
+    for row in left.rows:
+        entries: list[ScalarNode | None] = []
+        for h in range(size):
+            terms = [apply("mul", a, right.rows[k][h]) for k, a in enumerate(row)
+                     if a is not None and right.rows[k][h] is not None]
+            entries.append(fold_sum(terms) if terms else None)
+        rows.append(tuple(entries))
+    return Matrix(tuple(rows))
+
+
+def _diagonal(items: tuple[ScalarNode, ...]) -> Matrix:
+    """The matrix with ``items`` on its diagonal; the other entries are structural zeros."""
+    return Matrix(tuple(tuple(item if g == h else None for h in range(len(items)))
+                        for g, item in enumerate(items)))
 
 
 def _vector_items(value: Value) -> tuple[ScalarNode, ...]:

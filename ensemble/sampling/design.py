@@ -23,6 +23,7 @@ from ensemble.model.ir import ScalarNode
 from ensemble.model.lower import LoweredModel
 from ensemble.model.lowering import Vector
 from ensemble.model.numpy_program import NumpyProgram
+from ensemble.model.spectra import spectral_radii
 from ensemble.sampling.uniform import uniform_draws
 from ensemble.scenario.schema import (INITIAL_SUM_RTOL, Distribution, Fixed, Parameter,
                                       Scenario, Variant)
@@ -68,7 +69,8 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
     member_index = np.asarray(member_index, dtype=np.int64).reshape(-1)
     trees = model.constants
     with np.errstate(all="ignore"):
-        inputs = input_rows(scenario, variant, trees.inputs, member_index)
+        inputs = with_radii(trees, input_rows(scenario, variant, trees.inputs,
+                                              member_index))
         values = _Evaluated(trees, inputs)
         initial, invalid = initial_state(scenario, values.initial, member_index.size)
         return Design(member_index=member_index, parameters=values.slots,
@@ -86,6 +88,31 @@ def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element]
     rows = np.empty((len(elements), member_index.size))
     for row, (name, g) in enumerate(elements):
         rows[row] = _input_value(parameters[name], g, uniforms)
+    return rows
+
+
+def with_radii(trees: ConstantTrees, inputs: np.ndarray) -> np.ndarray:
+    """``inputs`` (n_inputs, M) followed by a row per entry of ``trees.radii``: the
+    spectral radius of each member's matrix (:func:`ensemble.model.spectra.spectral_radii`),
+    whose entries are evaluated from the rows before it."""
+    if not trees.radii:
+        return inputs
+    n_members = inputs.shape[1]
+    rows = np.empty((inputs.shape[0] + len(trees.radii), n_members))
+    rows[:inputs.shape[0]] = inputs
+    no_rows = np.empty((0, n_members))
+    for j, matrix in enumerate(trees.radii):
+        size = len(matrix)
+        entries = [(g * size + h, tree) for g, row in enumerate(matrix)
+                   for h, tree in enumerate(row) if tree is not None]
+        values = np.zeros((size * size, n_members))
+        if entries:
+            out = np.empty((len(entries), n_members))
+            NumpyProgram("radius", [tree for _, tree in entries])(
+                0.0, no_rows, rows[:inputs.shape[0] + j], no_rows, out)
+            values[[flat for flat, _ in entries]] = out
+        stack = np.ascontiguousarray(values.T.reshape(n_members, size, size))
+        rows[inputs.shape[0] + j] = spectral_radii(stack)
     return rows
 
 

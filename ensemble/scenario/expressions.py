@@ -5,7 +5,7 @@ small tree below; any other node, name form or call is rejected with a reason.  
 is never handed to ``eval`` or ``exec``.
 
 Grammar: numbers, names, ``+ - * / **``, unary minus, parentheses, ``@`` (matrix times
-vector), and calls of :data:`FUNCTIONS`.
+vector or matrix), and calls of :data:`FUNCTIONS`.
 """
 
 from __future__ import annotations
@@ -19,10 +19,17 @@ from typing import Literal, Union
 
 FUNCTIONS: dict[str, int] = {
     "exp": 1, "log": 1, "sqrt": 1, "abs": 1, "sin": 1, "cos": 1,
-    "min": 2, "max": 2, "sum": 1,
+    "min": 2, "max": 2, "sum": 1, "diag": 1, "spectral_radius": 1,
 }
-"""Callable functions and their number of arguments.  ``sum`` is the only reduction
-(vector over groups -> scalar); the others act elementwise."""
+"""Callable functions and their number of arguments.  ``sum`` reduces a vector over
+groups to a number, ``diag`` makes a vector the diagonal of a matrix, and
+``spectral_radius`` reduces a matrix to the largest modulus of its eigenvalues; the others
+act elementwise."""
+
+ONCE_PER_MEMBER = frozenset({"spectral_radius"})
+"""Functions computed once per member from its parameters, never per step: they may not
+be used where the state or the time can reach them (rates, and derived parameters that
+vary in time)."""
 
 BUILTIN_NAMES = frozenset({"t", "N", "pi"})
 """Names every expression may use: time in days since start, the current total of the
@@ -198,12 +205,25 @@ def names_in(node: Node) -> frozenset[str]:
     return frozenset()
 
 
+def functions_in(node: Node) -> frozenset[str]:
+    """Every function ``node`` calls."""
+    if isinstance(node, Negate):
+        return functions_in(node.operand)
+    if isinstance(node, Binary):
+        return functions_in(node.left) | functions_in(node.right)
+    if isinstance(node, Call):
+        return frozenset({node.function}).union(*(functions_in(a) for a in node.args))
+    return frozenset()
+
+
 def infer_shape(node: Node, shapes: Mapping[str, str]) -> str:
     """The kind of value ``node`` evaluates to: ``"scalar"``, ``"vector"`` or ``"matrix"``.
 
     ``shapes`` maps every name the expression may use to its kind.  Elementwise
     arithmetic broadcasts scalars; matrix +/- matrix and scalar */ matrix give matrices;
-    matrix @ vector gives a vector; ``sum`` takes a vector; any other mix is an error.
+    matrix @ vector gives a vector and matrix @ matrix a matrix; ``sum`` takes a vector,
+    ``diag`` a vector (giving a matrix), ``spectral_radius`` a matrix; any other mix is an
+    error.
     """
     if isinstance(node, Number):
         return "scalar"
@@ -219,15 +239,24 @@ def infer_shape(node: Node, shapes: Mapping[str, str]) -> str:
             if kinds[0] != "vector":
                 raise ExpressionError(f"sum() takes a vector over groups, not a {kinds[0]}")
             return "scalar"
+        if node.function == "diag":
+            if kinds[0] != "vector":
+                raise ExpressionError(f"diag() takes a vector over groups, not a {kinds[0]}")
+            return "matrix"
+        if node.function == "spectral_radius":
+            if kinds[0] != "matrix":
+                raise ExpressionError(f"spectral_radius() takes a matrix, not a {kinds[0]}")
+            return "scalar"
         if "matrix" in kinds:
             raise ExpressionError(f"{node.function}() does not take a matrix")
         return "vector" if "vector" in kinds else "scalar"
     left = infer_shape(node.left, shapes)
     right = infer_shape(node.right, shapes)
     if node.op == "@":
-        if left == "matrix" and right == "vector":
-            return "vector"
-        raise ExpressionError(f"'@' takes a matrix and a vector, not {left} @ {right}")
+        if left == "matrix" and right in ("vector", "matrix"):
+            return right
+        raise ExpressionError(f"'@' takes a matrix and a vector or a matrix, not "
+                              f"{left} @ {right}")
     if "matrix" not in (left, right):
         return "vector" if "vector" in (left, right) else "scalar"
     if left == right == "matrix" and node.op in "+-":

@@ -247,6 +247,7 @@ class ParameterReader:
                                     "matrix arithmetic into the rate instead")
         if expression.names & (time_varying | {"t"}):
             time_varying.add(draft.name)
+            self.reader.refuse_per_step(expression, "a parameter that varies in time")
         return Parameter(draft.name, Derived(expression), expression.shape,
                          draft.units, draft.description)
 

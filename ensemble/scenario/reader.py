@@ -300,3 +300,14 @@ class Reader:
             raise self.error(text.path, text.text, str(exc)) from None
         return Expression(text.text, text.tree, text.path, shape,  # type: ignore[arg-type]
                           text.names)
+
+    def refuse_per_step(self, expression: Expression, where: str) -> None:
+        """Refuse a function that is computed once per member (``spectral_radius``) in
+        an expression that is evaluated at every step (``where`` says which)."""
+        once = sorted(expressions.functions_in(expression.tree) & expressions.ONCE_PER_MEMBER)
+        if once:
+            raise self.error(expression.key, expression.text,
+                             f"{once[0]}() is computed once per member from the parameters, "
+                             f"so {where} cannot use it",
+                             f"give it its own derived parameter, constant in time "
+                             f"(scale = \"{once[0]}(...)\"), and use that name here")

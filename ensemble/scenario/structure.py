@@ -206,6 +206,7 @@ def _flow(reader: Reader, value: object, path: str, scope: Scope,
     if is_number(raw):
         raw = repr(reader.number(raw, rate_path))
     rate = reader.check(reader.parse(raw, rate_path), shapes)
+    reader.refuse_per_step(rate, "a rate")
     wanted = "vector" if scope.groups is not None else "scalar"
     if rate.shape != wanted:
         reason = ("with groups every rate must be a vector over groups"
