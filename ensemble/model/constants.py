@@ -28,8 +28,8 @@ import numpy as np
 from ensemble.model.ir import Const, ParamRef, ScalarNode
 from ensemble.model.lowering import (ExpressionLowering, Matrix, Value, Vector,
                                      constant_matrix)
-from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, InitialValue,
-                                      Parameter, Rest, Scenario, Schedule, Variant)
+from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, GroupDraws,
+                                      InitialValue, Parameter, Rest, Scenario, Schedule, Variant)
 
 Element = tuple[str, int]
 """(parameter name, element): element g of a parameter over groups, 0 for a scalar."""
@@ -127,7 +127,7 @@ class _ConstantLowering(ExpressionLowering):
         inputs: list[Element] = []
         self._first_input: dict[str, int] = {}
         for name, parameter in self.parameters.items():
-            if isinstance(parameter.form, (Fixed, Distribution)):
+            if isinstance(parameter.form, (Fixed, Distribution, GroupDraws)):
                 self._first_input[name] = len(inputs)
                 elements = self.n_groups if parameter.shape == "vector" else 1
                 inputs.extend((name, g) for g in range(elements))

@@ -25,8 +25,8 @@ from ensemble.model.lowering import Vector
 from ensemble.model.numpy_program import NumpyProgram
 from ensemble.model.spectra import spectral_radii
 from ensemble.sampling.uniform import uniform_draws
-from ensemble.scenario.schema import (INITIAL_SUM_RTOL, Distribution, Fixed, Parameter,
-                                      Scenario, Variant)
+from ensemble.scenario.schema import (INITIAL_SUM_RTOL, Fixed, GroupDraws, Parameter,
+                                      Scenario, Variant, element_distribution)
 
 @dataclass(frozen=True)
 class Design:
@@ -82,8 +82,8 @@ def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element]
                member_index: np.ndarray) -> np.ndarray:
     """(n_inputs, M): each given or drawn parameter element's value per member."""
     parameters = scenario.variant_parameters(variant)
-    drawn = [element for element in elements
-             if isinstance(parameters[element[0]].form, Distribution)]
+    drawn = [(name, g) for name, g in elements
+             if element_distribution(parameters[name].form, g) is not None]
     uniforms = uniform_draws(scenario, drawn, member_index)
     rows = np.empty((len(elements), member_index.size))
     for row, (name, g) in enumerate(elements):
@@ -121,10 +121,13 @@ def _input_value(parameter: Parameter, element: int,
     form = parameter.form
     if isinstance(form, Fixed):
         return form.value[element] if isinstance(form.value, tuple) else form.value
-    if not isinstance(form, Distribution):
-        raise ValueError(f"parameter {parameter.name!r} is neither given nor drawn")
-    return inverse_cdf(form.family, form.arguments, form.truncation,
-                       uniforms[(parameter.name, element)])
+    distribution = element_distribution(form, element)
+    if distribution is not None:
+        return inverse_cdf(distribution.family, distribution.arguments,
+                           distribution.truncation, uniforms[(parameter.name, element)])
+    if isinstance(form, GroupDraws):
+        return form.elements[element]  # type: ignore[return-value]
+    raise ValueError(f"parameter {parameter.name!r} is neither given nor drawn")
 
 
 class _Evaluated:

@@ -31,7 +31,7 @@ from collections.abc import Iterator, Mapping, Sequence
 
 import numpy as np
 
-from ensemble.scenario.schema import Distribution, Scenario
+from ensemble.scenario.schema import Distribution, Scenario, element_distribution
 
 ColumnKey = tuple[str, int]
 """(parameter name, element): element g of a per-group parameter, 0 for a scalar."""
@@ -52,18 +52,18 @@ def uncertain_columns(scenario: Scenario) -> tuple[ColumnKey, ...]:
     """Every column any variant draws, in the file's parameter order.
 
     A parameter has a column per element if the base scenario or any variant gives it a
-    distribution; ``per_group`` gives one per group.
+    distribution; ``per_group`` gives one per group, and a list per group one per group
+    that any variant draws.
     """
     columns: list[ColumnKey] = []
     for name in scenario.parameters:
         forms = [scenario.parameters[name].form]
         forms += [v.parameters[name].form for v in scenario.variants if name in v.parameters]
-        drawn = [f for f in forms if isinstance(f, Distribution)]
-        if not drawn:
+        if any(isinstance(f, Distribution) and not f.per_group for f in forms):
+            columns.append((name, 0))
             continue
-        per_group = any(f.per_group for f in drawn)
-        elements = scenario.model.n_groups if per_group else 1
-        columns.extend((name, g) for g in range(elements))
+        columns.extend((name, g) for g in range(scenario.model.n_groups)
+                       if any(element_distribution(f, g) is not None for f in forms))
     return tuple(columns)
 
 

@@ -7,8 +7,8 @@ from collections.abc import Iterable, Mapping
 from ensemble.methods import METHODS
 from ensemble.scenario.reader import time_text
 from ensemble.scenario.schema import (
-    Derived, Distribution, Expression, Fixed, InitialValue, Matrix, Parameter, Rest, Scenario,
-    Schedule, Variant,
+    Derived, Distribution, Expression, Fixed, GroupDraws, InitialValue, Matrix, Parameter, Rest,
+    Scenario, Schedule, Variant,
 )
 
 _INDENT = "  "
@@ -133,6 +133,9 @@ def parameter_text(parameter: Parameter) -> str:
                 else number_text(form.value))
     elif isinstance(form, Distribution):
         text = _distribution_text(form)
+    elif isinstance(form, GroupDraws):
+        text = "[" + ", ".join(_distribution_text(e) if isinstance(e, Distribution)
+                               else number_text(e) for e in form.elements) + "]"
     elif isinstance(form, Derived):
         text = f"= {form.expression.text}"
     else:

@@ -32,8 +32,8 @@ from ensemble.errors import ScenarioError
 from ensemble.scenario.initial import read_initial
 from ensemble.scenario.parameters import ParameterReader, Resolved
 from ensemble.scenario.reader import MISSING, Reader, time_text
-from ensemble.scenario.schema import (Distribution, Expression, Flow, InitialValue, Model,
-                                      Parameter, Rest, Scenario, Schedule, Source, Variant)
+from ensemble.scenario.schema import (Expression, Flow, InitialValue, Model, Parameter, Rest,
+                                      Scenario, Schedule, Source, Variant, is_drawn)
 from ensemble.scenario.settings import (check_whole_days, read_compute, read_head,
                                         read_output, read_sampling, read_solver)
 from ensemble.scenario.structure import (MODEL_KEYS, Scope, Structure, read_flows,
@@ -195,7 +195,7 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
                 warnings.append(f"{where}{parameter.name}: schedule day(s) {', '.join(late)} "
                                 f"fall after the horizon of {time_text(scenario.days)} days "
                                 "and have no effect")
-    uncertain = [p for p in scenario.parameters.values() if isinstance(p.form, Distribution)]
+    uncertain = [p for p in scenario.parameters.values() if is_drawn(p.form)]
     if not uncertain and n_members > 1 and not any(v.parameters for v in scenario.variants):
         warnings.append(f"no parameter is drawn from a distribution: all {n_members} members "
                         "of a variant are identical")

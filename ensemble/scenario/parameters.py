@@ -20,8 +20,9 @@ from typing import Any
 from ensemble.distributions import FAMILIES
 from ensemble.scenario.reader import (Abandoned, Reader, Text, hint_for_keys, is_number,
                                       key_path, shown, time_text)
-from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, InitialValue,
-                                      Parameter, ParameterForm, Schedule, Shape, Variant)
+from ensemble.scenario.schema import (Derived, Distribution, Expression, Fixed, GroupDraws,
+                                      InitialValue, Parameter, ParameterForm, Schedule, Shape,
+                                      Variant)
 from ensemble.scenario.structure import Scope, read_matrix
 
 Knot = tuple[Fraction, float | tuple[float, ...] | Text]
@@ -121,7 +122,11 @@ class ParameterReader:
 
     def constant(self, name: str, value: object, path: str, units: str | None = None,
                  description: str | None = None) -> Draft:
-        """A number, or a list with one number per group."""
+        """A number, or a list with one number per group (or, with distribution tables
+        among its entries, a value per group drawn group by group)."""
+        if isinstance(value, list) and any(isinstance(v, dict) for v in value):
+            return Draft(name, path, self.group_draws(name, value, path), "vector",
+                         units=units, description=description)
         if isinstance(value, list):
             return Draft(name, path, Fixed(self.scope.vector(self.reader, value, path)),
                          "vector", units=units, description=description)
@@ -133,7 +138,35 @@ class ParameterReader:
         return {"units": reader.get(table, path, "units", reader.string, None),
                 "description": reader.get(table, path, "description", reader.string, None)}
 
+    def group_draws(self, name: str, value: list, path: str) -> GroupDraws:
+        """A list per group whose entries are distribution tables or numbers."""
+        reader, groups = self.reader, self.scope.groups
+        if groups is None:
+            raise reader.error(path, value, "a list per group needs model.groups")
+        if len(value) != len(groups):
+            raise reader.error(path, value, f"must have one entry per group ({len(groups)}), "
+                                            f"not {len(value)}")
+        elements: list[Distribution | float] = []
+        for g, entry in enumerate(value):
+            where = f"{path}[{g}]"
+            if not isinstance(entry, dict):
+                elements.append(reader.number(entry, where))
+                continue
+            if "dist" not in entry:
+                raise reader.error(where, entry, "an entry of a list per group is a number "
+                                   "or a distribution table with 'dist'")
+            elements.append(self.family_form(name, entry, where, element=True))
+        return GroupDraws(tuple(elements))
+
     def distribution(self, name: str, table: dict[str, Any], path: str) -> Draft:
+        form = self.family_form(name, table, path, element=False)
+        return Draft(name, path, form, "vector" if form.per_group else "scalar",
+                     **self.annotations(table, path))
+
+    def family_form(self, name: str, table: dict[str, Any], path: str,
+                    element: bool) -> Distribution:
+        """A distribution table: a parameter's own (with ``per_group``, ``units`` and
+        ``description``), or one group's ``element`` of a list per group (without)."""
         reader = self.reader
         if table["dist"] == "fixed":
             example = shown(table.get("value", 0.2))
@@ -144,8 +177,9 @@ class ParameterReader:
         family = FAMILIES[reader.known(table["dist"], FAMILIES, key_path(path, "dist"),
                                        "distribution")]
         bounds = ("low", "high") if family.truncatable else ()
+        own = () if element else ("per_group", "units", "description")
         reader.table(table, path, ("dist", *family.required, *family.optional, *bounds,
-                                   "per_group", "units", "description"))
+                                   *own))
         per_group = reader.get(table, path, "per_group", reader.boolean, False)
         if per_group and self.scope.groups is None:
             raise reader.error(key_path(path, "per_group"), True,
@@ -160,9 +194,7 @@ class ParameterReader:
             truncation = (reader.get(table, path, "low", reader.number, None),
                           reader.get(table, path, "high", reader.number, None))
             reader.refuse(family.truncation_problem(*truncation), table, path)
-        form = Distribution(family.name, MappingProxyType(arguments), truncation, per_group)
-        return Draft(name, path, form, "vector" if per_group else "scalar",
-                     **self.annotations(table, path))
+        return Distribution(family.name, MappingProxyType(arguments), truncation, per_group)
 
     def schedule(self, name: str, table: dict[str, Any], path: str) -> Draft:
         reader = self.reader

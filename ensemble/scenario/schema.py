@@ -127,6 +127,35 @@ class Distribution:
 
 
 @dataclass(frozen=True)
+class GroupDraws:
+    """A value per group, each group's drawn from its own distribution (or given).
+
+    Element g of ``elements`` is the distribution group g's value is drawn from once per
+    member, with a column of draws of its own (keyed by the parameter's name and the
+    group, so every variant draws it at the same ranks), or a number for a group whose
+    value is known.
+    """
+
+    elements: tuple[Distribution | float, ...]
+
+
+def element_distribution(form: "ParameterForm", element: int) -> Distribution | None:
+    """The distribution element ``element`` of a parameter of form ``form`` is drawn
+    from, or None when that element is not drawn."""
+    if isinstance(form, Distribution):
+        return form
+    if isinstance(form, GroupDraws) and isinstance(form.elements[element], Distribution):
+        return form.elements[element]  # type: ignore[return-value]
+    return None
+
+
+def is_drawn(form: "ParameterForm") -> bool:
+    """Whether a parameter of form ``form`` draws any of its elements."""
+    return isinstance(form, Distribution) or (isinstance(form, GroupDraws) and any(
+        isinstance(element, Distribution) for element in form.elements))
+
+
+@dataclass(frozen=True)
 class Derived:
     """An expression of other parameters, evaluated per member after sampling."""
 
@@ -148,7 +177,7 @@ class Schedule:
     between: Literal["step", "linear"] = "step"
 
 
-ParameterForm = Union[Fixed, Distribution, Derived, Schedule]
+ParameterForm = Union[Fixed, Distribution, GroupDraws, Derived, Schedule]
 
 
 @dataclass(frozen=True)
