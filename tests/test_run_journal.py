@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import errno
 import os
+import pickle
 
 import netCDF4
 import numpy as np
@@ -25,6 +26,7 @@ from ensemble.output.quantiles import in_summary
 from ensemble.output.selection import pilot_brackets
 from ensemble.output.result_file import result_fingerprint
 from ensemble.run import chunk_files
+from ensemble.run import tasks  # noqa: F401 (how tasks pickle the scenario's tables)
 from ensemble.run.journal import WorkJournal, partial_path
 from support import fill, grouped_scenario, layout_of, made_up_members
 
@@ -300,3 +302,38 @@ def test_brackets_derived_block_by_block_equal_those_of_the_whole_pilot(tmp_path
         expected = pilot_brackets(values[:, included].copy(), layout.scenario.output.quantiles)
         np.testing.assert_array_equal(derived[name].lower, expected.lower)
         np.testing.assert_array_equal(derived[name].upper, expected.upper)
+
+
+def test_task_copies_read_the_brackets_the_first_derivation_stored(tmp_path, monkeypatch):
+    """Every task gets a pickled copy of the journal (dask sends one with each task): a
+    copy holds no brackets, reads those the first derivation stored in the work
+    directory (the same digests, nothing derived again), and skips the refinement rather
+    than wait while another task holds the derivation lock (the journal's contract,
+    ensemble/output/brackets.py)."""
+    pilot = 500
+    layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBER_COUNT", pilot)
+    monkeypatch.setattr(brackets_module, "REFINE_PILOTS", 2)
+    journal = _open(tmp_path / "r.nc", layout)
+    journal.save((0, 0, 2 * pilot), *made_up_members(layout, 0, 0, 2 * pilot))
+    derived = journal.brackets.pilot(0)
+
+    def derive_again(*arguments):
+        raise AssertionError("a copy derived the pilot's brackets again")
+
+    copy = pickle.loads(pickle.dumps(journal))      # as a task carries it
+    assert copy.brackets._known == {}
+    monkeypatch.setattr(brackets_module.BracketCache, "_pilot_brackets", derive_again)
+    read = copy.brackets.pilot(0)
+    assert {name: b.digest() for name, b in read.items()} == {
+        name: b.digest() for name, b in derived.items()}
+
+    past_refining = (0, 2 * pilot, 2 * pilot + 10)
+    with journal.brackets._exclusive(wait=True):
+        assert copy.brackets.cutting(past_refining) is read      # not awaited
+    assert copy.brackets.refined(0) is None
+    refined = copy.brackets.cutting(past_refining)
+    assert refined is not read
+    assert {name: b.digest() for name, b in refined.items()} == {
+        name: b.digest() for name, b in journal.brackets.refined(0).items()}
+    assert (journal.work / "refined-brackets-v0.npz").is_file()
