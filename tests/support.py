@@ -9,10 +9,12 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import re
 import subprocess
 import sys
 import textwrap
 import time
+from collections import defaultdict
 from pathlib import Path
 
 import numpy as np
@@ -549,3 +551,53 @@ def assert_identical_numbers(first: Path, second: Path) -> None:
         assert compared > 10  # the trajectories, quantiles and metrics were all there
         for attribute in ("fingerprint", "members", "seed", "scenario"):
             assert str(a.attrs[attribute]) == str(b.attrs[attribute]), attribute
+
+
+# ------------------------------------------------------------ the project's documents
+
+
+@dataclasses.dataclass(frozen=True)
+class MarkdownTables:
+    """The tables of a Markdown document: heading name -> first header cell -> rows.
+
+    A heading's name is the first text in backticks in it (``[solver.check]``,
+    ``ensemble run SCENARIO``), or its whole text when it has none (``Functions``); a
+    row is the list of its cells, stripped."""
+
+    tables: dict[str, dict[str, list[list[str]]]]
+
+    def rows(self, heading: str, header: str) -> list[list[str]]:
+        return self.tables.get(heading, {}).get(header, [])
+
+    def names(self, heading: str, header: str) -> list[str]:
+        """The texts in backticks in the first cell of each row of a table."""
+        return [name for row in self.rows(heading, header) for name in ticked(row[0])]
+
+    def headings(self) -> set[str]:
+        return set(self.tables)
+
+
+def ticked(cell: str) -> list[str]:
+    """The texts in backticks in a cell of a Markdown table."""
+    return re.findall(r"`([^`]+)`", cell)
+
+
+def markdown_tables(text: str) -> MarkdownTables:
+    """The tables of a Markdown text, by heading and first header cell."""
+    tables: dict[str, dict[str, list[list[str]]]] = defaultdict(lambda: defaultdict(list))
+    heading, header = "", None
+    for line in text.splitlines():
+        if line.startswith("#"):
+            title = line.lstrip("#").strip()
+            heading = (ticked(title) or [title])[0]
+            header = None
+        elif line.startswith("|"):
+            cells = [cell.strip()    # an escaped \| is part of its cell
+                     for cell in re.split(r"(?<!\\)\|", line.strip().strip("|"))]
+            if header is None:
+                header = cells[0]
+            elif not set(line) <= set("|-: "):
+                tables[heading][header].append(cells)
+        else:
+            header = None
+    return MarkdownTables(tables)

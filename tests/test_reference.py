@@ -35,7 +35,7 @@ from ensemble.records import STATUS_FLAGS
 from ensemble.scenario.expressions import BUILTIN_NAMES, FUNCTIONS
 from ensemble.scenario.load import load_scenario
 from ensemble.scenario.reader import Reader
-from support import REPO
+from support import REPO, MarkdownTables, markdown_tables, ticked
 
 PACKAGE = Path(ensemble.scenario.__file__).parent
 REFERENCE = PACKAGE / "reference.md"
@@ -120,54 +120,9 @@ SCENARIOS = sorted((REPO / "scenarios").glob("*.toml"))
 # ------------------------------------------------------------------- the reference
 
 
-@dataclass(frozen=True)
-class Documented:
-    """The reference's tables: heading name -> first header cell -> rows of cells.
-
-    A heading's name is the first text in backticks in it (``[solver.check]``), or its
-    whole text when it has none (``Functions``)."""
-
-    tables: dict[str, dict[str, list[list[str]]]]
-
-    def rows(self, heading: str, header: str) -> list[list[str]]:
-        return self.tables.get(heading, {}).get(header, [])
-
-    def names(self, heading: str, header: str) -> list[str]:
-        """The names in backticks in the first cell of each row of a table."""
-        return [name for row in self.rows(heading, header) for name in ticked(row[0])]
-
-    def headings(self) -> set[str]:
-        return set(self.tables)
-
-
-def ticked(cell: str) -> list[str]:
-    """The texts in backticks in a cell."""
-    return re.findall(r"`([^`]+)`", cell)
-
-
-def parse_text(text: str) -> Documented:
-    """The tables of a reference text, by heading and header."""
-    tables: dict[str, dict[str, list[list[str]]]] = defaultdict(lambda: defaultdict(list))
-    heading, header = "", None
-    for line in text.splitlines():
-        if line.startswith("#"):
-            title = line.lstrip("#").strip()
-            heading = (ticked(title) or [title])[0]
-            header = None
-        elif line.startswith("|"):
-            cells = [cell.strip() for cell in line.strip().strip("|").split("|")]
-            if header is None:
-                header = cells[0]
-            elif not set(line) <= set("|-: "):
-                tables[heading][header].append(cells)
-        else:
-            header = None
-    return Documented(tables)
-
-
 @pytest.fixture(scope="module")
-def documented() -> Documented:
-    return parse_text(REFERENCE.read_text(encoding="utf-8"))
+def documented() -> MarkdownTables:
+    return markdown_tables(REFERENCE.read_text(encoding="utf-8"))
 
 
 # -------------------------------------------------------------- what the loader checks
@@ -402,6 +357,6 @@ def test_reference_parser_reads_a_key_table() -> None:
         |---|---|
         | `rk4` | 4 |
         """)
-    documented = parse_text(text)
+    documented = markdown_tables(text)
     assert documented.names("[solver]", "key") == ["step"]
     assert documented.rows("Methods", "method") == [["`rk4`", "4"]]
