@@ -71,8 +71,10 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
     Returns
     -------
     ChunkResult
-        The trajectories of the run at ``solver.step``; ``step_error`` (NaN when the check
-        is off or a value is non-finite), ``observed_order`` (NaN unless ``levels = 3``),
+        The trajectories of the run at ``solver.step``, in the model's reported rows
+        (compartments as the sum of their stages, flows per group); ``step_error``
+        (computed on every state; NaN when the check is off or a value is non-finite),
+        ``observed_order`` (NaN unless ``levels = 3``),
         and the status bits of every run ORed, with STEP_CHECK_FAILED where the step
         error is above 1 or not finite (members with an impossible start excepted).
     """
@@ -112,6 +114,7 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
                                    noise_floor(method, solver.newton))
     if check.enabled:
         mark_failed_checks(error, status)
-    return ChunkResult(members=np.asarray(design.member_index), state=result.state,
-                       flow_count=result.flow_count, step_error=error,
-                       observed_order=order, status=status)
+    return ChunkResult(members=np.asarray(design.member_index),
+                       state=model.reported_state(result.state),
+                       flow_count=model.reported_flow_count(result.flow_count),
+                       step_error=error, observed_order=order, status=status)

@@ -16,9 +16,10 @@ import numpy as np
 from ensemble.model.constants import ConstantTrees, lower_constants, time_varying_parameters
 from ensemble.model.derivatives import partial_derivatives
 from ensemble.model.ir import Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef
-from ensemble.model.lowering import (ExpressionLowering, Matrix, Value, Vector,
-                                     constant_matrix, fold_sum)
-from ensemble.scenario.schema import Derived, Parameter, Scenario, Schedule, Variant
+from ensemble.model.elements import StateLayout, model_elements
+from ensemble.model.lowering import (ExpressionLowering, Value, Vector, constant_matrix,
+                                     fold_sum)
+from ensemble.scenario.schema import Derived, Flow, Parameter, Scenario, Schedule, Variant
 
 
 @dataclass(frozen=True)
@@ -44,17 +45,29 @@ class ScheduleSlot:
 class LoweredModel:
     """One variant's model in the scalar form every integrator backend consumes.
 
+    The states are the stages of the compartments in every group and the flow elements
+    the moves between single states (:mod:`ensemble.model.elements`); without stages or
+    flows between groups, state ``c * n_groups + g`` is compartment c in group g and flow
+    element ``f * n_groups + g`` flow f in group g.  A result reports the rows
+    ``reported_states`` and ``reported_flows`` add up.
+
     Attributes
     ----------
-    compartments, groups : labels (``groups`` is None without strata).
+    compartments, groups : the reported compartment labels (``groups`` is None without
+        strata).
     n_groups : 1 without strata.
-    flows : flow names.
-    state_labels : one per state row, ``"S"`` or ``"S[child]"``; index c * n_groups + g.
-    rates : one scalar tree per flow element, index f * n_groups + g (persons per day).
+    flows : the reported flow names.
+    state_labels : one per state row, ``"S"``, ``"S[child]"`` or ``"E:2[child]"``.
+    state_compartments : the compartment of each state row.
+    rates : one scalar tree per flow element (persons per day).
     rate_derivatives : per flow element, the non-zero partial derivatives
         ``(state index, tree)`` of that rate with respect to the state, states ascending
         (:mod:`ensemble.model.derivatives`).
     stoichiometry : (n_states, n_flow_elements) float64 of -1, 0, +1.
+    reported_states : per reported state row (``c * n_groups + g``), the state rows whose
+        sum it is.
+    reported_flows : per reported flow row (``f * n_groups + g``), the flow elements whose
+        sum it is.
     parameter_slots : names of the rows of the per-member constant parameter array,
         ``"beta"`` or ``"susceptibility[child]"``.
     schedule_slots : the rows of time-varying values (:class:`ScheduleSlot`).
@@ -70,9 +83,12 @@ class LoweredModel:
     n_groups: int
     flows: tuple[str, ...]
     state_labels: tuple[str, ...]
+    state_compartments: tuple[str, ...]
     rates: tuple[ScalarNode, ...]
     rate_derivatives: tuple[tuple[tuple[int, ScalarNode], ...], ...]
     stoichiometry: np.ndarray
+    reported_states: tuple[tuple[int, ...], ...]
+    reported_flows: tuple[tuple[int, ...], ...]
     parameter_slots: tuple[str, ...]
     schedule_slots: tuple[ScheduleSlot, ...]
     population: np.ndarray
@@ -87,6 +103,47 @@ class LoweredModel:
     def n_flow_elements(self) -> int:
         return len(self.rates)
 
+    def reported_state(self, state: np.ndarray) -> np.ndarray:
+        """(M, reported state rows, times) from (M, n_states, times): each compartment
+        the sum of its stages, added in stage order (``state`` itself when every
+        reported row is one state, in order)."""
+        return _add_rows(state, self.reported_states)
+
+    def reported_flow_count(self, flow_count: np.ndarray) -> np.ndarray:
+        """(M, reported flow rows, times) from (M, n_flow_elements, times): each flow
+        per group the sum of its elements, added in element order; a row without
+        elements is 0 (NaN where the first element is NaN, as at the first time)."""
+        return _add_rows(flow_count, self.reported_flows)
+
+    def initial_states(self, counts: np.ndarray) -> np.ndarray:
+        """(n_states, M) initial state from (compartments x groups, M) counts: a
+        compartment's count is shared equally between its stages (the occupancy of a
+        chain of equal stages under a steady inflow; the dwell time already spent by the
+        persons present at the start is not known)."""
+        n_rows = len(self.population) * len(set(self.state_compartments))
+        if self.n_states == n_rows:
+            return counts
+        result = np.empty((self.n_states, counts.shape[1]))
+        for row, states in enumerate(self.reported_states[:n_rows]):
+            for state in states:
+                np.divide(counts[row], len(states), out=result[state])
+        return result
+
+
+def _add_rows(values: np.ndarray, rows: tuple[tuple[int, ...], ...]) -> np.ndarray:
+    """(M, len(rows), times): row r the sum of ``values[:, rows[r], :]`` in order."""
+    if len(rows) == values.shape[1] and all(r == (i,) for i, r in enumerate(rows)):
+        return values
+    result = np.empty((values.shape[0], len(rows), values.shape[2]))
+    for r, parts in enumerate(rows):
+        if not parts:
+            np.copyto(result[:, r], np.where(np.isnan(values[:, 0]), np.nan, 0.0))
+            continue
+        np.copyto(result[:, r], values[:, parts[0]])
+        for part in parts[1:]:
+            np.add(result[:, r], values[:, part], out=result[:, r])
+    return result
+
 
 def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
     """Lower ``scenario``'s model with ``variant``'s parameters and matrices.
@@ -98,45 +155,37 @@ def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
     constants whose zero entries are structural (:mod:`ensemble.model.lowering`).
     Constants are folded in float64 (:func:`ensemble.model.ir.apply`).
     """
-    lowering = _RateLowering(scenario, variant)
     model = scenario.model
-    n_groups = model.n_groups
-    rates: list[ScalarNode] = []
-    for flow in model.flows:
-        rates.extend(lowering.elements(lowering.lower(flow.rate.tree), flow.rate.key))
-    index = {name: i for i, name in enumerate(model.compartments)}
-    stoichiometry = np.zeros((len(model.compartments) * n_groups, len(rates)))
-    for f, flow in enumerate(model.flows):
-        for g in range(n_groups):
-            if flow.source is not None:
-                stoichiometry[index[flow.source] * n_groups + g, f * n_groups + g] -= 1.0
-            if flow.target is not None:
-                stoichiometry[index[flow.target] * n_groups + g, f * n_groups + g] += 1.0
+    layout = StateLayout.of(model)
+    lowering = _RateLowering(scenario, variant, layout)
+    parts = model_elements(model, layout, lowering.rate_of, scenario.output.show_stages)
+    rates = [element.rate for element in parts.elements]
+    stoichiometry = np.zeros((layout.n_states, len(rates)))
+    for k, element in enumerate(parts.elements):
+        if element.source is not None:
+            stoichiometry[element.source, k] -= 1.0
+        if element.target is not None:
+            stoichiometry[element.target, k] += 1.0
     return LoweredModel(
-        compartments=tuple(model.compartments),
-        groups=tuple(model.groups) if model.groups else None,
-        n_groups=n_groups,
-        flows=tuple(flow.name for flow in model.flows),
-        state_labels=tuple(_element_labels(model.compartments, model.groups)),
+        compartments=parts.compartments,
+        groups=layout.groups,
+        n_groups=layout.n_groups,
+        flows=parts.flows,
+        state_labels=layout.state_labels(),
+        state_compartments=layout.state_compartments(),
         rates=tuple(rates),
         rate_derivatives=tuple(partial_derivatives(rate) for rate in rates),
         stoichiometry=_read_only(stoichiometry),
+        reported_states=parts.state_rows,
+        reported_flows=parts.flow_rows,
         parameter_slots=lowering.parameter_slots,
         schedule_slots=lowering.schedule_slots,
         population=_read_only(np.asarray(model.population, dtype=np.float64)),
-        closed=all(flow.source is not None and flow.target is not None
-                   for flow in model.flows),
+        closed=all(e.source is not None and e.target is not None for e in parts.elements),
         constants=lower_constants(scenario, variant, lowering.slot_elements,
                                   [(slot.parameter, slot.element)
                                    for slot in lowering.schedule_slots]),
     )
-
-
-def _element_labels(names: tuple[str, ...], groups: tuple[str, ...] | None) -> list[str]:
-    """``name`` or ``name[group]`` for each element, name-major."""
-    if not groups:
-        return list(names)
-    return [f"{name}[{group}]" for name in names for group in groups]
 
 
 def _read_only(array: np.ndarray) -> np.ndarray:
@@ -149,15 +198,16 @@ class _RateLowering(ExpressionLowering):
     constant in time per-member slots, schedules schedule slots; derived parameters that
     vary in time (or are matrices) are substituted."""
 
-    def __init__(self, scenario: Scenario, variant: Variant):
+    def __init__(self, scenario: Scenario, variant: Variant, layout: StateLayout):
         model = scenario.model
         super().__init__(model.n_groups)
         self._groups = model.groups
         self._grouped = bool(model.groups)
-        self._compartments = {name: i for i, name in enumerate(model.compartments)}
-        in_n = [self._compartments[c] for c in model.compartments
-                if c not in model.exclude_from_N]
-        self._n_total = tuple(fold_sum([StateRef(c * self.n_groups + g) for c in in_n])
+        self._layout = layout
+        self._bound: dict[str, Value] = {}
+        in_n = [c for c in model.compartments if c not in model.exclude_from_N]
+        self._n_total = tuple(fold_sum([StateRef(s) for c in in_n
+                                        for s in layout.states_of(c, g)])
                               for g in range(self.n_groups))
         self._parameters = scenario.variant_parameters(variant)
         self._matrices = scenario.variant_matrices(variant)
@@ -213,13 +263,14 @@ class _RateLowering(ExpressionLowering):
                 pending.extend(self._parameters[name].form.expression.names)
         return used
 
-    def elements(self, value: Value, key: str) -> list[ScalarNode]:
-        """The per-group scalar trees of a rate (one tree without groups)."""
-        if self._grouped and isinstance(value, Vector):
-            return list(value.items)
-        if not self._grouped and not isinstance(value, (Vector, Matrix)):
-            return [value]
-        raise ValueError(f"{key}: a rate must be a {'vector' if self._grouped else 'scalar'}")
+    def rate_of(self, flow: Flow, source: Value | None) -> Value:
+        """The lowered rate of ``flow``, its source compartment standing for ``source``
+        (None: for the compartment's own count, its stages added)."""
+        self._bound = {} if source is None else {flow.source: source}  # type: ignore[dict-item]
+        try:
+            return self.lower(flow.rate.tree)
+        finally:
+            self._bound = {}
 
     def name(self, name: str) -> Value:
         if name == "t":
@@ -228,10 +279,10 @@ class _RateLowering(ExpressionLowering):
             return Const(float(np.pi))
         if name == "N":
             return self._grouped_value(self._n_total)
-        if name in self._compartments:
-            first = self._compartments[name] * self.n_groups
-            return self._grouped_value(tuple(StateRef(first + g)
-                                             for g in range(self.n_groups)))
+        if name in self._bound:
+            return self._bound[name]
+        if name in self._layout.compartments:
+            return self._layout.total_value(name)
         if name in self._matrices:
             return constant_matrix(self._matrices[name])
         if name not in self._values:

@@ -72,10 +72,10 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
         inputs = with_radii(trees, input_rows(scenario, variant, trees.inputs,
                                               member_index))
         values = _Evaluated(trees, inputs)
-        initial, invalid = initial_state(scenario, values.initial, member_index.size)
+        counts, invalid = initial_state(scenario, values.initial, member_index.size)
         return Design(member_index=member_index, parameters=values.slots,
-                      schedule_values=values.knots, initial=initial, invalid_start=invalid,
-                      reported=values.reported)
+                      schedule_values=values.knots, initial=model.initial_states(counts),
+                      invalid_start=invalid, reported=values.reported)
 
 
 def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element],

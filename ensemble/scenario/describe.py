@@ -82,6 +82,11 @@ def _model(scenario: Scenario) -> str:
                                       for name, value in model.initial.items())))
     if model.exclude_from_N:
         rows.append(("not in N", " ".join(model.exclude_from_N)))
+    if model.stages:
+        rows.append(("stages", ", ".join(f"{name} {count} (Erlang dwell time)"
+                                          for name, count in model.stages.items())))
+    if model.infected:
+        rows.append(("infected", " ".join(model.infected)))
     text = _section("model", rows)
     if model.matrices:
         text += "\n" + _INDENT + "matrices\n" + _matrices(model.matrices, model.groups)
@@ -117,6 +122,10 @@ def _flows(scenario: Scenario) -> str:
     rows = []
     for flow in scenario.model.flows:
         route = f"{flow.source or '(outside)'} -> {flow.target or '(outside)'}"
+        if flow.group is not None:
+            route += f" in group {flow.group}"
+        elif flow.rate.shape == "matrix":
+            route += " between groups"
         rows.append((flow.name, route, flow.rate.text))
     return _section("flows (persons per day)", rows)
 
@@ -217,6 +226,8 @@ def _output(scenario: Scenario) -> str:
          else "left out (summaries only)"),
         ("compression", str(output.compression)),
     ]
+    if output.show_stages:
+        rows.append(("show_stages", "every stage and transfer of a chain too"))
     if output.compare_to:
         rows.append(("compare_to", output.compare_to))
     return _section("output", rows)

@@ -205,6 +205,27 @@ def names_in(node: Node) -> frozenset[str]:
     return frozenset()
 
 
+def proportional_to(node: Node, name: str) -> bool:
+    """Whether ``node`` is ``name`` times or divided by factors that do not use ``name``:
+    ``name``, ``-e``, ``e * f`` or ``e / f`` with ``e`` proportional and ``f`` free of
+    ``name``, ``diag(e)`` and ``e @ f`` with ``e`` proportional (each element of the
+    value, each row of a matrix, is then the element's own count times a factor)."""
+    if isinstance(node, Name):
+        return node.id == name
+    if isinstance(node, Negate):
+        return proportional_to(node.operand, name)
+    if isinstance(node, Call):
+        return node.function == "diag" and proportional_to(node.args[0], name)
+    if not isinstance(node, Binary):
+        return False
+    if node.op == "*":
+        return ((proportional_to(node.left, name) and name not in names_in(node.right))
+                or (proportional_to(node.right, name) and name not in names_in(node.left)))
+    if node.op in ("/", "@"):
+        return proportional_to(node.left, name) and name not in names_in(node.right)
+    return False
+
+
 def functions_in(node: Node) -> frozenset[str]:
     """Every function ``node`` calls."""
     if isinstance(node, Negate):

@@ -143,7 +143,7 @@ class _ModelParts:
         initial = reader.attempt(read_initial, reader, model_table.get("initial", {}), scope,
                                  structure.population, resolved)
         flows = reader.attempt(read_flows, reader, model_table.get("flows", []), scope,
-                               resolved.parameters)
+                               resolved.parameters, structure.stages)
         variants = None
         if not reader.unusable:
             variants = reader.attempt(parameters.variants, data.get("variants", []), drafts,
@@ -161,7 +161,8 @@ class _ModelParts:
             population=structure.population,
             initial=MappingProxyType(self.initial),  # type: ignore[arg-type]
             exclude_from_N=structure.exclude_from_N, flows=self.flows,  # type: ignore[arg-type]
-            matrices=MappingProxyType(structure.matrices))
+            matrices=MappingProxyType(structure.matrices),
+            stages=MappingProxyType(structure.stages), infected=structure.infected)
 
 
 def scenario_warnings(scenario: Scenario) -> list[str]:

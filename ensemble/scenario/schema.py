@@ -9,9 +9,10 @@ Mappings are read-only (:class:`types.MappingProxyType`) and keep the file's ord
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date
 from fractions import Fraction
+from types import MappingProxyType
 from typing import Literal, Union
 
 from ensemble.distributions import ArgumentValue
@@ -69,13 +70,16 @@ class Flow:
     """Persons per day moved from ``source`` to ``target``.
 
     ``source`` is None for an inflow from outside (births), ``target`` None for an
-    outflow (deaths).  ``rate`` is the total over the group or population, not per capita.
+    outflow (deaths).  ``rate`` is the total over the group or population, not per capita:
+    a number without groups; with groups a vector (group g to group g), a matrix (entry
+    (g, h) from group g to group h), or a number for the one group ``group`` names.
     """
 
     name: str
     source: str | None
     target: str | None
     rate: Expression
+    group: str | None = None
 
 
 @dataclass(frozen=True)
@@ -84,6 +88,9 @@ class Model:
 
     ``population`` has one entry per group (a single entry without groups).
     ``initial`` lists every compartment in ``compartments`` order; an omitted one is 0.0.
+    ``stages`` gives the compartments split into a chain of stages (an Erlang dwell
+    time) their number of stages; ``infected`` names the infected compartments of the
+    next-generation matrix, or is None when they are to be inferred from the flows.
     """
 
     compartments: tuple[str, ...]
@@ -93,6 +100,8 @@ class Model:
     exclude_from_N: tuple[str, ...]
     flows: tuple[Flow, ...]
     matrices: Mapping[str, Matrix]
+    stages: Mapping[str, int] = field(default_factory=lambda: MappingProxyType({}))
+    infected: tuple[str, ...] | None = None
 
     @property
     def n_groups(self) -> int:
@@ -253,6 +262,7 @@ class Output:
     keep_members: bool = True
     compare_to: str | None = None
     compression: int = 4
+    show_stages: bool = False
 
 
 @dataclass(frozen=True)

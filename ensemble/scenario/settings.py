@@ -127,7 +127,7 @@ def read_output(reader: Reader, value: object, name: str,
     """The ``[output]`` table; ``compare_to`` is checked once the variants are known."""
     path = "output"
     table = reader.table(value, path, ("path", "quantiles", "keep_members", "compare_to",
-                                       "compression"))
+                                       "compression", "show_stages"))
     compare_to = None
     if "compare_to" in table and variant_names is not None:
         compare_to = reader.known(table["compare_to"], variant_names,
@@ -140,7 +140,8 @@ def read_output(reader: Reader, value: object, name: str,
         keep_members=reader.get(table, path, "keep_members", reader.boolean, True),
         compare_to=compare_to,
         compression=reader.get(table, path, "compression",
-                               lambda v, p: reader.integer(v, p, minimum=0, maximum=9), 4))
+                               lambda v, p: reader.integer(v, p, minimum=0, maximum=9), 4),
+        show_stages=reader.get(table, path, "show_stages", reader.boolean, False))
 
 
 def _path(reader: Reader, value: object, path: str) -> str:

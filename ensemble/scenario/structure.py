@@ -9,11 +9,15 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import Any
 
+from ensemble.scenario import expressions
 from ensemble.scenario.reader import Reader, is_number, key_path
-from ensemble.scenario.schema import Flow, Matrix, Parameter
+from ensemble.scenario.schema import Expression, Flow, Matrix, Parameter
 
 MODEL_KEYS = ("compartments", "groups", "population", "initial", "exclude_from_N", "flows",
-              "matrices")
+              "matrices", "stages", "infected")
+
+MAX_STAGES = 64
+"""Most stages a compartment may have (each is one more state per group)."""
 
 
 @dataclass(frozen=True)
@@ -25,6 +29,8 @@ class Structure:
     matrices: dict[str, Matrix]
     population: tuple[float, ...]
     exclude_from_N: tuple[str, ...]
+    stages: dict[str, int]
+    infected: tuple[str, ...] | None
 
 
 @dataclass(frozen=True)
@@ -84,7 +90,29 @@ def read_structure(reader: Reader, table: dict[str, Any]) -> Structure:
                             lambda v, p: _population(reader, v, p, groups))
     exclude = reader.get(table, path, "exclude_from_N",
                          lambda v, p: _exclude(reader, v, p, compartments), ())
-    return Structure(compartments, groups, matrices, population, exclude)
+    stages = reader.get(table, path, "stages",
+                        lambda v, p: _stages(reader, v, p, compartments), {})
+    infected = reader.get(table, path, "infected",
+                          lambda v, p: _infected(reader, v, p, compartments), None)
+    return Structure(compartments, groups, matrices, population, exclude, stages, infected)
+
+
+def _stages(reader: Reader, value: object, path: str, compartments: list[str]
+            ) -> dict[str, int]:
+    """``stages = { E = 3 }``: compartments and their numbers of stages (>= 1)."""
+    table = reader.table(value, path, compartments, "compartment")
+    return {name: reader.integer(count, key_path(path, name), minimum=1, maximum=MAX_STAGES)
+            for name, count in table.items()}
+
+
+def _infected(reader: Reader, value: object, path: str, compartments: list[str]
+              ) -> tuple[str, ...]:
+    if not isinstance(value, list) or not value:
+        raise reader.error(path, value, "must be a non-empty list of compartment names")
+    names = [reader.known(v, compartments, f"{path}[{i}]", "compartment")
+             for i, v in enumerate(value)]
+    reader.unique(names, path, "compartment")
+    return tuple(names)
 
 
 def _compartments(reader: Reader, value: object, path: str) -> list[str]:
@@ -162,9 +190,11 @@ def read_matrix(reader: Reader, value: object, path: str, size: int) -> Matrix:
 
 
 def read_flows(reader: Reader, value: object, scope: Scope,
-               parameters: Mapping[str, Parameter]) -> tuple[Flow, ...]:
+               parameters: Mapping[str, Parameter],
+               stages: Mapping[str, int] | None = None) -> tuple[Flow, ...]:
     """``[[model.flows]]``, their rates checked against the compartments, N and the
-    (checked) ``parameters``."""
+    (checked) ``parameters``; a flow that leaves a compartment with ``stages`` must have
+    a rate proportional to that compartment's count."""
     if not isinstance(value, list) or not value:
         raise reader.error("model.flows", value, "must list at least one flow "
                            "([[model.flows]] tables)")
@@ -172,7 +202,8 @@ def read_flows(reader: Reader, value: object, scope: Scope,
     shapes = scope.rate_shapes(parameters)
     flows = []
     for i, table in enumerate(value):
-        flow = reader.attempt(_flow, reader, table, f"model.flows[{i}]", scope, shapes)
+        flow = reader.attempt(_flow, reader, table, f"model.flows[{i}]", scope, shapes,
+                              stages or {})
         if flow is not None:
             flows.append(flow)
     reader.abandon_if_failed(mark)
@@ -188,16 +219,15 @@ def read_flows(reader: Reader, value: object, scope: Scope,
 
 
 def _flow(reader: Reader, value: object, path: str, scope: Scope,
-          shapes: Mapping[str, str]) -> Flow:
-    table = reader.table(value, path, ("name", "from", "to", "rate"))
+          shapes: Mapping[str, str], stages: Mapping[str, int]) -> Flow:
+    table = reader.table(value, path, ("name", "from", "to", "rate", "group"))
     compartment = lambda v, p: reader.known(v, scope.compartments, p, "compartment")  # noqa: E731
     source = reader.get(table, path, "from", compartment, None)
     target = reader.get(table, path, "to", compartment, None)
     if source is None and target is None:
         raise reader.error(path, None, "a flow needs 'from', 'to' or both")
-    if source == target:
-        raise reader.error(key_path(path, "to"), target, "a flow cannot go from a "
-                           "compartment to itself")
+    group = reader.get(table, path, "group", lambda v, p: _flow_group(reader, v, p, scope),
+                       None)
     default = (f"{source}_to_{target}" if source and target
                else f"in_to_{target}" if target else f"{source}_out")
     name = reader.get(table, path, "name", reader.label, default)
@@ -207,9 +237,43 @@ def _flow(reader: Reader, value: object, path: str, scope: Scope,
         raw = repr(reader.number(raw, rate_path))
     rate = reader.check(reader.parse(raw, rate_path), shapes)
     reader.refuse_per_step(rate, "a rate")
-    wanted = "vector" if scope.groups is not None else "scalar"
-    if rate.shape != wanted:
-        reason = ("with groups every rate must be a vector over groups"
-                  if scope.groups is not None else "without groups a rate must be a number")
-        raise reader.error(rate_path, rate.text, f"{reason}, but this is a {rate.shape}")
-    return Flow(name, source, target, rate)
+    _check_rate_shape(reader, rate, scope, group, source, target, rate_path)
+    if source == target and rate.shape != "matrix":
+        raise reader.error(key_path(path, "to"), target, "a flow cannot go from a "
+                           "compartment to itself (but between groups, with a matrix rate)")
+    if source in stages and not expressions.proportional_to(rate.tree, source):
+        raise reader.error(rate_path, rate.text, f"{source!r} has stages, so a flow out of "
+                           f"it needs a rate proportional to {source}: {source} times or "
+                           f"divided by terms without {source}",
+                           f"write the rate as {source} * (per-capita rate), such as "
+                           f"\"{source} / mean_days\"")
+    return Flow(name, source, target, rate, group)
+
+
+def _flow_group(reader: Reader, value: object, path: str, scope: Scope) -> str:
+    if scope.groups is None:
+        raise reader.error(path, value, "a flow's group needs model.groups")
+    return reader.known(value, scope.groups, path, "group")
+
+
+def _check_rate_shape(reader: Reader, rate: Expression, scope: Scope, group: str | None,
+                      source: str | None, target: str | None, path: str) -> None:
+    """A number without groups; with groups a vector (within each group), a matrix
+    (between groups, with both ends), or a number for a flow in one ``group``."""
+    if scope.groups is None:
+        if rate.shape != "scalar":
+            raise reader.error(path, rate.text, "without groups a rate must be a number, "
+                                                f"but this is a {rate.shape}")
+        return
+    if group is not None:
+        if rate.shape != "scalar":
+            raise reader.error(path, rate.text, f"a flow in group {group!r} alone has a "
+                                                f"number for its rate, not a {rate.shape}")
+        return
+    if rate.shape == "scalar":
+        raise reader.error(path, rate.text, "with groups a rate must be a vector over groups "
+                           "(or a matrix between groups), but this is a number",
+                           "give the flow a 'group' to make it act in one group alone")
+    if rate.shape == "matrix" and (source is None or target is None):
+        raise reader.error(path, rate.text, "a rate between groups (a matrix) needs both "
+                                            "'from' and 'to'")
