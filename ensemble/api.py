@@ -17,15 +17,27 @@ from typing import TYPE_CHECKING
 from ensemble.scenario.load import load_scenario, scenario_warnings
 from ensemble.scenario.schema import Scenario
 
-__all__ = ["load_scenario", "scenario_warnings", "run", "simulate", "open_result",
-           "summarize", "status_counts", "merge", "array_script", "cluster_profile",
-           "default_part_path", "history_line"]
+__all__ = ["load_scenario", "scenario_warnings", "check_report", "run", "simulate",
+           "open_result", "summarize", "status_counts", "merge", "array_script",
+           "cluster_profile", "default_part_path", "history_line"]
 
 if TYPE_CHECKING:
     import xarray as xr
 
     from ensemble.run.clusters import ClusterProfile
     from ensemble.run.shards import Shard
+
+
+def check_report(scenario: Scenario) -> str:
+    """The text ``ensemble check`` prints: what the scenario sets, its basic
+    reproduction number R0 by the next-generation matrix (at the parameters' medians and
+    over the first members of each variant), and its warnings."""
+    from ensemble.sampling.reproduction import reproduction_overview
+    from ensemble.scenario.describe import describe, reproduction_section
+
+    infected, rows = reproduction_overview(scenario)
+    section = reproduction_section(infected.compartments, infected.note, rows)
+    return describe(scenario, scenario_warnings(scenario), [section])
 
 
 def history_line(command: str) -> str:

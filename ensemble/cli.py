@@ -205,13 +205,13 @@ def _reported(work: Path | None = None) -> Iterator[None]:
 
 @app.command()
 def check(scenario: ScenarioFile) -> None:
-    """Validate SCENARIO and print its model, parameters, variants, solver and warnings."""
+    """Validate SCENARIO and print its model, parameters, variants, solver, its R0 and
+    warnings."""
     from ensemble import api
-    from ensemble.scenario.describe import describe
 
     with _reported():
         loaded = api.load_scenario(scenario)
-    typer.echo(describe(loaded, api.scenario_warnings(loaded)), nl=False)
+    typer.echo(api.check_report(loaded), nl=False)
 
 
 @app.command()

@@ -12,7 +12,7 @@ member gets the same bits whichever members are asked for with it.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -67,10 +67,26 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
     member_index : member indices in [0, scenario.member_count), e.g. ``np.arange(a, b)``.
     """
     member_index = np.asarray(member_index, dtype=np.int64).reshape(-1)
+    return _design(scenario, variant, model, member_index,
+                   lambda drawn: uniform_draws(scenario, drawn, member_index))
+
+
+def median_design(scenario: Scenario, variant: Variant, model: LoweredModel) -> Design:
+    """One member (index 0) whose drawn values are their distributions' medians (every
+    uniform draw 1/2), for ``ensemble check``."""
+    return _design(scenario, variant, model, np.zeros(1, dtype=np.int64),
+                   lambda drawn: {key: np.full(1, 0.5) for key in drawn})
+
+
+def _design(scenario: Scenario, variant: Variant, model: LoweredModel,
+            member_index: np.ndarray, uniforms: Callable[[list[Element]], Mapping]
+            ) -> Design:
+    """The design of ``member_index`` with the uniform draws ``uniforms`` gives for the
+    drawn elements."""
     trees = model.constants
     with np.errstate(all="ignore"):
         inputs = with_radii(trees, input_rows(scenario, variant, trees.inputs,
-                                              member_index))
+                                              member_index.size, uniforms))
         values = _Evaluated(trees, inputs)
         counts, invalid = initial_state(scenario, values.initial, member_index.size)
         return Design(member_index=member_index, parameters=values.slots,
@@ -79,15 +95,16 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
 
 
 def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element],
-               member_index: np.ndarray) -> np.ndarray:
-    """(n_inputs, M): each given or drawn parameter element's value per member."""
+               n_members: int, uniforms: Callable[[list[Element]], Mapping]) -> np.ndarray:
+    """(n_inputs, M): each given or drawn parameter element's value per member, the
+    drawn ones from the uniform draws ``uniforms`` gives for them."""
     parameters = scenario.variant_parameters(variant)
     drawn = [(name, g) for name, g in elements
              if element_distribution(parameters[name].form, g) is not None]
-    uniforms = uniform_draws(scenario, drawn, member_index)
-    rows = np.empty((len(elements), member_index.size))
+    draws = uniforms(drawn)
+    rows = np.empty((len(elements), n_members))
     for row, (name, g) in enumerate(elements):
-        rows[row] = _input_value(parameters[name], g, uniforms)
+        rows[row] = _input_value(parameters[name], g, draws)
     return rows
 
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 
 from ensemble.methods import METHODS
 from ensemble.scenario.reader import time_text
@@ -14,8 +14,10 @@ from ensemble.scenario.schema import (
 _INDENT = "  "
 
 
-def describe(scenario: Scenario, warnings: Iterable[str] = ()) -> str:
-    """Everything ``scenario`` sets, one section per table, then ``warnings``."""
+def describe(scenario: Scenario, warnings: Iterable[str] = (),
+             findings: Iterable[str] = ()) -> str:
+    """Everything ``scenario`` sets, one section per table, then ``findings`` (sections
+    computed from it, such as :func:`reproduction_section`) and ``warnings``."""
     sections = [
         _heading(scenario),
         _model(scenario),
@@ -26,6 +28,7 @@ def describe(scenario: Scenario, warnings: Iterable[str] = ()) -> str:
         _solver(scenario),
         _output(scenario),
         _compute(scenario),
+        *findings,
     ]
     warnings = list(warnings)
     if warnings:
@@ -239,3 +242,25 @@ def _compute(scenario: Scenario) -> str:
                                                               "address")
             if getattr(compute, name) is not None]
     return _section("compute", rows)
+
+
+def reproduction_section(infected: tuple[str, ...] | None, note: str,
+                         rows: Iterable[tuple[str, float, Sequence[float]]]) -> str:
+    """The basic reproduction number R0 by the next-generation matrix: the infected
+    compartments and how they were found, then per variant R0 at the parameters'
+    medians and its range over the first members (``rows`` of (variant, median, values))."""
+    if infected is None:
+        return f"basic reproduction number R0\n{_INDENT}not computed: {note}"
+    lines = [f"{_INDENT}infected compartments {' '.join(infected)} ({note})"]
+    table = []
+    for name, median, values in rows:
+        finite = [v for v in values if v == v]
+        spread = (f"{_short(min(finite))} to {_short(max(finite))} over members 0-"
+                  f"{len(values) - 1}" if finite else "not finite for the first members")
+        table.append((name, f"{_short(median)} at the parameters' medians", spread))
+    return "basic reproduction number R0 (next-generation matrix, at the start)\n" + \
+        "\n".join(lines) + "\n" + _table(table)
+
+
+def _short(value: float) -> str:
+    return f"{value:.4g}" if value == value else "NaN"
