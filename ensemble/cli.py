@@ -61,6 +61,10 @@ MemberCount = Annotated[Optional[int], typer.Option(
     "--members", min=1, help="Members per variant, instead of the file's.")]
 Seed = Annotated[Optional[int], typer.Option(
     "--seed", min=0, help="Seed, instead of the file's.")]
+Settings = Annotated[Optional[list[str]], typer.Option(
+    "--set", metavar="KEY=VALUE",
+    help="Set a key of the scenario file, as editing the file would (repeatable), e.g. "
+         "--set scenario.days=240 --set parameters.R0.high=3.5.")]
 ChunkSize = Annotated[Optional[int], typer.Option(
     "--chunk", min=1, help="Members per task (changes no number of the result).")]
 BackendChoice = Annotated[Optional[Backend], typer.Option(
@@ -74,6 +78,7 @@ def run(
     output: OutputFile = None,
     member_count: MemberCount = None,
     seed: Seed = None,
+    settings: Settings = None,
     chunk: ChunkSize = None,
     workers: Annotated[Optional[int], typer.Option(
         "--workers", min=0,
@@ -111,7 +116,8 @@ def run(
 
     began = time.monotonic()
     _stop_on_signals()
-    loaded, profile = _loaded_for_run(scenario, member_count, seed, cluster, address)
+    loaded, profile = _loaded_for_run(scenario, member_count, seed, settings or [],
+                                      cluster, address)
     if shard is not None and output is None:
         output = api.default_part_path(loaded, shard)
     for warning in api.scenario_warnings(loaded):
@@ -145,14 +151,15 @@ def _history() -> str:
 
 
 def _loaded_for_run(scenario: Path, member_count: int | None, seed: int | None,
-                    cluster: str | None, address: str | None):
+                    settings: list[str], cluster: str | None, address: str | None):
     """The scenario (with the overrides) and the cluster profile of ``ensemble run``
     (exit 2 when either is invalid, or when both a profile and an address are given)."""
     from ensemble import api
     from ensemble.errors import UsageError
 
     with _reported():
-        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed,
+                                   settings=settings)
         profile = api.cluster_profile(cluster if cluster is not None
                                       else loaded.compute.cluster)
         if profile is not None and address is not None:
@@ -204,13 +211,13 @@ def _reported(work: Path | None = None) -> Iterator[None]:
 
 
 @app.command()
-def check(scenario: ScenarioFile) -> None:
+def check(scenario: ScenarioFile, settings: Settings = None) -> None:
     """Validate SCENARIO and print its model, parameters, variants, solver, its R0 and
     warnings."""
     from ensemble import api
 
     with _reported():
-        loaded = api.load_scenario(scenario)
+        loaded = api.load_scenario(scenario, settings=settings or [])
     typer.echo(api.check_report(loaded), nl=False)
 
 
@@ -249,6 +256,7 @@ def array_script(
     output: OutputFile = None,
     member_count: MemberCount = None,
     seed: Seed = None,
+    settings: Settings = None,
     chunk: ChunkSize = None,
     backend: BackendChoice = None,
 ) -> None:
@@ -260,8 +268,10 @@ def array_script(
                "--backend": backend.value if backend else None}
     run_options = [str(item) for option, value in carried.items() if value is not None
                    for item in (option, value)]
+    run_options += [item for setting in settings or [] for item in ("--set", setting)]
     with _reported():
-        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed)
+        loaded = api.load_scenario(scenario, member_count=member_count, seed=seed,
+                                   settings=settings or [])
         text = api.array_script(loaded, cluster, shards, output=output,
                                 run_options=run_options)
     typer.echo(text, nl=False)

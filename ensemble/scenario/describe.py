@@ -69,6 +69,9 @@ def _heading(scenario: Scenario) -> str:
     lines.append(f"{_INDENT}{start}{time_text(scenario.days)} days, {scenario.member_count} "
                  f"member(s) per variant, seed {scenario.seed}")
     lines.append(f"{_INDENT}file {scenario.source.path}")
+    if scenario.source.overrides:
+        lines.append(f"{_INDENT}set on the command line: "
+                     + ", ".join(scenario.source.overrides))
     return "\n".join(lines)
 
 

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import dataclasses
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from decimal import Decimal
 from pathlib import Path
@@ -30,6 +30,7 @@ from typing import Any
 
 from ensemble.errors import ScenarioError
 from ensemble.scenario.initial import read_initial
+from ensemble.scenario.overrides import apply_overrides
 from ensemble.scenario.parameters import ParameterReader, Resolved
 from ensemble.scenario.reader import MISSING, Reader, time_text
 from ensemble.scenario.schema import (Expression, Flow, InitialValue, Model, Parameter, Rest,
@@ -44,13 +45,16 @@ _TOP_LEVEL = ("scenario", "model", "parameters", "sampling", "variants", "solver
 
 
 def load_scenario(path: str | Path, *, member_count: int | None = None,
-                  seed: int | None = None) -> Scenario:
+                  seed: int | None = None, settings: Sequence[str] = ()) -> Scenario:
     """Read, check and complete the scenario file at ``path``.
 
     Parameters
     ----------
     path : the scenario file (TOML).
     member_count, seed : command-line overrides of ``[scenario] members`` and ``seed``.
+    settings : ``KEY=VALUE`` overrides of any key of the file (``--set``), applied in
+        order before the file is checked (:mod:`ensemble.scenario.overrides`); kept in
+        ``Scenario.source.overrides``.
 
     Returns
     -------
@@ -70,7 +74,11 @@ def load_scenario(path: str | Path, *, member_count: int | None = None,
         data = tomllib.loads(text, parse_float=Decimal)
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioError(file, "", None, f"TOML syntax error: {exc}") from None
+    apply_overrides(data, settings, file)
     scenario = validate(data, file, text)
+    if settings:
+        scenario = dataclasses.replace(scenario, source=dataclasses.replace(
+            scenario.source, overrides=tuple(settings)))
     overrides: dict[str, int] = {}
     if member_count is not None:
         overrides["member_count"] = _override(file, "members", member_count, minimum=1)

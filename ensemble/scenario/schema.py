@@ -277,10 +277,12 @@ class Compute:
 
 @dataclass(frozen=True)
 class Source:
-    """The scenario file as read: its path (as given) and full text."""
+    """The scenario file as read: its path (as given), full text, and the ``KEY=VALUE``
+    settings given on the command line that changed it (``--set``)."""
 
     path: str
     text: str
+    overrides: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
