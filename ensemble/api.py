@@ -32,12 +32,28 @@ def check_report(scenario: Scenario) -> str:
     """The text ``ensemble check`` prints: what the scenario sets, its basic
     reproduction number R0 by the next-generation matrix (at the parameters' medians and
     over the first members of each variant), and its warnings."""
-    from ensemble.sampling.reproduction import reproduction_overview
+    import numpy as np
+
+    from ensemble.model import lower_model
+    from ensemble.model.reproduction import infected_compartments
+    from ensemble.sampling.design import make_design, median_design
     from ensemble.scenario.describe import describe, reproduction_section
 
-    infected, rows = reproduction_overview(scenario)
+    first_members = np.arange(min(scenario.member_count, QUICK_DRAW))
+    rows = []
+    for variant in scenario.variants:
+        model = lower_model(scenario, variant)
+        median = median_design(scenario, variant, model).basic_reproduction_number[0]
+        drawn = make_design(scenario, variant, model, first_members)
+        rows.append((variant.name, float(median), drawn.basic_reproduction_number))
+    infected = infected_compartments(scenario.model)
     section = reproduction_section(infected.compartments, infected.note, rows)
     return describe(scenario, scenario_warnings(scenario), [section])
+
+
+QUICK_DRAW = 200
+"""Members of each variant (the first ones) over which ``ensemble check`` gives R0's
+range."""
 
 
 def history_line(command: str) -> str:

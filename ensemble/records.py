@@ -42,6 +42,8 @@ class ChunkResult:
     flow_count : (M, n_flow_elements, n_reports) persons moved over the interval ending at
         each reported time; NaN at the first.
     step_error, observed_order : (M,) float64 (NaN where not computed).
+    basic_reproduction_number : (M,) float64 R0 by the next-generation matrix (NaN where
+        undefined).
     status : (M,) uint8 bit flags.
     """
 
@@ -50,4 +52,5 @@ class ChunkResult:
     flow_count: np.ndarray
     step_error: np.ndarray
     observed_order: np.ndarray
+    basic_reproduction_number: np.ndarray
     status: np.ndarray

@@ -61,7 +61,9 @@ def _phase(phase: str, path: Path, members: int, keep_members: bool) -> None:
                 members=np.arange(first, end),
                 state=rng.random((size, layout.n_states, layout.n_reports)) * 1000,
                 flow_count=flow, step_error=np.zeros(size),
-                observed_order=np.full(size, np.nan), status=np.zeros(size, np.uint8))
+                observed_order=np.full(size, np.nan),
+                basic_reproduction_number=rng.random(size) + 1.0,
+                status=np.zeros(size, np.uint8))
             journal.save((0, first, end), result,
                        {name: rng.random(size) for name in layout.parameters})
     else:

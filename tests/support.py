@@ -341,6 +341,7 @@ def subset(design: Design, members: np.ndarray) -> Design:
         initial=design.initial[:, members],
         invalid_start=design.invalid_start[members],
         reported={k: v[..., members] for k, v in design.reported.items()},
+        basic_reproduction_number=design.basic_reproduction_number[members],
     )
 
 
@@ -445,7 +446,7 @@ def made_up_members(layout: ResultLayout, variant: int, first: int, end: int
     status[members == 3] = STEP_CHECK_FAILED
     result = ChunkResult(members=members.astype(np.int64), state=state, flow_count=flow,
                          step_error=members / 10.0, observed_order=np.full(members.size, 2.0),
-                         status=status)
+                         basic_reproduction_number=1.5 + members / 100.0, status=status)
     reported = {}
     for name, info in layout.parameters.items():
         base = 0.5 * members + variant

@@ -14,7 +14,6 @@ from ensemble import api
 from ensemble.model import lower_model
 from ensemble.model.reproduction import infected_compartments
 from ensemble.sampling import make_design
-from ensemble.sampling.reproduction import reproduction_numbers
 from support import load_text
 
 MEMBERS = 6
@@ -24,7 +23,7 @@ def members_r0(scenario, variant: int = 0):
     chosen = scenario.variants[variant]
     model = lower_model(scenario, chosen)
     design = make_design(scenario, chosen, model, np.arange(scenario.member_count))
-    return reproduction_numbers(scenario, model, design), design.reported
+    return design.basic_reproduction_number, design.reported
 
 
 def seir_text(extra_flows: str = "", parameters: str = "", model: str = "",
@@ -241,3 +240,23 @@ def test_check_reports_r0_at_the_medians(tmp_path) -> None:
     report = api.check_report(load_text(tmp_path, seir_text()))
     assert "infected compartments E I" in report
     assert "1.94 at the parameters' medians" in report
+
+
+def test_the_result_holds_each_members_r0_and_its_quantiles(tmp_path) -> None:
+    """basic_reproduction_number is beta / gamma times the susceptible share (Hethcote
+    2000) member by member, and its quantiles are numpy.quantile's (linear, Hyndman &
+    Fan 1996 definition 7) over the members; ensemble summary prints them."""
+    scenario = load_text(tmp_path, seir_text())
+    dataset = api.simulate(scenario, backend="numpy")
+    values = dataset["basic_reproduction_number"].isel(variant=0).values
+    beta = dataset["param_beta"].isel(variant=0).values
+    gamma = dataset["param_gamma"].isel(variant=0).values
+    np.testing.assert_allclose(values, beta / gamma * 0.97, rtol=1e-13)
+    expected = np.quantile(values, dataset["quantile"].values)
+    np.testing.assert_allclose(
+        dataset["basic_reproduction_number_quantile"].isel(variant=0).values, expected,
+        rtol=1e-14)
+    from ensemble.present.summary import summary_text
+
+    row = next(line for line in summary_text(dataset).splitlines() if "R0" in line)
+    assert f"{np.quantile(values, 0.5):.3g}" in row

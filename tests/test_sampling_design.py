@@ -151,6 +151,8 @@ def assert_same_design(whole: Design, parts: list[Design]):
     assert whole.reported.keys() == parts[0].reported.keys()
     for name, values in whole.reported.items():
         assert np.array_equal(values, joined(lambda d: d.reported[name]))
+    assert np.array_equal(whole.basic_reproduction_number,
+                          joined(lambda d: d.basic_reproduction_number), equal_nan=True)
 
 
 @pytest.mark.parametrize("method", METHODS)
@@ -168,7 +170,8 @@ def test_design_does_not_depend_on_chunking(tmp_path, method, template):
             Design(picked, whole.parameters[:, picked],
                    tuple(s[:, picked] for s in whole.schedule_values),
                    whole.initial[:, picked], whole.invalid_start[picked],
-                   {n: v[..., picked] for n, v in whole.reported.items()}),
+                   {n: v[..., picked] for n, v in whole.reported.items()},
+                   whole.basic_reproduction_number[picked]),
             [design(sc, v, picked)])
 
 

@@ -117,4 +117,6 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
     return ChunkResult(members=np.asarray(design.member_index),
                        state=model.reported_state(result.state),
                        flow_count=model.reported_flow_count(result.flow_count),
-                       step_error=error, observed_order=order, status=status)
+                       step_error=error, observed_order=order,
+                       basic_reproduction_number=design.basic_reproduction_number,
+                       status=status)

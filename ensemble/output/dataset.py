@@ -33,7 +33,8 @@ import xarray as xr
 
 from ensemble.about import CAUTION
 from ensemble.output.layout import ResultLayout
-from ensemble.output.variables import METRIC_NAMES, TRAJECTORY_NAMES, metric, trajectory
+from ensemble.output.variables import (MEMBER_VALUE_NAMES, MEMBER_VALUES, METRIC_NAMES,
+                                       TRAJECTORY_NAMES, member_value, metric, trajectory)
 from ensemble.records import STATUS_FLAGS
 
 LABELLED_DIMS = ("variant", "compartment", "flow", "group")
@@ -132,14 +133,16 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
         return VariableSpec(("variant",), np.int32, {
             "long_name": "number of members behind the quantiles (members without the "
                          "non-finite or impossible-start status bits)", "units": "1"})
-    if name == "step_error":
-        return VariableSpec(("variant", "member"), np.float64, {
-            "long_name": "estimated error of the stored trajectory relative to the "
-                         "tolerance (the member passes when at most 1)", "units": "1"})
-    if name == "observed_order":
-        return VariableSpec(("variant", "member"), np.float64, {
-            "long_name": "observed order of convergence of the integration method",
-            "units": "1"})
+    if name in MEMBER_VALUE_NAMES:
+        value = member_value(name)
+        return VariableSpec(("variant", "member"), np.float64,
+                            {"long_name": value.long_name, "units": value.units})
+    if name.endswith("_quantile") and base in MEMBER_VALUE_NAMES \
+            and member_value(base).summarised:
+        value = member_value(base)
+        return VariableSpec(("variant", "quantile"), np.float64, {
+            "long_name": f"quantile over members of the {value.long_name}",
+            "units": value.units})
     if name == "status":
         masks, meanings = zip(*STATUS_FLAGS)
         return VariableSpec(("variant", "member"), np.uint8, {
@@ -166,7 +169,11 @@ def result_variables(layout: ResultLayout) -> tuple[str, ...]:
              *METRIC_NAMES, *(f"{m}_quantile" for m in METRIC_NAMES)]
     if layout.scenario.output.compare_to:
         names.extend(f"difference_quantile_{m}" for m in METRIC_NAMES)
-    names.extend(["members_in_summary", "step_error", "observed_order", "status"])
+    names.append("members_in_summary")
+    for value in MEMBER_VALUES:
+        names.extend([value.name, f"{value.name}_quantile"] if value.summarised
+                     else [value.name])
+    names.append("status")
     return tuple(names)
 
 

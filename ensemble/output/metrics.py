@@ -15,7 +15,7 @@ import numba
 import numpy as np
 
 from ensemble.output.quantiles import in_summary, member_quantiles
-from ensemble.output.variables import METRIC_NAMES, TRAJECTORIES
+from ensemble.output.variables import MEMBER_VALUES, METRIC_NAMES, TRAJECTORIES
 
 
 @numba.njit(cache=True, nogil=True)
@@ -106,14 +106,15 @@ def member_metrics(trajectories: Mapping[str, np.ndarray],
 def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
                       probabilities: Sequence[float],
                       compare_to: int | None = None) -> dict[str, np.ndarray]:
-    """``members_in_summary``, ``<metric>_quantile`` and (with ``compare_to``)
+    """``members_in_summary``, ``<metric>_quantile``, ``<value>_quantile`` of each
+    summarised per-member value and (with ``compare_to``)
     ``difference_quantile_<metric>`` (the project's reference,
     ``ensemble/scenario/reference.md``, result file).
 
     Parameters
     ----------
     per_member : each metric name (:data:`.variables.METRIC_NAMES`) -> (variant, member,
-        rows) values.
+        rows) values, and each summarised per-member value -> (variant, member).
     status : (variant, member) status bits.
     probabilities : the quantiles' probabilities.
     compare_to : index of the variant to subtract member by member; a member counts in
@@ -121,12 +122,18 @@ def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
 
     Returns
     -------
-    name -> (variant,) int32 counts, or (variant, quantile, rows) quantiles.
+    name -> (variant,) int32 counts, (variant, quantile) or (variant, quantile, rows)
+    quantiles.
     """
     included = in_summary(status)
     result: dict[str, np.ndarray] = {
         "members_in_summary": included.sum(axis=1).astype(np.int32)}
     n_variants = included.shape[0]
+    for value in MEMBER_VALUES:
+        if value.summarised:
+            result[f"{value.name}_quantile"] = np.stack(
+                [member_quantiles(per_member[value.name][v], probabilities, included[v])
+                 for v in range(n_variants)])
     for name in METRIC_NAMES:
         values = per_member[name]
         result[f"{name}_quantile"] = np.stack(

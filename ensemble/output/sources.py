@@ -21,7 +21,7 @@ import numpy as np
 from ensemble.output.layout import ResultLayout
 from ensemble.output.metrics import member_metrics
 from ensemble.output.selection import Candidates
-from ensemble.output.variables import TRAJECTORIES
+from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
 from ensemble.records import ChunkKey, ChunkResult
 
 
@@ -80,7 +80,7 @@ def check_chunk(layout: ResultLayout, key: ChunkKey, result: ChunkResult) -> int
         raise ValueError(f"chunk {key} holds members {result.members[:3]}...")
     expected = {variable.source: (count, layout.row_count(variable), layout.n_reports)
                 for variable in TRAJECTORIES if variable.derive is None}
-    expected.update(step_error=(count,), observed_order=(count,), status=(count,))
+    expected.update({value.name: (count,) for value in MEMBER_VALUES}, status=(count,))
     for name, shape in expected.items():
         if getattr(result, name).shape != shape:
             raise ValueError(f"chunk {key}: {name} has shape "
@@ -91,9 +91,10 @@ def check_chunk(layout: ResultLayout, key: ChunkKey, result: ChunkResult) -> int
 def chunk_member_arrays(layout: ResultLayout, key: ChunkKey, result: ChunkResult,
                         reported: Mapping[str, np.ndarray],
                         trajectories: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """The per-member arrays of a chunk: ``step_error``, ``observed_order``, ``status``,
-    ``param_<name>`` of every reported parameter ((members,) or (members, groups)) and
-    the metrics of its ``trajectories`` (name -> (members, rows, n_reports)).
+    """The per-member arrays of a chunk: each of :data:`.variables.MEMBER_VALUES`,
+    ``status``, ``param_<name>`` of every reported parameter ((members,) or (members,
+    groups)) and the metrics of its ``trajectories`` (name -> (members, rows,
+    n_reports)).
 
     Raises
     ------
@@ -101,8 +102,8 @@ def chunk_member_arrays(layout: ResultLayout, key: ChunkKey, result: ChunkResult
         shape (``Design.reported``: (members,) or (groups, members)).
     """
     count = key[2] - key[1]
-    arrays = {"step_error": result.step_error, "observed_order": result.observed_order,
-              "status": result.status.astype(np.uint8)}
+    arrays = {value.name: getattr(result, value.name) for value in MEMBER_VALUES}
+    arrays["status"] = result.status.astype(np.uint8)
     for name, info in layout.parameters.items():
         if name not in reported:
             raise ValueError(f"chunk {key}: parameter {name!r} is not reported")

@@ -139,3 +139,48 @@ def metric(name: str) -> tuple[Metric, TrajectoryVariable]:
         if found.name == name:
             return found, variable
     raise KeyError(f"{name!r} is not a metric")
+
+
+@dataclass(frozen=True)
+class MemberValue:
+    """A number per member that is no series in time: a (members,) float64 field of the
+    chunk's :class:`~ensemble.records.ChunkResult` of the same name, stored as the result
+    variable (variant, member).
+
+    Attributes
+    ----------
+    name : the field and the result variable.
+    long_name, units : CF attributes.
+    summarised : its quantiles over members are ``<name>_quantile`` (variant, quantile).
+    """
+
+    name: str
+    long_name: str
+    units: str
+    summarised: bool = False
+
+
+MEMBER_VALUES: tuple[MemberValue, ...] = (
+    MemberValue("step_error", "estimated error of the stored trajectory relative to the "
+                              "tolerance (the member passes when at most 1)", "1"),
+    MemberValue("observed_order", "observed order of convergence of the integration method",
+                "1"),
+    MemberValue("basic_reproduction_number", "basic reproduction number R0 by the "
+                "next-generation matrix at the disease-free start", "1", summarised=True),
+)
+"""Every per-member value of a result, in file order."""
+
+MEMBER_VALUE_NAMES = tuple(value.name for value in MEMBER_VALUES)
+
+
+def member_value(name: str) -> MemberValue:
+    """The per-member value ``name``.
+
+    Raises
+    ------
+    KeyError : no such value.
+    """
+    for value in MEMBER_VALUES:
+        if value.name == name:
+            return value
+    raise KeyError(f"{name!r} is not a per-member value")

@@ -71,8 +71,9 @@ def _labels(dataset: xr.Dataset, dim: str) -> list[str]:
 
 def summary_text(dataset: xr.Dataset) -> str:
     """The summary of a result opened by :func:`ensemble.open_result`: per variant, the
-    quantiles over members of each compartment's peak size and time and of each flow's
-    total and peak, and the members behind each status bit."""
+    quantiles over members of R0 (by the next-generation matrix), of each compartment's
+    peak size and time and of each flow's total and peak, and the members behind each
+    status bit."""
     probabilities = dataset["quantile"].values
     whole_days = _whole_days(dataset["time"].values)
     header = ["", "", *(f"q{p:g}" for p in probabilities)]
@@ -84,6 +85,10 @@ def summary_text(dataset: xr.Dataset) -> str:
         lines.append(f"variant {variant}: {int(part['members_in_summary'])} members in "
                      "the quantiles")
         rows = [header]
+        if "basic_reproduction_number_quantile" in part:
+            rows.append(["R0", "next generation", *(
+                f"{v:.3g}" if np.isfinite(v) else "-"
+                for v in part["basic_reproduction_number_quantile"].values)])
         for title, name, dim in _ROWS:
             values = part[name].transpose("quantile", dim, ...).values
             values = values.reshape(len(probabilities), -1)

@@ -44,7 +44,7 @@ from ensemble.output.finish import DEFAULT_BLOCK_BYTES, Finisher
 from ensemble.output.layout import ResultLayout
 from ensemble.output.quantiles import in_summary
 from ensemble.output.sources import check_chunk, chunk_member_arrays
-from ensemble.output.variables import TRAJECTORIES
+from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
 from ensemble.output.result_file import is_complete, unfinished_files
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.chunk_files import BOOT_FILE, CHUNK_PREFIX, MEMBER_FILE, ChunkFiles
@@ -314,9 +314,9 @@ class WorkJournal:
                   for variable in TRAJECTORIES if variable.derive is None}
         with np.load(directory / MEMBER_FILE) as members:
             result = ChunkResult(members=np.arange(key[1], key[2], dtype=np.int64),
-                                 step_error=members["step_error"],
-                                 observed_order=members["observed_order"],
-                                 status=members["status"], **series)
+                                 status=members["status"], **series,
+                                 **{value.name: members[value.name]
+                                    for value in MEMBER_VALUES})
             reported = {name: members[f"param_{name}"].T for name in self.layout.parameters}
         return result, reported
 

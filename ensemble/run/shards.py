@@ -34,7 +34,7 @@ import numpy as np
 from ensemble.durable import replace_atomically
 from ensemble.errors import PartError
 from ensemble.output.layout import ResultLayout
-from ensemble.output.variables import TRAJECTORIES
+from ensemble.output.variables import MEMBER_VALUE_NAMES, TRAJECTORIES
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.journal import WorkJournal, partial_path
 from ensemble.run.layout import lowered_models, result_layout
@@ -156,7 +156,7 @@ def _write_chunk(part: netCDF4.Dataset, layout: ResultLayout, key: ChunkKey,
     rows = slice(first - start, last - start)
     for variable in STORED:
         part[variable.source][variant, rows] = getattr(result, variable.source)
-    for name in ("step_error", "observed_order", "status"):
+    for name in (*MEMBER_VALUE_NAMES, "status"):
         part[name][variant, rows] = getattr(result, name)
     for name in layout.parameters:
         part[f"param_{name}"][variant, ..., rows] = reported[name]
@@ -195,7 +195,7 @@ def _define_part(part: netCDF4.Dataset, layout: ResultLayout, shard: Shard, back
             variable.source, "f8", ("variant", "member", f"{variable.source}_row", "time"),
             zlib=True, complevel=1, shuffle=True,
             chunksizes=(1, max(1, min(per_member, end - start)), n_rows, layout.n_reports))
-    for name in ("step_error", "observed_order"):
+    for name in MEMBER_VALUE_NAMES:
         part.createVariable(name, "f8", ("variant", "member"))
     part.createVariable("status", "u1", ("variant", "member"))
     for name, info in layout.parameters.items():
@@ -347,8 +347,7 @@ def _read_chunks(info: PartInfo, layout: ResultLayout
                     members=np.arange(first, last, dtype=np.int64),
                     **{variable.source: part[variable.source][variant, rows]
                        for variable in STORED},
-                    step_error=part["step_error"][variant, rows],
-                    observed_order=part["observed_order"][variant, rows],
+                    **{name: part[name][variant, rows] for name in MEMBER_VALUE_NAMES},
                     status=part["status"][variant, rows])
                 reported = {name: part[f"param_{name}"][variant, ..., rows]
                             for name in layout.parameters}

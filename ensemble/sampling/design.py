@@ -24,6 +24,7 @@ from ensemble.model.lower import LoweredModel
 from ensemble.model.lowering import Vector
 from ensemble.model.numpy_program import NumpyProgram
 from ensemble.model.spectra import spectral_radii
+from ensemble.sampling.reproduction import reproduction_numbers
 from ensemble.sampling.uniform import uniform_draws
 from ensemble.scenario.schema import (INITIAL_SUM_RTOL, Fixed, GroupDraws, Parameter,
                                       Scenario, Variant, element_distribution)
@@ -41,6 +42,8 @@ class Design:
     invalid_start : (M,) bool, the drawn start is impossible (status bit 8).
     reported : parameter name -> (M,) or (n_groups, M) float64: every parameter that is
         constant in time in this variant (sampled, given or derived), for ``param_<name>``.
+    basic_reproduction_number : (M,) float64 R0 by the next-generation matrix at the
+        disease-free start (:mod:`ensemble.sampling.reproduction`; NaN where undefined).
     """
 
     member_index: np.ndarray
@@ -49,6 +52,7 @@ class Design:
     initial: np.ndarray
     invalid_start: np.ndarray
     reported: Mapping[str, np.ndarray]
+    basic_reproduction_number: np.ndarray
 
 
 def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
@@ -89,9 +93,12 @@ def _design(scenario: Scenario, variant: Variant, model: LoweredModel,
                                               member_index.size, uniforms))
         values = _Evaluated(trees, inputs)
         counts, invalid = initial_state(scenario, values.initial, member_index.size)
+        initial = model.initial_states(counts)
+        r0 = reproduction_numbers(scenario, model, initial, values.slots, values.knots,
+                                  invalid)
         return Design(member_index=member_index, parameters=values.slots,
-                      schedule_values=values.knots, initial=model.initial_states(counts),
-                      invalid_start=invalid, reported=values.reported)
+                      schedule_values=values.knots, initial=initial, invalid_start=invalid,
+                      reported=values.reported, basic_reproduction_number=r0)
 
 
 def input_rows(scenario: Scenario, variant: Variant, elements: Sequence[Element],

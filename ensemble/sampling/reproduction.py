@@ -14,27 +14,27 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from ensemble.model.lower import LoweredModel, lower_model
-from ensemble.model.reproduction import Infected, NextGeneration, infected_compartments
-from ensemble.sampling.design import Design, make_design, median_design
+from ensemble.model.lower import LoweredModel
+from ensemble.model.reproduction import NextGeneration, infected_compartments
 from ensemble.scenario.schema import Rest, Scenario
 
 
-def reproduction_numbers(scenario: Scenario, model: LoweredModel, design: Design,
-                         infected: Infected | None = None) -> np.ndarray:
-    """(M,) R0 of each member of ``design``: NaN where the infected compartments cannot
-    be told, or where the member's start is impossible or its matrices singular or not
-    finite."""
-    infected = infected or infected_compartments(scenario.model)
-    n_members = len(design.member_index)
+def reproduction_numbers(scenario: Scenario, model: LoweredModel, initial: np.ndarray,
+                         parameters: np.ndarray, schedule_values: Sequence[np.ndarray],
+                         invalid_start: np.ndarray) -> np.ndarray:
+    """(M,) R0 of each member from its design's initial state (n_states, M), parameter
+    slots, schedule values at the knots and impossible starts: NaN where the infected
+    compartments cannot be told, or where the member's start is impossible or its
+    matrices singular or not finite."""
+    infected = infected_compartments(scenario.model)
+    n_members = initial.shape[1]
     if infected.compartments is None:
         return np.full(n_members, np.nan)
     with np.errstate(all="ignore"):
-        start = disease_free_start(scenario, model, design.initial, infected.compartments)
+        start = disease_free_start(scenario, model, initial, infected.compartments)
         values = NextGeneration(model, infected.compartments).basic_reproduction_number(
-            start, design.parameters,
-            schedules_at_start(model, design.schedule_values, n_members))
-    values[design.invalid_start] = np.nan
+            start, parameters, schedules_at_start(model, schedule_values, n_members))
+    values[invalid_start] = np.nan
     return values
 
 
@@ -79,24 +79,3 @@ def schedules_at_start(model: LoweredModel, knot_values: Sequence[np.ndarray],
             values[i] = slope * (0.0 - slot.days[j]) + knots[j]
     return values
 
-
-QUICK_DRAW = 200
-"""Members of the quick draw ``ensemble check`` reports R0 over (the first ones of the
-ensemble, at most this many)."""
-
-
-def reproduction_overview(scenario: Scenario) -> tuple[Infected, list[tuple[str, float,
-                                                                             np.ndarray]]]:
-    """What ``ensemble check`` says of R0: the infected compartments and, per variant,
-    (name, R0 at the parameters' medians, R0 of the first members of the ensemble)."""
-    infected = infected_compartments(scenario.model)
-    rows = []
-    members = np.arange(min(scenario.member_count, QUICK_DRAW))
-    for variant in scenario.variants:
-        model = lower_model(scenario, variant)
-        median = reproduction_numbers(scenario, model, median_design(scenario, variant, model),
-                                      infected)[0]
-        drawn = reproduction_numbers(scenario, model,
-                                     make_design(scenario, variant, model, members), infected)
-        rows.append((variant.name, float(median), drawn))
-    return infected, rows
