@@ -183,3 +183,21 @@ def test_shapes_of_the_matrix_functions_are_checked(tmp_path, expression, messag
         load_text(tmp_path, scenario_text(f'beta = 0.1\n    other = "{expression}"'))
     assert message in str(error.value)
     assert error.value.key == "parameters.other"
+
+
+def test_a_derived_parameter_may_carry_units_and_a_description(tmp_path) -> None:
+    """``{ value = "expression", units, description }``: derived like a plain string."""
+    from ensemble.scenario.schema import Derived
+
+    scenario = load_text(tmp_path, scenario_text(
+        'beta = { value = "R0 / (infectious_days * spectral_radius(contacts))", '
+        'units = "1/day", description = "transmission rate" }'))
+    beta = scenario.parameters["beta"]
+    assert isinstance(beta.form, Derived)
+    assert (beta.units, beta.description) == ("1/day", "transmission rate")
+    design = designed(tmp_path, scenario_text(
+        'beta = { value = "R0 / (infectious_days * spectral_radius(contacts))" }'))
+    np.testing.assert_allclose(
+        design.reported["beta"], design.reported["R0"] / (
+            design.reported["infectious_days"] * numpy_radius(np.array(CONTACTS))),
+        rtol=1e-13)

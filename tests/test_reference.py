@@ -162,9 +162,10 @@ def visits_while_loading(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> lis
 def heading_of(path: str) -> str:
     """The reference's heading for a table at key path ``path``: ``[solver.check]``,
     ``[[model.flows]]`` for ``model.flows[2]``, ``[parameters]`` for a parameter's
-    table, in ``[parameters]`` or in a variant."""
+    table (or one group's distribution in a list per group), in ``[parameters]`` or in a
+    variant."""
     general = re.sub(r"\[\d+\]", "[]", path)
-    if re.fullmatch(r"(variants\[\]\.)?parameters\.[^.]+", general):
+    if re.fullmatch(r"(variants\[\]\.)?parameters\.[^.]+(\.value\[\])?", general):
         return "[parameters]"
     if general.endswith("[]"):
         return f"[[{general[:-2]}]]"
@@ -340,6 +341,8 @@ def test_heading_of_maps_key_paths_to_sections() -> None:
     assert heading_of("variants[1]") == "[[variants]]"
     assert heading_of("parameters.R0") == "[parameters]"
     assert heading_of("variants[0].parameters.R0") == "[parameters]"
+    assert heading_of("parameters.admitted[2]") == "[parameters]"
+    assert heading_of("parameters.admitted.value[0]") == "[parameters]"
 
 
 def test_reference_parser_reads_a_key_table() -> None:

@@ -114,6 +114,10 @@ class ParameterReader:
             return self.distribution(name, value, path)
         if "value" in value:
             reader.table(value, path, ("value", "units", "description"))
+            if isinstance(value["value"], str):
+                return Draft(name, path, None, None,
+                             texts=(reader.parse(value["value"], key_path(path, "value")),),
+                             **self.annotations(value, path))
             return self.constant(name, value["value"], key_path(path, "value"),
                                  **self.annotations(value, path))
         raise reader.error(path, value, "a parameter table needs 'dist' (a distribution), "
