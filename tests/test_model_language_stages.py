@@ -183,6 +183,7 @@ def test_show_stages_reports_each_stage_and_their_sum(tmp_path) -> None:
     assert np.allclose(stages[:, 0], 1000 / 3)
 
 
+@pytest.mark.slow
 def test_both_backends_agree_on_a_staged_model_with_flows_between_groups(tmp_path) -> None:
     """The compiled kernels and the numpy reference integrate the same states and flow
     elements (their semantics are the reference's, ``ensemble/integrate/reference.py``):
