@@ -30,6 +30,11 @@ MISSING = object()
 _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _LABEL = re.compile(r"[A-Za-z0-9_-]+")
 
+CONTROL_CHARACTERS = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+"""Characters no name or path may hold: the C0 controls (NUL, tab, newline, carriage
+return, escape, ...), DEL and the C1 controls, Unicode's category Cc.  A newline in a
+path written into a job script would start a command of its own."""
+
 T = TypeVar("T")
 
 

@@ -10,7 +10,7 @@ from fractions import Fraction
 from typing import Any
 
 from ensemble.methods import METHODS
-from ensemble.scenario.reader import MISSING, Reader, key_path, time_text
+from ensemble.scenario.reader import CONTROL_CHARACTERS, MISSING, Reader, key_path, time_text
 from ensemble.scenario.schema import Compute, Newton, Output, Solver, StepCheck
 
 SAMPLING_METHODS = ("random", "latin-hypercube", "sobol")
@@ -148,6 +148,9 @@ def _path(reader: Reader, value: object, path: str) -> str:
     text = reader.string(value, path)
     if not text.strip():
         raise reader.error(path, value, "must not be empty")
+    if CONTROL_CHARACTERS.search(text):
+        raise reader.error(path, value, "must not contain control characters (newline, "
+                                        "carriage return, tab, NUL, escape, DEL, ...)")
     return text
 
 
