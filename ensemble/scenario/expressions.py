@@ -5,7 +5,7 @@ small tree below; any other node, name form or call is rejected with a reason.  
 is never handed to ``eval`` or ``exec``.
 
 Grammar: numbers, names, ``+ - * / **``, unary minus, parentheses, ``@`` (matrix times
-vector or matrix), and calls of :data:`FUNCTIONS`.
+vector or matrix), and calls of :data:`FUNCTIONS`, all in ASCII characters.
 """
 
 from __future__ import annotations
@@ -112,6 +112,7 @@ def parse(text: str) -> Node:
         raise ExpressionError(f"expression longer than {MAX_LENGTH} characters")
     if not text.strip():
         raise ExpressionError("empty expression")
+    _refuse_non_ascii(text)
     try:
         tree = ast.parse(text.strip(), mode="eval")
     except SyntaxError as exc:
@@ -119,6 +120,19 @@ def parse(text: str) -> Node:
     except (ValueError, RecursionError, MemoryError):
         raise ExpressionError("expression cannot be parsed") from None
     return _convert(tree.body, depth=0)
+
+
+def _refuse_non_ascii(text: str) -> None:
+    """Refuse any character outside ASCII.  Every name, number and operator of the
+    language is ASCII; Python's parser would read look-alike letters as the names they
+    normalise to (NFKC: fullwidth ``ｂｅｔａ`` is ``beta``, ``ℕ`` is ``N``), so that an
+    expression would use a parameter its text does not name."""
+    for column, character in enumerate(text, start=1):
+        if not character.isascii():
+            raise ExpressionError(f"character {character!r} (U+{ord(character):04X}) at "
+                                  f"column {column} is not ASCII: names are written in "
+                                  "plain ASCII letters, digits and '_', exactly as "
+                                  "declared")
 
 
 def _convert(node: ast.AST, depth: int) -> Node:
