@@ -68,6 +68,9 @@ def _initial_expression(reader: Reader, raw: str, path: str, scope: Scope,
     expression = reader.check(reader.parse(raw, path),
                               scope.parameter_shapes(resolved.parameters),
                               scope.parameter_forbidden())
+    if "t" in expression.names:
+        raise reader.error(expression.key, expression.text, "an initial value is the state "
+                           "at day 0 and may not use the time 't'")
     moving = sorted(expression.names & resolved.time_varying)
     if moving:
         raise reader.error(expression.key, expression.text, "initial values may use only "

@@ -36,7 +36,7 @@ from ensemble.scenario.reader import MISSING, Reader, time_text
 from ensemble.scenario.schema import (Expression, Flow, InitialValue, Model, Parameter, Rest,
                                       Scenario, Schedule, Source, Variant, is_drawn)
 from ensemble.scenario.settings import (check_whole_days, read_compute, read_head,
-                                        read_output, read_sampling, read_solver)
+                                        read_output, read_sampling, read_seed, read_solver)
 from ensemble.scenario.structure import (MODEL_KEYS, Scope, Structure, read_flows,
                                          read_structure)
 
@@ -83,7 +83,7 @@ def load_scenario(path: str | Path, *, member_count: int | None = None,
     if member_count is not None:
         overrides["member_count"] = _override(file, "members", member_count, minimum=1)
     if seed is not None:
-        overrides["seed"] = _override(file, "seed", seed, minimum=0)
+        overrides["seed"] = read_seed(Reader(file), seed, "scenario.seed")
     return dataclasses.replace(scenario, **overrides) if overrides else scenario
 
 

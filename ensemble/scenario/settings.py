@@ -17,6 +17,9 @@ SAMPLING_METHODS = ("random", "latin-hypercube", "sobol")
 
 DEFAULT_QUANTILES = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
 
+MAX_SEED = 2 ** 63 - 1
+"""Largest seed: the result file stores it as a 64-bit signed integer."""
+
 
 @dataclass(frozen=True)
 class Head:
@@ -67,7 +70,16 @@ def read_head(reader: Reader, value: object) -> Head:
         days=reader.get(table, path, "days", reader.positive_time),
         member_count=reader.get(table, path, "members",
                                 lambda v, p: reader.integer(v, p, minimum=1), 1),
-        seed=reader.get(table, path, "seed", lambda v, p: reader.integer(v, p, minimum=0), 0))
+        seed=reader.get(table, path, "seed", lambda v, p: read_seed(reader, v, p), 0))
+
+
+def read_seed(reader: Reader, value: object, path: str) -> int:
+    """A seed: a whole number from 0 to :data:`MAX_SEED`."""
+    if (isinstance(value, int) and not isinstance(value, bool)
+            and not 0 <= value <= MAX_SEED):
+        raise reader.error(path, value, f"must be a whole number from 0 to {MAX_SEED} "
+                           "(2^63 - 1: the result file stores it as a 64-bit integer)")
+    return reader.integer(value, path)
 
 
 def check_whole_days(reader: Reader, days: Fraction, report_every: Fraction) -> None:
