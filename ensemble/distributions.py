@@ -88,19 +88,51 @@ class QuantileFunction(Protocol):
         """The values below which a fraction ``q`` of the distribution lies."""
 
 
+PLAIN_TAIL_MASS = 1e-290
+"""Smallest probability beyond the near end of a truncation interval that its draws take
+as a plain number: above it every probability of the interval is a normal float with all
+its digits (the smallest is about 2.2e-308); below it they are taken as logarithms, or,
+for a family without logarithmic forms, the interval is refused."""
+
+Elementwise = Callable[[np.ndarray], np.ndarray]
+
+
+class NoRepresentableMass(ValueError):
+    """A truncation interval so far in a tail that its probability cannot be computed:
+    ``key`` (``"low"`` or ``"high"``) is the end that lies there."""
+
+    def __init__(self, key: str, message: str):
+        super().__init__(message)
+        self.key = key
+
+
+@dataclass(frozen=True)
+class Logarithmic:
+    """The logarithmic forms of a standard distribution, for truncation far in a tail:
+    ``log_cdf`` and ``log_sf`` give log P(Z <= z) and log P(Z > z), ``ppf_of_log`` and
+    ``isf_of_log`` their inverses (the z whose log-CDF, or log-survival, is given)."""
+
+    log_cdf: Elementwise
+    log_sf: Elementwise
+    ppf_of_log: Elementwise
+    isf_of_log: Elementwise
+
+
 @dataclass(frozen=True)
 class Continuous:
     """A continuous distribution ``X = loc + scale * Z`` for a standard variable Z whose
     CDF ``cdf_standard``, survival function ``sf_standard`` and their inverses
     ``ppf_standard`` and ``isf_standard`` act elementwise on arrays (the CDF, survival
-    function and ``isf`` only for families that accept truncation)."""
+    function and ``isf`` only for families that accept truncation; ``logarithmic`` for
+    those whose truncation may lie beyond :data:`PLAIN_TAIL_MASS`)."""
 
-    ppf_standard: Callable[[np.ndarray], np.ndarray]
+    ppf_standard: Elementwise
     loc: float = 0.0
     scale: float = 1.0
-    cdf_standard: Callable[[np.ndarray], np.ndarray] | None = None
-    sf_standard: Callable[[np.ndarray], np.ndarray] | None = None
-    isf_standard: Callable[[np.ndarray], np.ndarray] | None = None
+    cdf_standard: Elementwise | None = None
+    sf_standard: Elementwise | None = None
+    isf_standard: Elementwise | None = None
+    logarithmic: Logarithmic | None = None
 
     def ppf(self, q: np.ndarray) -> np.ndarray:
         """The values below which a fraction ``q`` of the distribution lies."""
@@ -124,15 +156,69 @@ class Continuous:
         The draw is first moved into the kept probability range,
         u -> F(low) + u (F(high) - F(low)), or in the survival form
         S(low) - u (S(low) - S(high)) mapped by ``isf`` when the range lies in the upper
-        half, where 1 - F loses the digits that S keeps.
+        half, where 1 - F loses the digits that S keeps.  When the probability beyond the
+        near end is below :data:`PLAIN_TAIL_MASS` (a normal truncated to [40, 41] keeps
+        about 1e-350, which underflows), the same map is taken in logarithms,
+        log F(x) = logaddexp(log(1 - u) + log F(low), log(u) + log F(high)) (and alike
+        for S), and inverted by the logarithmic forms.
+
+        Raises
+        ------
+        NoRepresentableMass : the interval lies so far in a tail that its probability
+            cannot be computed (:meth:`check_truncation`).
         """
-        if self.cdf(low) > 0.5:
+        self.check_truncation(low, high)
+        upper = self.cdf(low) > 0.5
+        near = self.sf(low) if upper else self.cdf(high)
+        if near < PLAIN_TAIL_MASS:
+            return np.clip(self._truncated_in_logarithms(u, low, high, upper), low, high)
+        if upper:
             survival_low, survival_high = self.sf(low), self.sf(high)
             values = self.isf(survival_low - u * (survival_low - survival_high))
         else:
             cdf_low, cdf_high = self.cdf(low), self.cdf(high)
             values = self.ppf(cdf_low + u * (cdf_high - cdf_low))
         return np.clip(values, low, high)
+
+    def check_truncation(self, low: float, high: float) -> None:
+        """Raise :class:`NoRepresentableMass` unless draws of X conditioned on
+        low <= X <= high can be computed: the probability beyond the interval's near end
+        is at least :data:`PLAIN_TAIL_MASS`, or the family has logarithmic forms and its
+        logarithm is finite."""
+        upper = self.cdf(low) > 0.5
+        key, end = ("low", low) if upper else ("high", high)
+        near = self.sf(low) if upper else self.cdf(high)
+        if near >= PLAIN_TAIL_MASS:
+            return
+        if self.logarithmic is not None:
+            standard = np.float64((end - self.loc) / self.scale)
+            log_near = (self.logarithmic.log_sf if upper else self.logarithmic.log_cdf)(standard)
+            if np.isfinite(log_near):
+                return
+        side = "above" if upper else "below"
+        size = "it underflows to 0" if near == 0 else f"about {near:.1e}"
+        raise NoRepresentableMass(key, f"the distribution has almost no probability {side} "
+                                       f"{end:g} ({size}): the interval is too far in its "
+                                       "tail to draw from")
+
+    def _truncated_in_logarithms(self, u: np.ndarray, low: float, high: float,
+                                 upper: bool) -> np.ndarray:
+        """:meth:`truncated_ppf`'s map in logarithms (the upper form with ``upper``)."""
+        forms = self.logarithmic
+        assert forms is not None
+        z_low = np.float64((low - self.loc) / self.scale)
+        z_high = np.float64((high - self.loc) / self.scale)
+        with np.errstate(divide="ignore"):
+            log_u, log_rest = np.log(u), np.log1p(-u)
+        if upper:
+            log_survival = np.logaddexp(log_rest + forms.log_sf(z_low),
+                                        log_u + forms.log_sf(z_high))
+            standard = forms.isf_of_log(log_survival)
+        else:
+            log_cdf = np.logaddexp(log_rest + forms.log_cdf(z_low),
+                                   log_u + forms.log_cdf(z_high))
+            standard = forms.ppf_of_log(log_cdf)
+        return standard * self.scale + self.loc
 
 
 @dataclass(frozen=True)
@@ -174,17 +260,30 @@ def _uniform(a: Arguments) -> Continuous:
     return Continuous(lambda q: q, loc=a["low"], scale=a["high"] - a["low"])
 
 
+# log_ndtr is the logarithm of the normal integral, accurate far into either tail, and
+# ndtri_exp its inverse (the z whose log_ndtr is given).
+NORMAL_LOGARITHMS = Logarithmic(special.log_ndtr, lambda z: special.log_ndtr(-z),
+                                special.ndtri_exp, lambda log_q: -special.ndtri_exp(log_q))
+
+
 def _normal(a: Arguments) -> Continuous:
     return Continuous(special.ndtri, a["mean"], a["sd"], special.ndtr,
-                      lambda z: special.ndtr(-z), lambda q: -special.ndtri(q))
+                      lambda z: special.ndtr(-z), lambda q: -special.ndtri(q),
+                      NORMAL_LOGARITHMS)
 
 
 def _lognormal(a: Arguments) -> Continuous:
+    """exp(sigma * N) scaled by exp(mu): the normal's forms through the logarithm."""
     mu, sigma = lognormal_parameters(a["mean"], a["sd"])
+    logarithms = Logarithmic(
+        lambda z: special.log_ndtr(_positive_log(z) / sigma),
+        lambda z: special.log_ndtr(-_positive_log(z) / sigma),
+        lambda log_q: np.exp(sigma * special.ndtri_exp(log_q)),
+        lambda log_q: np.exp(-sigma * special.ndtri_exp(log_q)))
     return Continuous(lambda q: np.exp(sigma * special.ndtri(q)), 0.0, math.exp(mu),
                       lambda z: special.ndtr(_positive_log(z) / sigma),
                       lambda z: special.ndtr(-_positive_log(z) / sigma),
-                      lambda q: np.exp(-sigma * special.ndtri(q)))
+                      lambda q: np.exp(-sigma * special.ndtri(q)), logarithms)
 
 
 def _gamma(a: Arguments) -> Continuous:
@@ -311,14 +410,22 @@ class Family:
     truncatable: bool = False
     support_low: float = -math.inf
 
-    def truncation_problem(self, low: float | None, high: float | None
-                           ) -> Problem | None:
-        """Why truncation to [low, high] is impossible (None for an open end), or None."""
+    def truncation_problem(self, arguments: Arguments, low: float | None,
+                           high: float | None) -> Problem | None:
+        """Why truncation of the family with ``arguments`` to [low, high] is impossible
+        (None for an open end), or None: an empty interval, one outside the support, or
+        one too far in a tail to draw (:class:`NoRepresentableMass`)."""
         if low is not None and high is not None and low >= high:
             return Problem("high", high, f"must be above low ({low:g})")
         if high is not None and high <= self.support_low:
             return Problem("high", high, f"a {self.name} distribution has no values at or "
                                          f"below {self.support_low:g}")
+        distribution = self.make(arguments)
+        try:
+            distribution.check_truncation(  # type: ignore[attr-defined]
+                -math.inf if low is None else low, math.inf if high is None else high)
+        except NoRepresentableMass as refused:
+            return Problem(refused.key, low if refused.key == "low" else high, str(refused))
         return None
 
 

@@ -254,3 +254,87 @@ def test_choice_inverse_cdf_at_the_cumulative_weights():
     u = np.array([1e-12, 0.2499, 0.25, 0.2501, 0.999999])
     assert inverse_cdf(distribution, u).tolist() == [1.0, 1.0, 1.0, 2.0, 2.0]
 
+
+
+# Far tails: the probabilities beyond the interval underflow as plain numbers (a normal
+# keeps about 1e-350 above 40), so the draws are taken in logarithms.  scipy.stats'
+# truncnorm computes its quantiles in logarithms too (scipy 1.17), and is the reference.
+UNIFORM_GRID = np.concatenate([np.logspace(-12, -3, 10), np.linspace(0.001, 0.999, 499),
+                               1 - np.logspace(-3, -12, 10)])
+
+
+@pytest.mark.parametrize("mean, sd, low, high", [
+    (0.0, 1.0, 40.0, 41.0), (0.0, 1.0, -41.0, -40.0), (0.0, 1.0, 40.0, None),
+    (0.0, 1.0, None, -40.0), (3.0, 0.5, 30.0, 31.0), (0.0, 1.0, 38.5, 38.6),
+], ids=["upper-window", "lower-window", "upper-tail", "lower-tail", "shifted", "narrow"])
+def test_truncated_normal_far_in_a_tail_against_truncnorm(mean, sd, low, high):
+    """Quantiles at a grid of uniforms equal scipy.stats.truncnorm's to 1e-9 relative,
+    where the plain map gave every member the interval's end."""
+    a = -np.inf if low is None else (low - mean) / sd
+    b = np.inf if high is None else (high - mean) / sd
+    reference = stats.truncnorm(a, b, loc=mean, scale=sd)
+    got = inverse_cdf(dist("normal", mean=mean, sd=sd, truncation=(low, high)), UNIFORM_GRID)
+    np.testing.assert_allclose(got, reference.ppf(UNIFORM_GRID), rtol=1e-9, atol=0)
+
+
+def test_truncated_normal_at_40_to_41_has_the_truncnorm_mean():
+    """The case of the trial: N(0, 1) on [40, 41] has mean 40.025 (scipy.stats.truncnorm,
+    40.02496884721...); the midpoint rule over 200,000 uniforms gives it to 1e-7."""
+    u = (np.arange(200_000) + 0.5) / 200_000
+    values = inverse_cdf(dist("normal", mean=0.0, sd=1.0, truncation=(40.0, 41.0)), u)
+    assert values.mean() == pytest.approx(stats.truncnorm(40.0, 41.0).mean(), rel=1e-7)
+    assert values.mean() == pytest.approx(40.025, abs=1e-3)
+
+
+def test_truncated_lognormal_far_in_a_tail():
+    """A lognormal on [1e6, 2e6] (about 1e-570 of it above 1e6) is exp(mu + sigma Z) with
+    Z truncated to the logarithms of the bounds (the definition of the lognormal, JKB
+    1994 vol. 1 ch. 14): scipy.stats.truncnorm on that scale, to 1e-9 relative."""
+    mu, sigma = lognormal_parameters(5.0, 1.2)
+    a, b = ((math.log(x) - mu) / sigma for x in (1e6, 2e6))
+    expected = np.exp(mu + sigma * stats.truncnorm(a, b).ppf(UNIFORM_GRID))
+    got = inverse_cdf(dist("lognormal", mean=5.0, sd=1.2, truncation=(1e6, 2e6)),
+                      UNIFORM_GRID)
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=0)
+
+
+def erlang_log_survival(x: float, shape: int, scale: float) -> float:
+    """log P(X > x) of a gamma with whole ``shape`` (the Erlang distribution):
+    P(X > x) = exp(-x/scale) sum_{j < shape} (x/scale)^j / j! (JKB 1994 vol. 1 ch. 17)."""
+    z = x / scale
+    return -z + math.log(math.fsum(z ** j / math.factorial(j) for j in range(shape)))
+
+
+@pytest.mark.parametrize("low, high", [(100.0, 101.0), (320.0, 330.0)],
+                         ids=["1e-83-beyond", "1e-275-beyond"])
+def test_truncated_gamma_far_in_a_tail_against_the_erlang_survival(low, high):
+    """A gamma of mean 2 and sd 1 (shape 4, scale 0.5) truncated far in its upper tail:
+    the quantile solves log S(x) = log((1 - u) S(low) + u S(high)) with the Erlang
+    survival function written out in logarithms, to 1e-9 relative."""
+    from scipy.optimize import brentq
+
+    u = np.linspace(0.001, 0.999, 41)
+    got = inverse_cdf(dist("gamma", mean=2.0, sd=1.0, truncation=(low, high)), u)
+    expected = []
+    for fraction in u:
+        target = np.logaddexp(math.log1p(-fraction) + erlang_log_survival(low, 4, 0.5),
+                              math.log(fraction) + erlang_log_survival(high, 4, 0.5))
+        expected.append(brentq(lambda x: erlang_log_survival(x, 4, 0.5) - target, low, high,
+                               xtol=1e-13, rtol=1e-15))
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=0)
+
+
+@pytest.mark.parametrize("family, arguments, low, high, key", [
+    ("gamma", {"mean": 2.0, "sd": 1.0}, 2000.0, None, "low"),
+    ("gamma", {"mean": 2.0, "sd": 1.0}, None, 1e-120, "high"),
+    ("normal", {"mean": 0.0, "sd": 1.0}, 1e200, None, "low"),
+    ("normal", {"mean": 0.0, "sd": 1.0}, None, -1e200, "high"),
+])
+def test_truncation_without_representable_mass_is_refused(family, arguments, low, high, key):
+    """An interval whose probability underflows even in logarithms (or, for the gamma,
+    which has no logarithmic forms here, below 1e-290) is refused, naming its far end."""
+    problem = FAMILIES[family].truncation_problem(arguments, low, high)
+    assert problem is not None and problem.key == key
+    assert "tail" in problem.message
+    with pytest.raises(distributions.NoRepresentableMass):
+        distributions.inverse_cdf(family, arguments, (low, high), np.array([0.5]))

@@ -197,7 +197,7 @@ class ParameterReader:
         if family.truncatable:
             truncation = (reader.get(table, path, "low", reader.number, None),
                           reader.get(table, path, "high", reader.number, None))
-            reader.refuse(family.truncation_problem(*truncation), table, path)
+            reader.refuse(family.truncation_problem(arguments, *truncation), table, path)
         return Distribution(family.name, MappingProxyType(arguments), truncation, per_group)
 
     def schedule(self, name: str, table: dict[str, Any], path: str) -> Draft:
