@@ -169,38 +169,17 @@ def model_elements(model: Model, layout: StateLayout, rate_of: RateOf,
     result, with every stage and transfer reported too when ``show_stages``."""
     n_groups = layout.n_groups
     elements: list[FlowElement] = []
-    exits: dict[str, list[Flow]] = {name: [] for name in layout.staged()}
     for f, flow in enumerate(model.flows):
-        source, stages = flow.source, layout.stage_count(flow.source) if flow.source else 1
-        if stages > 1 and flow.target != source:
-            exits[source].append(flow)   # type: ignore[index]
-        moving = [i for i in range(stages)] if flow.target == source else [stages - 1]
-        for stage in moving:
-            bound = None if stages == 1 else layout.stage_value(
-                source, stage, 1 if flow.target == source else stages)  # type: ignore[arg-type]
-            for g, h, tree in _entries(rate_of(flow, bound), flow, layout):
-                target_stage = stage if flow.target == source else 0
-                elements.append(FlowElement(
-                    None if source is None else layout.state(source, stage, g),
-                    None if flow.target is None else layout.state(flow.target, target_stage, h),
-                    tree, f * n_groups + (h if source is None else g)))
+        elements.extend(_flow_elements(flow, f * n_groups, layout, rate_of))
     flow_labels = [flow.name for flow in model.flows]
     for name in layout.staged():
-        stages = layout.stage_count(name)
-        for stage in range(stages - 1):
+        exits = [flow for flow in model.flows
+                 if flow.source == name and flow.target != name]
+        for stage in range(layout.stage_count(name) - 1):
             row = len(flow_labels) * n_groups if show_stages else None
             if show_stages:
                 flow_labels.append(f"{name}:{stage + 1}_to_{name}:{stage + 2}")
-            hazards: list[list[ScalarNode]] = [[] for _ in range(n_groups)]
-            for flow in exits[name]:
-                for g, _, tree in _entries(rate_of(flow, layout.stage_value(name, stage, stages)),
-                                           flow, layout):
-                    hazards[g].append(tree)
-            for g in range(n_groups):
-                elements.append(FlowElement(layout.state(name, stage, g),
-                                            layout.state(name, stage + 1, g),
-                                            fold_sum(hazards[g]),
-                                            None if row is None else row + g))
+            elements.extend(_transfers(name, stage, exits, row, layout, rate_of))
     compartment_labels = list(layout.compartments)
     state_rows = [layout.states_of(c, g) for c in layout.compartments for g in range(n_groups)]
     if show_stages:
@@ -214,6 +193,43 @@ def model_elements(model: Model, layout: StateLayout, rate_of: RateOf,
             flow_rows[element.row].append(index)
     return ModelElements(tuple(elements), tuple(compartment_labels), tuple(flow_labels),
                          tuple(state_rows), tuple(tuple(rows) for rows in flow_rows))
+
+
+def _flow_elements(flow: Flow, first_row: int, layout: StateLayout, rate_of: RateOf
+                   ) -> list[FlowElement]:
+    """The elements of one flow of the scenario, whose reported rows start at
+    ``first_row``: from the last stage of a staged source (the source standing for k
+    times that stage), or from every stage to the same stage for a move between groups
+    of one compartment (the source standing for the stage)."""
+    source, target = flow.source, flow.target
+    stages = layout.stage_count(source) if source else 1
+    moves_within = target == source
+    elements = []
+    for stage in (range(stages) if moves_within else [stages - 1]):
+        bound = None if stages == 1 else layout.stage_value(
+            source, stage, 1 if moves_within else stages)  # type: ignore[arg-type]
+        for g, h, tree in _entries(rate_of(flow, bound), flow, layout):
+            elements.append(FlowElement(
+                None if source is None else layout.state(source, stage, g),
+                None if target is None else layout.state(target, stage if moves_within
+                                                          else 0, h),
+                tree, first_row + (h if source is None else g)))
+    return elements
+
+
+def _transfers(name: str, stage: int, exits: list[Flow], row: int | None,
+               layout: StateLayout, rate_of: RateOf) -> list[FlowElement]:
+    """The moves from stage ``stage`` of ``name`` to the next, per group: the rates of
+    the flows out of ``name`` with ``name`` standing for k times that stage's count."""
+    stages = layout.stage_count(name)
+    hazards: list[list[ScalarNode]] = [[] for _ in range(layout.n_groups)]
+    for flow in exits:
+        for g, _, tree in _entries(rate_of(flow, layout.stage_value(name, stage, stages)),
+                                   flow, layout):
+            hazards[g].append(tree)
+    return [FlowElement(layout.state(name, stage, g), layout.state(name, stage + 1, g),
+                        fold_sum(terms), None if row is None else row + g)
+            for g, terms in enumerate(hazards)]
 
 
 def _entries(value: Value, flow: Flow, layout: StateLayout
