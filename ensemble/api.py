@@ -34,15 +34,14 @@ def check_report(scenario: Scenario) -> str:
     over the first members of each variant), and its warnings."""
     import numpy as np
 
-    from ensemble.model import lower_model
     from ensemble.model.reproduction import infected_compartments
+    from ensemble.run.layout import lowered_models
     from ensemble.sampling.design import make_design, median_design
     from ensemble.scenario.describe import describe, reproduction_section
 
     first_members = np.arange(min(scenario.member_count, QUICK_DRAW))
     rows = []
-    for variant in scenario.variants:
-        model = lower_model(scenario, variant)
+    for variant, model in zip(scenario.variants, lowered_models(scenario)):
         median = median_design(scenario, variant, model).basic_reproduction_number[0]
         drawn = make_design(scenario, variant, model, first_members)
         rows.append((variant.name, float(median), drawn.basic_reproduction_number))

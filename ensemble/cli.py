@@ -218,7 +218,8 @@ def check(scenario: ScenarioFile, settings: Settings = None) -> None:
 
     with _reported():
         loaded = api.load_scenario(scenario, settings=settings or [])
-    typer.echo(api.check_report(loaded), nl=False)
+        report = api.check_report(loaded)
+    typer.echo(report, nl=False)
 
 
 @app.command()

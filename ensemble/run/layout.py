@@ -6,12 +6,20 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 from ensemble.model import LoweredModel, lower_model, time_varying_parameters
+from ensemble.model.constant_parts import refuse_non_finite_constants
 from ensemble.output.layout import ResultLayout
 from ensemble.scenario.schema import Scenario
 
 
 def lowered_models(scenario: Scenario) -> list[LoweredModel]:
-    """The lowered model of every variant of ``scenario``, in its order."""
+    """The lowered model of every variant of ``scenario``, in its order.
+
+    Raises
+    ------
+    ensemble.errors.ScenarioError : a part of an expression made of numbers alone is not
+        a finite number (:mod:`ensemble.model.constant_parts`).
+    """
+    refuse_non_finite_constants(scenario)
     return [lower_model(scenario, variant) for variant in scenario.variants]
 
 
