@@ -291,3 +291,13 @@ def test_bad_stages_name_the_key(tmp_path, stages, key) -> None:
     with pytest.raises(ScenarioError) as error:
         load_text(tmp_path, text)
     assert error.value.key == key
+
+
+def test_stages_without_a_way_out_are_warned_of(tmp_path) -> None:
+    from ensemble.scenario.load import scenario_warnings
+
+    text = dwell_text(3, '{ X = 1000 }').replace("stages = { X = 3 }",
+                                                 "stages = { X = 3, Y = 2 }")
+    warnings = scenario_warnings(load_text(tmp_path, text))
+    assert any(w.startswith("model.stages.Y: no flow leaves Y") for w in warnings)
+    assert not any("model.stages.X" in w for w in warnings)

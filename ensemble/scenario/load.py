@@ -204,6 +204,11 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
                 warnings.append(f"{where}{parameter.name}: schedule day(s) {', '.join(late)} "
                                 f"fall after the horizon of {time_text(scenario.days)} days "
                                 "and have no effect")
+    for name, count in scenario.model.stages.items():
+        if count > 1 and not any(flow.source == name and flow.target != name
+                                 for flow in scenario.model.flows):
+            warnings.append(f"model.stages.{name}: no flow leaves {name}, so its {count} "
+                            "stages change nothing")
     uncertain = [p for p in scenario.parameters.values() if is_drawn(p.form)]
     if not uncertain and n_members > 1 and not any(v.parameters for v in scenario.variants):
         warnings.append(f"no parameter is drawn from a distribution: all {n_members} members "
