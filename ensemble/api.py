@@ -19,7 +19,7 @@ from ensemble.scenario.schema import Scenario
 
 __all__ = ["load_scenario", "scenario_warnings", "check_report", "run", "simulate",
            "open_result", "summarize", "status_counts", "merge", "array_script",
-           "cluster_profile", "default_part_path", "history_line"]
+           "worker_script", "cluster_profile", "default_part_path", "history_line"]
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -66,7 +66,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
         resume: bool = False, force: bool = False, progress: bool | None = None,
         backend: str | None = None, history: str | None = None,
         cluster: ClusterProfile | str | None = None, shard: Shard | str | None = None,
-        processes: bool = False, dashboard: bool = False) -> Path:
+        processes: bool = False, dashboard: bool | str = False) -> Path:
     """Run every variant of a scenario and write its result file.
 
     Parameters
@@ -95,8 +95,11 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     processes : local workers in processes of their own (a worker that dies loses only
         its task) instead of threads of this process (faster: nothing is copied between
         processes or imported again).
-    dashboard : serve dask's dashboard from the local cluster (its address is printed);
-        off by default, as it takes about half a second to start.
+    dashboard : serve dask's dashboard from the scheduler the run starts (its address is
+        printed): ``True`` on this machine's loopback address (a free port), or at
+        ``"HOST:PORT"``; off by default, as it takes about half a second to start and
+        shows the run's tasks and logs to whoever reaches it
+        (:mod:`ensemble.run.listening`).
 
     Returns
     -------
@@ -109,6 +112,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     ensemble.errors.RunFailed, ensemble.errors.StoreWriteError : the run failed;
         finished chunks are kept for ``resume`` (exit 1).
     """
+    from ensemble.run.listening import dashboard_at
     from ensemble.run.local import LocalStart
 
     if not isinstance(scenario, Scenario):
@@ -119,19 +123,20 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     on_this_machine = (local_workers != 0 and profile is None
                        and (address or scenario.compute.address) is None)
     # the local cluster starts while the rest of the pipeline is imported
+    dashboard = dashboard_at(dashboard)
     started = LocalStart(local_workers, processes, dashboard) if on_this_machine else None
     try:
         return _run(scenario, started, output=output, chunk=chunk, workers=workers,
                     address=address, resume=resume, force=force, progress=progress,
                     backend=backend, history=history, profile=profile, shard=shard,
-                    processes=processes)
+                    processes=processes, dashboard=dashboard)
     finally:
         if started is not None:
             started.close()
 
 
 def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume, force,
-         progress, backend, history, profile, shard, processes) -> Path:
+         progress, backend, history, profile, shard, processes, dashboard) -> Path:
     """:func:`run` once the scenario is loaded and any local cluster is starting."""
     import dataclasses
 
@@ -157,7 +162,7 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
         return run_scenario(scenario, history=history, backend=backend,
                             chunk=chunk, workers=workers, address=address, cluster=profile,
                             resume=resume, force=force, progress=Progress(bar=progress),
-                            started=started, processes=processes,
+                            started=started, processes=processes, dashboard=dashboard,
                             **(engine_options(scenario, part, backend) if part else {}))
 
 
@@ -295,6 +300,26 @@ def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | Non
     from ensemble.run.clusters import resolve_profile
 
     return resolve_profile(None if name is None else os.fspath(name))
+
+
+def worker_script(cluster: ClusterProfile | str) -> str:
+    """The job script of one dask worker job of a batch-system profile, as :func:`run`
+    with ``cluster`` submits it, with a placeholder for the scheduler's address; nothing
+    is submitted or started.
+
+    Raises
+    ------
+    ensemble.errors.InputError : invalid profile, or ``local`` (the command line exits
+        with 2).
+    """
+    from ensemble.errors import UsageError
+    from ensemble.run.worker_jobs import worker_script as script
+
+    profile = cluster if not isinstance(cluster, str) else cluster_profile(cluster)
+    if profile is None:
+        raise UsageError("--cluster", "", "local",
+                         "worker jobs need a batch-system profile (slurm or pbs)")
+    return script(profile)
 
 
 def default_part_path(scenario: Scenario, shard: Shard | str) -> Path:

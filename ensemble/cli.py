@@ -91,8 +91,13 @@ def run(
              "task) instead of threads.")] = False,
     dashboard: Annotated[bool, typer.Option(
         "--dashboard",
-        help="Serve dask's dashboard from the local cluster and print its address.")
+        help="Serve dask's dashboard on this machine's loopback address (a free port) and "
+             "print its address; without it nothing is served.")
     ] = False,
+    dashboard_address: Annotated[Optional[str], typer.Option(
+        "--dashboard-address", metavar="HOST:PORT",
+        help="Serve the dashboard at HOST:PORT instead (implies --dashboard), e.g. "
+             "127.0.0.1:8787, or :8787 for every interface.")] = None,
     address: Annotated[Optional[str], typer.Option(
         "--address", help="A running dask scheduler to use, e.g. tcp://host:8786.")] = None,
     resume: Annotated[bool, typer.Option(
@@ -127,7 +132,7 @@ def run(
                        address=address, resume=resume, force=force,
                        backend=backend.value if backend else None,
                        history=_history(), cluster=profile or "local", shard=shard,
-                       processes=processes, dashboard=dashboard)
+                       processes=processes, dashboard=dashboard_address or dashboard)
     _report_run(path, loaded, time.monotonic() - began)
 
 
@@ -276,6 +281,20 @@ def array_script(
         text = api.array_script(loaded, cluster, shards, output=output,
                                 run_options=run_options)
     typer.echo(text, nl=False)
+
+
+@app.command("worker-script")
+def worker_script(
+    cluster: Annotated[str, typer.Option("--cluster",
+                                         help="Cluster profile (slurm or pbs).")],
+) -> None:
+    """Print the job script of one dask worker job as `run --cluster NAME` submits it
+    (the scheduler's address a placeholder), without submitting anything."""
+    from ensemble import api
+
+    with _reported():
+        text = api.worker_script(cluster)
+    typer.echo(text)
 
 
 def main() -> None:

@@ -1,19 +1,18 @@
-"""Cluster profiles (TOML) and the dask-jobqueue clusters started from them.
+"""Cluster profiles (TOML): what the batch jobs of a run ask for and run first.
 
 A profile describes the worker jobs of one batch system (SLURM or PBS): queue, account,
 walltime, cores and memory per job, a fixed number of jobs or adaptive bounds, extra header
-directives and environment set-up lines. ``--cluster NAME`` names a profile by path, or as
-``NAME.toml`` in ``./configs/`` and then in ``$XDG_CONFIG_HOME/ensemble/clusters/``
-(``~/.config/ensemble/clusters/``); ``local`` is reserved for this machine.
+directives, environment set-up lines and the Python the jobs run. ``--cluster NAME`` names
+a profile by path, or as ``NAME.toml`` in ``./configs/`` and then in
+``$XDG_CONFIG_HOME/ensemble/clusters/`` (``~/.config/ensemble/clusters/``); ``local`` is
+reserved for this machine.
 
-Workers are started with dask-jobqueue (``SLURMCluster``/``PBSCluster``; see the
-dask-jobqueue documentation, "How this works" and "Dealing with walltime"): every worker
-gets a ``--lifetime`` a little shorter than the walltime, so it retires cleanly and hands its
-data back before the batch system kills it, and the cluster always runs under
-``adapt`` -- even a fixed ``jobs = N`` is ``adapt(minimum_jobs=N, maximum_jobs=N)`` -- because
-the adaptive loop is what resubmits a job that died or ended. Tasks that were running on a
-lost worker are recomputed by the dask scheduler; every task is a pure function of its
-arguments, so the numbers do not change.
+Every value is checked by what it is before it can reach a job script: queue and account
+are names of a restricted alphabet, ``interface`` a network interface name, ``directives``
+and ``setup`` single lines without control characters (a directive starting with ``-``),
+and ``memory`` a size in the batch systems' own units (:func:`parse_memory`).  The
+dask-jobqueue workers started from a profile are :mod:`ensemble.run.worker_jobs`; job
+arrays are :mod:`ensemble.run.job_array`.
 """
 
 from __future__ import annotations
@@ -22,15 +21,14 @@ import os
 import re
 import sys
 import tomllib
-from collections.abc import Iterator, Mapping
-from contextlib import contextmanager
+from collections.abc import Mapping
 from dataclasses import dataclass
+from decimal import Decimal
 from pathlib import Path
 from typing import Any, Literal
 
-from dask.utils import parse_bytes
-
 from ensemble.errors import ProfileError, ProfileErrors, did_you_mean
+from ensemble.scenario.reader import CONTROL_CHARACTERS
 
 LOCAL = "local"
 """The reserved profile name for this machine (a dask LocalCluster)."""
@@ -42,8 +40,21 @@ THREAD_LIMITS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "
 task at a time, so numerical libraries must not start threads of their own."""
 
 _KEYS = ("system", "queue", "account", "walltime", "cores", "memory", "processes", "jobs",
-         "adapt", "interface", "directives", "setup")
-_WALLTIME = re.compile(r"^(\d+):([0-5]\d):([0-5]\d)$")
+         "adapt", "interface", "directives", "setup", "python")
+_WALLTIME = re.compile(r"([0-9]{1,4}):([0-5][0-9]):([0-5][0-9])")
+_QUEUE_NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.,@+:-]{0,127}")
+"""A partition, queue or account name: letters, digits and ``_ . , @ + : -``, not starting
+with ``-`` (it would read as an option); SLURM's comma separates partitions, PBS's ``@``
+names a server."""
+_INTERFACE = re.compile(r"[A-Za-z0-9_.:-]{1,15}")
+"""A network interface name as Linux allows it (at most 15 characters)."""
+
+MEMORY_UNITS = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
+"""Memory units of a profile: powers of 1024, as SLURM (``--mem``) and PBS (``mem=``)
+read K, M, G and T; ``16GB``, ``16G`` and ``16GiB`` all mean 16 x 2^30 bytes."""
+_MEMORY = re.compile(r"([0-9]{1,15}(?:\.[0-9]{1,6})?) ?(?:([KMGT])(?:i?B)?|B)", re.IGNORECASE)
+MEMORY_LIMITS = (2**20, 2**50)
+"""Smallest and largest memory per job a profile may ask for (1 MiB, 1 PiB)."""
 
 
 @dataclass(frozen=True)
@@ -59,13 +70,15 @@ class ClusterProfile:
     account : account or project to charge; None for the user's default.
     walltime : ``HH:MM:SS`` per worker job or array task.
     cores : cores per job.
-    memory : memory per job, as written (e.g. ``"16GB"``).
+    memory : memory per job, as written (e.g. ``"16GB"``); its bytes are
+        :attr:`memory_bytes`.
     processes : dask worker processes per job (default: one per core, one thread each).
     jobs : a fixed number of worker jobs, or None when ``adapt`` is given.
     adapt : ``(minimum, maximum)`` worker jobs for adaptive scaling, or None.
     interface : network interface the workers and scheduler talk on (e.g. ``ib0``), or None.
     directives : extra header lines, given without the ``#SBATCH``/``#PBS`` prefix.
     setup : shell lines run before the work in every job (e.g. activating the environment).
+    python : the Python the jobs run, or None for the default (:func:`job_python`).
     """
 
     name: str
@@ -82,6 +95,12 @@ class ClusterProfile:
     interface: str | None
     directives: tuple[str, ...]
     setup: tuple[str, ...]
+    python: str | None = None
+
+    @property
+    def memory_bytes(self) -> int:
+        """The memory per job in bytes (:func:`parse_memory`)."""
+        return parse_memory(self.memory)
 
     @property
     def max_workers(self) -> int:
@@ -171,7 +190,7 @@ class _Validator:
     """Checks one profile document, collecting every problem before raising."""
 
     def __init__(self, file: str, name: str, path: Path):
-        self.file, self.name, self.path = file, name, path
+        self.file, self.profile_name, self.path = file, name, path
         self.errors: list[ProfileError] = []
 
     def error(self, key: str, value: object, message: str, hint: str | None = None) -> None:
@@ -191,11 +210,14 @@ class _Validator:
                 self.error(f"cluster.{key}", table[key], "unknown key", did_you_mean(key, _KEYS))
 
         system = self.choice(table, "system", SYSTEMS)
-        queue = self.text(table, "queue", required=False)
-        account = self.text(table, "account", required=False)
-        interface = self.text(table, "interface", required=False)
+        queue = self.name(table, "queue", _QUEUE_NAME, "a partition or queue name")
+        account = self.name(table, "account", _QUEUE_NAME, "an account or project name")
+        interface = self.name(table, "interface", _INTERFACE,
+                              "a network interface name (at most 15 letters, digits, "
+                              "'_', '.', ':' or '-'), e.g. \"ib0\"")
+        python = self.text(table, "python", required=False)
         walltime = self.text(table, "walltime", required=True)
-        if walltime is not None and not _WALLTIME.match(walltime):
+        if walltime is not None and not _WALLTIME.fullmatch(walltime):
             self.error("cluster.walltime", walltime, "expected HH:MM:SS", 'e.g. "04:00:00"')
             walltime = None
         elif walltime is not None and _seconds(walltime) < 120:
@@ -208,13 +230,19 @@ class _Validator:
         memory = self.memory(table)
         jobs, adapt = self.scaling(table)
         directives = self.lines(table, "directives")
+        for index, directive in enumerate(directives):
+            if not directive.startswith("-"):
+                self.error(f"cluster.directives[{index}]", directive,
+                           "a directive is an option of sbatch or qsub, starting with '-'",
+                           'e.g. "--constraint=avx2" or "-l place=free"')
         setup = self.lines(table, "setup")
         if self.errors:
             raise ProfileErrors(self.errors)
         return ClusterProfile(
-            name=self.name, path=self.path, system=system, queue=queue, account=account,
-            walltime=walltime, cores=cores, memory=memory, processes=processes or cores,
-            jobs=jobs, adapt=adapt, interface=interface, directives=directives, setup=setup)
+            name=self.profile_name, path=self.path, system=system, queue=queue,
+            account=account, walltime=walltime, cores=cores, memory=memory,
+            processes=processes or cores, jobs=jobs, adapt=adapt, interface=interface,
+            directives=directives, setup=setup, python=python)
 
     def text(self, table: Mapping[str, Any], key: str, *, required: bool) -> str | None:
         value = table.get(key)
@@ -222,10 +250,20 @@ class _Validator:
             if required:
                 self.error(f"cluster.{key}", None, "missing")
             return None
-        if not isinstance(value, str) or not value.strip() or "\n" in value:
-            self.error(f"cluster.{key}", value, "expected a non-empty one-line string")
+        if not isinstance(value, str) or not value.strip() or CONTROL_CHARACTERS.search(value):
+            self.error(f"cluster.{key}", value, "expected a non-empty one-line string "
+                       "without control characters")
             return None
         return value.strip()
+
+    def name(self, table: Mapping[str, Any], key: str, pattern: re.Pattern[str],
+             what: str) -> str | None:
+        """An optional ``key`` that must match ``pattern`` entirely (``what`` it is)."""
+        value = self.text(table, key, required=False)
+        if value is not None and not pattern.fullmatch(value):
+            self.error(f"cluster.{key}", value, f"expected {what}")
+            return None
+        return value
 
     def choice(self, table: Mapping[str, Any], key: str, choices: tuple[str, ...]) -> str | None:
         value = self.text(table, key, required=True)
@@ -252,11 +290,9 @@ class _Validator:
         if value is None:
             return None
         try:
-            size = parse_bytes(value)
-        except ValueError:
-            size = 0
-        if size <= 0:
-            self.error("cluster.memory", value, "expected a size such as \"16GB\" or \"4000MiB\"")
+            parse_memory(value)
+        except ValueError as error:
+            self.error("cluster.memory", value, str(error))
             return None
         return value
 
@@ -290,17 +326,58 @@ class _Validator:
             self.error(f"cluster.{key}", value, "expected a list of strings")
             return ()
         for index, line in enumerate(value):
-            if not isinstance(line, str) or "\n" in line:
-                self.error(f"cluster.{key}[{index}]", line, "expected a one-line string")
-        return tuple(line for line in value if isinstance(line, str))
+            if not isinstance(line, str) or CONTROL_CHARACTERS.search(line):
+                self.error(f"cluster.{key}[{index}]", line,
+                           "expected a one-line string without control characters")
+        return tuple(line for line in value
+                     if isinstance(line, str) and not CONTROL_CHARACTERS.search(line))
 
 
 def _seconds(walltime: str) -> int:
-    hours, minutes, seconds = (int(x) for x in _WALLTIME.match(walltime).groups())
+    hours, minutes, seconds = (int(x) for x in _WALLTIME.fullmatch(walltime).groups())
     return 3600 * hours + 60 * minutes + seconds
 
 
-# ----------------------------------------------------------------------------- clusters
+# ----------------------------------------------------------------------------- memory
+
+
+def parse_memory(text: str) -> int:
+    """Bytes of a profile's memory size, in units of 1024 (:data:`MEMORY_UNITS`).
+
+    ``"16GB"`` is 16 x 2^30 bytes, as SLURM and PBS read it; fractions are rounded up to
+    whole bytes.
+
+    Raises
+    ------
+    ValueError
+        Not a number with a unit, or outside :data:`MEMORY_LIMITS`.
+    """
+    found = _MEMORY.fullmatch(text.strip())
+    if found is None:
+        raise ValueError('expected a size with a unit, such as "16GB" or "4000M" (K, M, G '
+                         "and T are powers of 1024, as SLURM and PBS read them)")
+    exact = Decimal(found[1]) * MEMORY_UNITS[(found[2] or "").upper()]
+    size = int(exact.to_integral_value(rounding="ROUND_CEILING"))
+    low, high = MEMORY_LIMITS
+    if not low <= size <= high:
+        raise ValueError(f"expected between 1M and 1024T per job, not {size:,} bytes")
+    return size
+
+
+def memory_request(size: int, system: str) -> str:
+    """``size`` bytes as the batch system's memory request: SLURM's ``--mem`` value
+    (``16G``) or PBS's ``mem=`` value (``16gb``), in the largest unit of 1024 that gives a
+    whole number (rounded up to whole KiB), so both systems get the same bytes."""
+    kib = -(-size // 1024)
+    for unit in ("T", "G", "M", "K"):
+        factor = MEMORY_UNITS[unit] // 1024
+        if kib % factor == 0:
+            count = kib // factor
+            return f"{count}{unit}" if system == "slurm" else f"{count}{unit.lower()}b"
+    raise AssertionError("K divides every whole number of KiB")
+
+
+# ----------------------------------------------------------------------------- jobs
 
 
 def header_prefix(profile: ClusterProfile) -> str:
@@ -308,86 +385,33 @@ def header_prefix(profile: ClusterProfile) -> str:
     return "#SBATCH" if profile.system == "slurm" else "#PBS"
 
 
+def job_python(profile: ClusterProfile) -> str:
+    """The Python a job runs: the profile's ``python``; else, when it has setup lines,
+    ``python3`` from the PATH they make (the environment they choose); else this
+    interpreter (a cluster sharing this machine's file system and software)."""
+    if profile.python is not None:
+        return profile.python
+    return "python3" if profile.setup else sys.executable
+
+
+def python_note(profile: ClusterProfile) -> str:
+    """A comment line of a job script saying which Python environment the job uses."""
+    python = job_python(profile)
+    if profile.python is not None:
+        return f"# Python: {python} (the profile's python)"
+    if profile.setup:
+        return f"# Python: {python} from the PATH the setup lines above make"
+    return f"# Python: {python} (this machine's; the profile has no setup lines)"
+
+
 def environment_lines(profile: ClusterProfile) -> list[str]:
-    """Shell lines run at the start of every job: the profile's setup, then thread limits."""
+    """Shell lines run at the start of every job: the profile's setup, then thread
+    limits."""
     return [*profile.setup, *(f"export {name}=1" for name in THREAD_LIMITS)]
 
 
-def worker_lifetime(profile: ClusterProfile) -> tuple[int, int]:
-    """A worker's ``--lifetime`` and ``--lifetime-stagger``, in seconds.
-
-    The worker retires a margin before the walltime (a tenth of it, at least one minute
-    and at most five) so it can hand its results back before the batch system kills the job;
-    the stagger (a fortieth, at most two minutes) keeps all workers from leaving at once.
-    The margins are common practice (dask-jobqueue documentation), no source for the values.
-    """
-    walltime = profile.walltime_seconds
-    margin = min(300, max(60, walltime // 10))
-    stagger = min(120, walltime // 40)
-    return walltime - margin - stagger, stagger
-
-
-def jobqueue_arguments(profile: ClusterProfile) -> dict[str, Any]:
-    """Keyword arguments for ``SLURMCluster``/``PBSCluster`` from a profile."""
-    lifetime, stagger = worker_lifetime(profile)
-    arguments: dict[str, Any] = {
-        "cores": profile.cores,
-        "memory": profile.memory,
-        "processes": profile.processes,
-        "walltime": profile.walltime,
-        "queue": profile.queue,
-        "account": profile.account,
-        "interface": profile.interface,
-        "job_extra_directives": list(profile.directives),
-        "job_script_prologue": environment_lines(profile),
-        "worker_extra_args": ["--lifetime", f"{lifetime}s", "--lifetime-stagger", f"{stagger}s"],
-        "python": sys.executable,
-        "job_name": f"ensemble-{profile.name}",
-    }
-    return {key: value for key, value in arguments.items() if value is not None}
-
-
-def _cluster_class(profile: ClusterProfile):
-    from dask_jobqueue import PBSCluster, SLURMCluster
-
-    return SLURMCluster if profile.system == "slurm" else PBSCluster
-
-
-def job_header(profile: ClusterProfile, job_name: str) -> str:
-    """The batch header (``#SBATCH``/``#PBS`` lines) dask-jobqueue writes for this profile.
-
-    Built by the jobqueue job class itself, without starting anything, so a job array
-    asks for exactly what a worker job asks for: queue, account, cores, memory, walltime and
-    the profile's directives.
-    """
-    arguments = jobqueue_arguments(profile) | {"job_name": job_name}
-    job = _cluster_class(profile).job_cls(scheduler="tcp://unused:0", name=job_name, **arguments)
-    return job.job_header
-
-
-def make_jobqueue_cluster(profile: ClusterProfile):
-    """A started (but not yet scaled) dask-jobqueue cluster for the profile."""
-    return _cluster_class(profile)(**jobqueue_arguments(profile),
-                                   scheduler_options={"dashboard_address": ":0"})
-
-
-def scale(cluster, profile: ClusterProfile) -> None:
-    """Keep the profile's number of worker jobs running, replacing any that end.
-
-    A fixed ``jobs = N`` runs as ``adapt(minimum_jobs=N, maximum_jobs=N)``: dask's adaptive
-    loop notices a worker that is gone and submits a new job in its place, which a plain
-    ``scale(jobs=N)`` does not.
-    """
-    minimum, maximum = profile.adapt if profile.adapt else (profile.jobs, profile.jobs)
-    cluster.adapt(minimum_jobs=minimum, maximum_jobs=maximum)
-
-
-@contextmanager
-def jobqueue_cluster(profile: ClusterProfile) -> Iterator[Any]:
-    """Start the profile's worker jobs, yield the cluster, and cancel every job afterwards."""
-    cluster = make_jobqueue_cluster(profile)
-    try:
-        scale(cluster, profile)
-        yield cluster
-    finally:
-        cluster.close()
+def job_name(profile: ClusterProfile) -> str:
+    """A batch job name from the profile's file name: characters other than letters,
+    digits, ``-`` and ``_`` become ``_`` (the name goes into a header directive, which
+    cannot be quoted)."""
+    return re.sub(r"[^A-Za-z0-9_-]", "_", f"ensemble-{profile.name}")

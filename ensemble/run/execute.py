@@ -61,7 +61,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                  progress: Progress | None = None,
                  member_range: tuple[int, int] | None = None,
                  finish: Callable[[WorkJournal], Path] | None = None,
-                 started: LocalStart | None = None, processes: bool = False) -> Path:
+                 started: LocalStart | None = None, processes: bool = False,
+                 dashboard: str | None = None) -> Path:
     """Run every variant of ``scenario`` and write the result file.
 
     Work in progress lives in ``<path>.partial`` (see
@@ -93,6 +94,8 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         run goes to a local cluster (the caller closes it).
     processes : local workers in processes of their own instead of threads of this one
         (:mod:`ensemble.run.local`).
+    dashboard : where the dashboard of a scheduler the run starts listens (``HOST:PORT``),
+        or None for none (:mod:`ensemble.run.listening`).
 
     Returns
     -------
@@ -119,7 +122,7 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                                                    history), resume=resume, force=force)
     where = Workers(workers if workers is not None else scenario.compute.workers,
                     address if address is not None else scenario.compute.address,
-                    cluster, started, processes)
+                    cluster, started, processes, dashboard)
     if chunk is None:
         chunk = scenario.compute.chunk or default_chunk(
             scenario, models[0].n_states, models[0].n_flow_elements, where.count(),

@@ -21,11 +21,13 @@ from distributed import Client, Future, as_completed
 from ensemble.errors import RunFailed, StoreWriteError
 from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey
-from ensemble.run.clusters import ClusterProfile, jobqueue_cluster
+from ensemble.run.clusters import ClusterProfile
 from ensemble.run.journal import WorkJournal
+from ensemble.run.listening import served_dashboard
 from ensemble.run.local import LocalStart, available_cores
 from ensemble.run.tasks import (ChunkOutput, ChunkSaved, compute_and_save_chunk,
                                 compute_chunk, thread_buffers)
+from ensemble.run.worker_jobs import jobqueue_cluster
 from ensemble.scenario.schema import Scenario
 
 IN_FLIGHT_PER_THREAD = 3
@@ -49,6 +51,8 @@ class Workers:
         (:mod:`ensemble.run.clusters`).
     started : the local cluster, already being started by the caller (who closes it).
     processes : local workers in processes of their own instead of threads.
+    dashboard : where the dashboard of a scheduler the run starts listens (``HOST:PORT``,
+        :mod:`ensemble.run.listening`), or None for no dashboard.
     """
 
     local_count: int | None = None
@@ -56,6 +60,7 @@ class Workers:
     cluster: ClusterProfile | None = None
     started: LocalStart | None = None
     processes: bool = False
+    dashboard: str | None = None
 
     @property
     def in_this_process(self) -> bool:
@@ -76,20 +81,20 @@ class Workers:
 
     def announces_dashboard(self) -> bool:
         """Whether the run prints the address of dask's dashboard: always for a remote
-        scheduler or batch system, for a local cluster only when asked for."""
-        return not self.on_this_machine or (self.started is not None
-                                            and self.started.dashboard)
+        scheduler, for a scheduler the run starts only when asked for."""
+        return self.address is not None or self.dashboard is not None or (
+            self.started is not None and self.started.dashboard is not None)
 
     def client(self) -> AbstractContextManager[Client]:
         """:func:`open_client` for these workers."""
         return open_client(self.local_count, self.address, self.cluster, self.started,
-                           self.processes)
+                           self.processes, self.dashboard)
 
 
 @contextmanager
 def open_client(workers: int | None = None, address: str | None = None,
                 cluster: ClusterProfile | None = None, started: LocalStart | None = None,
-                processes: bool = False) -> Iterator[Client]:
+                processes: bool = False, dashboard: str | None = None) -> Iterator[Client]:
     """A dask.distributed client for the run, closed (with its cluster) on leaving.
 
     Parameters
@@ -104,9 +109,11 @@ def open_client(workers: int | None = None, address: str | None = None,
         instead of starting one (``workers`` is then ignored); on leaving, its closing
         only begins (:meth:`LocalStart.release`): its owner closes it.
     processes : local workers in processes of their own instead of threads.
+    dashboard : where the dashboard of the scheduler started here listens, or None for
+        none (:mod:`ensemble.run.listening`).
     """
     if cluster is not None:
-        with jobqueue_cluster(cluster) as batch, Client(batch) as client:
+        with jobqueue_cluster(cluster, dashboard) as batch, Client(batch) as client:
             yield client
         return
     if address is not None:
@@ -122,7 +129,7 @@ def open_client(workers: int | None = None, address: str | None = None,
         finally:
             started.release()   # its owner waits for the close
         return
-    local = LocalStart(workers, processes)
+    local = LocalStart(workers, processes, dashboard)
     try:
         yield local.client()
     finally:
@@ -131,6 +138,9 @@ def open_client(workers: int | None = None, address: str | None = None,
 
 def dashboard_link(client: Client) -> str | None:
     """The scheduler's dashboard address, or None when it serves none (bokeh missing)."""
+    served = served_dashboard(getattr(client.cluster, "scheduler", None))
+    if served is not None:      # a scheduler of this process: where it is bound
+        return served
     try:
         return client.dashboard_link or None
     except KeyError:  # a remote scheduler without the dashboard service

@@ -14,7 +14,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix, job_header
+from ensemble.run.clusters import ClusterProfile, environment_lines, header_prefix
+from ensemble.run.worker_jobs import job_header
 from ensemble.scenario.schema import Scenario
 
 

@@ -10,8 +10,10 @@ again elsewhere.
 
 :class:`LocalStart` starts the cluster in a background thread before the driver imports
 the rest of the pipeline; worker processes import it themselves as they start
-(:class:`WarmWorker`).  This module imports only dask.distributed and the standard
-library.
+(:class:`WarmWorker`).  Nothing it starts listens beyond the loopback address, and
+dask's web pages are served only when a dashboard is asked for
+(:mod:`ensemble.run.listening`).  This module imports only dask.distributed and the
+standard library.
 """
 
 from __future__ import annotations
@@ -24,10 +26,11 @@ import threading
 from concurrent.futures import Future, ThreadPoolExecutor
 
 import dask
-from distributed import Client, LocalCluster
+from distributed import Client, LocalCluster, Worker
 from distributed.diagnostics.plugin import WorkerPlugin
 
 from ensemble.run.clusters import THREAD_LIMITS
+from ensemble.run.listening import LOOPBACK_ANY_PORT, NO_PAGES
 
 SINGLE_THREAD_ENV = {name: "1" for name in THREAD_LIMITS}
 """Environment of local worker processes: one worker process per core, so BLAS and numba
@@ -71,6 +74,19 @@ class WarmWorker(WorkerPlugin):
             importlib.import_module(module)
 
 
+class LoopbackWorker(Worker):
+    """A worker in the driver's process whose web server listens on the loopback address.
+
+    A thread worker talks to the scheduler in-process and has no network address of its
+    own, from which dask would otherwise take the web server's (it then listens on every
+    interface).
+    """
+
+    def __init__(self, *args, dashboard_address: str | None = None, **kwargs):
+        super().__init__(*args, dashboard_address=dashboard_address or LOOPBACK_ANY_PORT,
+                         **kwargs)
+
+
 class LocalStart:
     """A local cluster and its client, being started in a background thread.
 
@@ -80,31 +96,38 @@ class LocalStart:
         ``processes`` worker processes, each with one thread and single-threaded numerical
         libraries (:data:`SINGLE_THREAD_ENV`).
     processes : workers in processes of their own instead of threads of this one.
-    dashboard : serve dask's dashboard on a free port (its web server and plots take
-        about half a second to start, measured on the test machines: worth it for a run
-        one watches, not for a short one).
+    dashboard : where dask's dashboard listens (``HOST:PORT``, see
+        :func:`ensemble.run.listening.dashboard_at`), or None for no dashboard (its web
+        server and plots take about half a second to start, measured on the test
+        machines: worth it for a run one watches, not for a short one).
     """
 
     def __init__(self, workers: int | None = None, processes: bool = False,
-                 dashboard: bool = False):
+                 dashboard: str | None = None):
         self.dashboard = dashboard
         self._pool = ThreadPoolExecutor(1, "ensemble-local-cluster")
         self._started: Future = self._pool.submit(self._start, workers or available_cores(),
-                                                  processes, ":0" if dashboard else None)
+                                                  processes, dashboard)
         self._closing: Future | None = None
 
     @staticmethod
     def _start(workers: int, processes: bool, dashboard: str | None
                ) -> tuple[LocalCluster, Client]:
+        settings = {} if dashboard is not None else dict(NO_PAGES)
+        scheduler = {"dashboard": dashboard is not None,
+                     "dashboard_address": dashboard or LOOPBACK_ANY_PORT}
         if processes:
-            with dask.config.set(KEEP_FREED_MEMORY):
+            with dask.config.set(settings | KEEP_FREED_MEMORY):
                 cluster = LocalCluster(
                     n_workers=workers, threads_per_worker=1, processes=True,
-                    dashboard_address=dashboard, silence_logs=logging.ERROR,
+                    scheduler_kwargs=scheduler, silence_logs=logging.ERROR,
                     env=dict(SINGLE_THREAD_ENV))
         else:
-            cluster = LocalCluster(n_workers=1, threads_per_worker=workers, processes=False,
-                                   dashboard_address=dashboard, silence_logs=logging.ERROR)
+            with dask.config.set(settings):
+                cluster = LocalCluster(
+                    n_workers=1, threads_per_worker=workers, processes=False,
+                    worker_class=LoopbackWorker, scheduler_kwargs=scheduler,
+                    silence_logs=logging.ERROR)
         try:
             client = Client(cluster)
             if processes:   # thread workers share the driver's imports and signals
