@@ -17,8 +17,8 @@ from types import ModuleType
 import numpy as np
 
 from ensemble.integrate.reference import Trajectory, integrate_fixed
-from ensemble.integrate.refine import (mark_failed_checks, noise_floor, observed_order,
-                                       step_error)
+from ensemble.integrate.refine import (mark_failed_checks, mark_low_orders, noise_floor,
+                                       observed_order, step_error)
 from ensemble.methods import METHODS
 from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkResult
@@ -76,7 +76,8 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
         (computed on every state; NaN when the check is off or a value is non-finite),
         ``observed_order`` (NaN unless ``levels = 3``),
         and the status bits of every run ORed, with STEP_CHECK_FAILED where the step
-        error is above 1 or not finite (members with an impossible start excepted).
+        error is above 1 or not finite (members with an impossible start excepted) or
+        the observed order more than one below the method's.
     """
     integrate = _integrator(backend)
     method = METHODS[solver.method]
@@ -112,6 +113,7 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
             status |= finest.status
             order = observed_order(result.state, refined.state, finest.state, check.refine,
                                    noise_floor(method, solver.newton))
+            mark_low_orders(order, method.order, status)
     if check.enabled:
         mark_failed_checks(error, status)
     return ChunkResult(members=np.asarray(design.member_index),

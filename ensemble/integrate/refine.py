@@ -126,6 +126,20 @@ def noise_floor(method: Method, newton: Newton) -> float:
     return NEWTON_TOL_FACTOR * newton.tol if method.implicit else 0.0
 
 
+ORDER_SLACK = 1.0
+"""An observed order more than this below the method's order fails the step check:
+Richardson's estimate assumes the method's order, and a member that does not reach it
+(the trapezoid rule's -1.3 in a stiff initial layer) has an error the estimate does not
+bound (common practice, no source)."""
+
+
+def mark_low_orders(order: np.ndarray, method_order: int, status: np.ndarray) -> None:
+    """Set STEP_CHECK_FAILED in ``status`` where the observed ``order`` (three levels) is
+    more than :data:`ORDER_SLACK` below ``method_order`` (NaN, at the noise level, is
+    not judged)."""
+    status[order < method_order - ORDER_SLACK] |= STEP_CHECK_FAILED
+
+
 def mark_failed_checks(error: np.ndarray, status: np.ndarray) -> None:
     """Set STEP_CHECK_FAILED in ``status`` where the scaled ``error`` is above 1 or not a
     number, except for members whose drawn start was impossible (never integrated)."""

@@ -29,6 +29,7 @@ from types import MappingProxyType
 from typing import Any
 
 from ensemble.errors import ScenarioError
+from ensemble.methods import METHODS
 from ensemble.scenario.initial import read_initial
 from ensemble.scenario.overrides import apply_overrides
 from ensemble.scenario.parameters import ParameterReader, Resolved
@@ -213,6 +214,52 @@ def scenario_warnings(scenario: Scenario) -> list[str]:
     if not uncertain and n_members > 1 and not any(v.parameters for v in scenario.variants):
         warnings.append(f"no parameter is drawn from a distribution: all {n_members} members "
                         "of a variant are identical")
+    return warnings + _tolerance_warnings(scenario)
+
+
+ATOL_PER_PERSON = 1e-6
+"""The step check's absolute tolerance suggested per person of the smallest group: 0.01
+for a town of 10,000 (the default atol), 1e-6 for a population given as proportions
+(common practice, no source)."""
+
+ATOL_PER_INITIAL = 1e-3
+"""The tolerance suggested at most per person of the smallest initial count given as a
+number, so that it is small against every state it judges (common practice, no source)."""
+
+TOLERANCE_ROOM = 100.0
+"""A tolerance more than this many times its suggestion is warned of."""
+
+
+def suggested_atol(scenario: Scenario) -> float:
+    """The step check's absolute tolerance suggested for the scale of the scenario's
+    states: :data:`ATOL_PER_PERSON` of the smallest group's population, and at most
+    :data:`ATOL_PER_INITIAL` of the smallest positive initial count given as a number."""
+    suggestion = ATOL_PER_PERSON * min(scenario.model.population)
+    counts = [count for value in scenario.model.initial.values()
+              if isinstance(value, (float, tuple))
+              for count in (value if isinstance(value, tuple) else (value,)) if count > 0]
+    if counts:
+        suggestion = min(suggestion, ATOL_PER_INITIAL * min(counts))
+    return suggestion
+
+
+def _tolerance_warnings(scenario: Scenario) -> list[str]:
+    """Tolerances in persons that are not small against the scenario's states (a
+    population of 1, in proportions, with the defaults made for persons)."""
+    suggestion = suggested_atol(scenario)
+    solver = scenario.solver
+    warnings = []
+    if solver.check.enabled and solver.check.atol > TOLERANCE_ROOM * suggestion:
+        warnings.append(f"solver.check.atol = {solver.check.atol:g} is not small against "
+                        f"the states (smallest group {min(scenario.model.population):g} "
+                        "persons): the step check would pass large errors and "
+                        f"state_below_minus_atol miss negative states; use about "
+                        f"{suggestion:.1g}")
+    newton = 1e-3 * suggestion
+    if METHODS[solver.method].implicit and solver.newton.tol > TOLERANCE_ROOM * newton:
+        warnings.append(f"the Newton tolerance {solver.newton.tol:g} is not small against "
+                        "the states: each step of the implicit method may stop that far "
+                        f"from its solution; set solver.newton.tol to about {newton:.1g}")
     return warnings
 
 
