@@ -32,9 +32,9 @@ def result(tmp_path_factory):
 
 
 def _included(status: np.ndarray) -> np.ndarray:
-    """Members behind the quantiles, by the project's reference (result file): neither
-    bit 4 (non-finite) nor bit 8 (impossible start) set."""
-    return (status & 4 == 0) & (status & 8 == 0)
+    """Members behind the quantiles, by the project's reference (result file): those
+    without any status bit."""
+    return status == 0
 
 
 def test_peak_time_is_the_first_time_of_the_maximum():
@@ -86,17 +86,20 @@ def test_flow_count_is_nan_first_and_sums_to_total_flow(result):
 
 def test_trajectory_quantiles_equal_numpy_on_included_members(result):
     """state_quantile and flow_count_quantile: numpy.quantile over the members without
-    the non-finite or impossible-start bits (members 1 and 2 here; member 3's
-    step-check bit does not exclude it)."""
+    any status bit (members 1, 2 and 3 here carry the non-finite, impossible-start and
+    step-check bits), and the members left out counted by bit."""
     dataset, layout = result
     probabilities = dataset["quantile"].values
     for v in range(len(layout.variants)):
         keep = _included(dataset.status.values[v])
-        assert keep.sum() == layout.member_count - 2 and keep[3]
+        assert keep.sum() == layout.member_count - 3 and not keep[1:4].any()
         for name in ("state", "flow_count"):
             expected = np.quantile(dataset[name].values[v][keep], probabilities, axis=0)
             np.testing.assert_array_equal(dataset[f"{name}_quantile"].values[v], expected)
-    np.testing.assert_array_equal(dataset.members_in_summary, [layout.member_count - 2] * 2)
+    np.testing.assert_array_equal(dataset.members_in_summary, [layout.member_count - 3] * 2)
+    # status_bit order: step_check_failed, state_below_minus_atol, non_finite_value,
+    # impossible_drawn_start, newton_not_converged
+    np.testing.assert_array_equal(dataset.members_left_out, [[1, 0, 1, 1, 0]] * 2)
 
 
 @pytest.mark.parametrize("metric", ["peak_value", "peak_time", "flow_peak_value",

@@ -37,7 +37,7 @@ from ensemble.output.variables import (MEMBER_VALUE_NAMES, MEMBER_VALUES, METRIC
                                        TRAJECTORY_NAMES, member_value, metric, trajectory)
 from ensemble.records import STATUS_FLAGS
 
-LABELLED_DIMS = ("variant", "compartment", "flow", "group")
+LABELLED_DIMS = ("variant", "compartment", "flow", "group", "status_bit")
 """Dimensions that carry a string label variable ``<dim>_name``."""
 
 CHUNK_BYTES = 2**20
@@ -131,8 +131,12 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
         return _difference_spec(layout, compared)
     if name == "members_in_summary":
         return VariableSpec(("variant",), np.int32, {
-            "long_name": "number of members behind the quantiles (members without the "
-                         "non-finite or impossible-start status bits)", "units": "1"})
+            "long_name": "number of members behind the quantiles (members without any "
+                         "status bit)", "units": "1"})
+    if name == "members_left_out":
+        return VariableSpec(("variant", "status_bit"), np.int32, {
+            "long_name": "number of members left out of the quantiles that carry each "
+                         "status bit (a member may carry several)", "units": "1"})
     if name in MEMBER_VALUE_NAMES:
         value = member_value(name)
         return VariableSpec(("variant", "member"), np.float64,
@@ -169,7 +173,7 @@ def result_variables(layout: ResultLayout) -> tuple[str, ...]:
              *METRIC_NAMES, *(f"{m}_quantile" for m in METRIC_NAMES)]
     if layout.scenario.output.compare_to:
         names.extend(f"difference_quantile_{m}" for m in METRIC_NAMES)
-    names.append("members_in_summary")
+    names.extend(["members_in_summary", "members_left_out"])
     for value in MEMBER_VALUES:
         names.extend([value.name, f"{value.name}_quantile"] if value.summarised
                      else [value.name])
@@ -191,9 +195,11 @@ def coordinates(layout: ResultLayout) -> dict[str, xr.Variable]:
                             time_attrs(layout)),
     }
     labels = {"variant": layout.variants, "compartment": layout.compartments,
-              "flow": layout.flows, "group": layout.groups}
+              "flow": layout.flows, "group": layout.groups,
+              "status_bit": tuple(word for _, word in STATUS_FLAGS)}
     long_names = {"variant": "scenario variant", "compartment": "model compartment",
-                  "flow": "flow between compartments", "group": "population group"}
+                  "flow": "flow between compartments", "group": "population group",
+                  "status_bit": "member status bit, as in the flag_meanings of status"}
     for dim, values in labels.items():
         if values:
             coords[f"{dim}_name"] = xr.Variable(dim, np.array(values, dtype=object),
@@ -242,7 +248,8 @@ def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> 
     ----------
     layout : the result's layout.
     variables : name -> array; the first two axes are (variant, member) or (variant,
-        quantile), or (variant,) for ``members_in_summary``; then model rows
+        quantile), or (variant,) for ``members_in_summary`` and (variant, status bit)
+        for ``members_left_out``; then model rows
         (``c * n_groups + g``) and/or time as in :func:`variable_spec`.  ``param_<name>``
         of a vector parameter is (variant, member, group).
 

@@ -14,7 +14,7 @@ from collections.abc import Mapping, Sequence
 import numba
 import numpy as np
 
-from ensemble.output.quantiles import in_summary, member_quantiles
+from ensemble.output.quantiles import in_summary, left_out_by_bit, member_quantiles
 from ensemble.output.variables import MEMBER_VALUES, METRIC_NAMES, TRAJECTORIES
 
 
@@ -106,7 +106,8 @@ def member_metrics(trajectories: Mapping[str, np.ndarray],
 def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
                       probabilities: Sequence[float],
                       compare_to: int | None = None) -> dict[str, np.ndarray]:
-    """``members_in_summary``, ``<metric>_quantile``, ``<value>_quantile`` of each
+    """``members_in_summary``, ``members_left_out``, ``<metric>_quantile``,
+    ``<value>_quantile`` of each
     summarised per-member value and (with ``compare_to``)
     ``difference_quantile_<metric>`` (the project's reference,
     ``ensemble/scenario/reference.md``, result file).
@@ -122,12 +123,13 @@ def summary_quantiles(per_member: Mapping[str, np.ndarray], status: np.ndarray,
 
     Returns
     -------
-    name -> (variant,) int32 counts, (variant, quantile) or (variant, quantile, rows)
-    quantiles.
+    name -> (variant,) and (variant, status bit) int32 counts, (variant, quantile) or
+    (variant, quantile, rows) quantiles.
     """
     included = in_summary(status)
     result: dict[str, np.ndarray] = {
-        "members_in_summary": included.sum(axis=1).astype(np.int32)}
+        "members_in_summary": included.sum(axis=1).astype(np.int32),
+        "members_left_out": left_out_by_bit(status).astype(np.int32)}
     n_variants = included.shape[0]
     for value in MEMBER_VALUES:
         if value.summarised:

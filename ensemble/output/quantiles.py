@@ -3,8 +3,16 @@
 Quantiles use numpy's default definition (linear interpolation between order
 statistics: Hyndman and Fan 1996, "Sample quantiles in statistical packages", The
 American Statistician 50(4), definition 7), so they are the same numbers whatever the
-order or grouping in which members arrive.  Members whose trajectories are not finite or
-whose drawn start was impossible are left out of every quantile.
+order or grouping in which members arrive.
+
+Which members the quantiles rest on: only those without any status bit.  A member whose
+step check failed, that went below zero, whose Newton iteration did not converge, whose
+values stopped being finite or whose drawn start was impossible has numbers the run
+cannot vouch for, and bands that include them can span impossible values (a badly chosen
+step gave bands from -28,910 to 48,845 persons in a population of 48,000).  Such members
+keep their trajectories, metrics and status in the file; the file counts, per variant,
+the members behind the quantiles (``members_in_summary``) and those left out by each bit
+(``members_left_out``), and ``ensemble summary`` prints both.
 """
 
 from __future__ import annotations
@@ -13,16 +21,24 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from ensemble.records import INVALID_START, NON_FINITE
+from ensemble.records import STATUS_FLAGS
 
-EXCLUDED_FROM_SUMMARY = NON_FINITE | INVALID_START
-"""Status bits that keep a member out of the quantiles."""
+EXCLUDED_FROM_SUMMARY = np.bitwise_or.reduce([bit for bit, _ in STATUS_FLAGS])
+"""Status bits that keep a member out of the quantiles: every one of them."""
 
 
 def in_summary(status: np.ndarray) -> np.ndarray:
-    """Boolean mask of the members behind the quantiles: those without the non-finite or
-    invalid-start bits."""
+    """Boolean mask of the members behind the quantiles: those without a status bit."""
     return (np.asarray(status) & EXCLUDED_FROM_SUMMARY) == 0
+
+
+def left_out_by_bit(status: np.ndarray) -> np.ndarray:
+    """Members left out of the quantiles that carry each status bit (in the order of
+    :data:`~ensemble.records.STATUS_FLAGS`; a member may carry several), counted over
+    the last axis of ``status``: shape ``status.shape[:-1] + (bits,)``."""
+    status = np.asarray(status)
+    return np.stack([np.count_nonzero(status & bit, axis=-1) for bit, _ in STATUS_FLAGS],
+                    axis=-1)
 
 
 def quantiles(values: np.ndarray, probabilities: Sequence[float], *, axis: int = 0,

@@ -69,6 +69,20 @@ def _labels(dataset: xr.Dataset, dim: str) -> list[str]:
     return [f"{name}[{group}]" for name in names for group in dataset["group"].values]
 
 
+def _behind_quantiles(part: xr.Dataset) -> str:
+    """How many members of a variant the quantiles rest on, and why the others were
+    left out (the counts of each status bit among them)."""
+    text = f"{int(part['members_in_summary'])} members in the quantiles"
+    if "members_left_out" not in part:      # written before members were left out by bit
+        return text
+    left_out = {str(word): int(count) for word, count in zip(
+        part["status_bit"].values, part["members_left_out"].values) if count}
+    if left_out:
+        reasons = ", ".join(f"{word} {count}" for word, count in left_out.items())
+        text += f"; left out, by status bit: {reasons}"
+    return text
+
+
 def summary_text(dataset: xr.Dataset) -> str:
     """The summary of a result opened by :func:`ensemble.open_result`: per variant, the
     quantiles over members of R0 (by the next-generation matrix), of each compartment's
@@ -78,12 +92,11 @@ def summary_text(dataset: xr.Dataset) -> str:
     whole_days = _whole_days(dataset["time"].values)
     header = ["", "", *(f"q{p:g}" for p in probabilities)]
     lines = [str(dataset.attrs.get("title", "")),
-             f"{dataset.attrs.get('members')} members per variant; quantiles over members "
-             "without the non-finite or impossible-start bits", ""]
+             f"{dataset.attrs.get('members')} members per variant; quantiles over the "
+             "members without any status bit", ""]
     for variant in dataset["variant"].values:
         part = dataset.sel(variant=variant)
-        lines.append(f"variant {variant}: {int(part['members_in_summary'])} members in "
-                     "the quantiles")
+        lines.append(f"variant {variant}: {_behind_quantiles(part)}")
         rows = [header]
         if "basic_reproduction_number_quantile" in part:
             rows.append(["R0", "next generation", *(
