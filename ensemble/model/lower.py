@@ -17,6 +17,7 @@ from ensemble.model.constants import ConstantTrees, lower_constants, time_varyin
 from ensemble.model.derivatives import partial_derivatives
 from ensemble.model.ir import Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef
 from ensemble.model.elements import StateLayout, model_elements
+from ensemble.model.lowering import Reduction
 from ensemble.model.lowering import (ExpressionLowering, Value, Vector, constant_matrix,
                                      fold_sum)
 from ensemble.scenario.schema import Derived, Flow, Parameter, Scenario, Schedule, Variant
@@ -76,6 +77,9 @@ class LoweredModel:
     constants : the values constant in time per member: the parameter slots, the
         schedule values at their knots and the initial counts, as trees of the drawn and
         given values (:mod:`ensemble.model.constants`).
+    reductions : every ``sum`` and matrix-times-vector the rates hold, as lowered
+        (:class:`ensemble.model.lowering.Reduction`), for code generators that loop over
+        groups (:mod:`ensemble.model.grouped`).
     """
 
     compartments: tuple[str, ...]
@@ -94,6 +98,7 @@ class LoweredModel:
     population: np.ndarray
     closed: bool
     constants: ConstantTrees
+    reductions: tuple[Reduction, ...] = ()
 
     @property
     def n_states(self) -> int:
@@ -185,6 +190,7 @@ def lower_model(scenario: Scenario, variant: Variant) -> LoweredModel:
         constants=lower_constants(scenario, variant, lowering.slot_elements,
                                   [(slot.parameter, slot.element)
                                    for slot in lowering.schedule_slots]),
+        reductions=tuple(lowering.reductions),
     )
 
 

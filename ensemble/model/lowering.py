@@ -60,6 +60,18 @@ Value = Union[ScalarNode, Vector, Matrix]
 """A lowered value: a scalar tree, a vector over groups or a matrix."""
 
 
+@dataclass(frozen=True)
+class Reduction:
+    """A sum over groups as it was lowered: ``sum(operand)`` (``matrix`` None, one
+    result) or ``matrix @ operand`` (one result per row).  The lowering keeps a record of
+    each, so that code generators can find them in the trees and loop over the groups
+    instead of over the terms written out (:mod:`ensemble.model.grouped`)."""
+
+    matrix: Matrix | None
+    operand: tuple[ScalarNode, ...]
+    results: tuple[ScalarNode, ...]
+
+
 def constant_matrix(rows: Sequence[Sequence[float]]) -> Matrix:
     """A matrix of numbers from the scenario file; its zero entries are structural."""
     return Matrix(tuple(tuple(Const(float(v)) if v != 0 else None for v in row)
@@ -84,10 +96,15 @@ class ExpressionLowering:
     Parameters
     ----------
     n_groups : the number of groups (1 without groups): the length of every vector.
+
+    Attributes
+    ----------
+    reductions : every ``sum`` and matrix-times-vector lowered so far, in order.
     """
 
     def __init__(self, n_groups: int):
         self.n_groups = n_groups
+        self.reductions: list[Reduction] = []
 
     def name(self, name: str) -> Value:
         """The value a name of the expression stands for."""
@@ -104,7 +121,9 @@ class ExpressionLowering:
         if isinstance(node, Call):
             args = [self.lower(a) for a in node.args]
             if node.function == "sum":
-                return fold_sum(_vector_items(args[0]))
+                total = fold_sum(_vector_items(args[0]))
+                self.reductions.append(Reduction(None, _vector_items(args[0]), (total,)))
+                return total
             if node.function == "diag":
                 return _diagonal(_vector_items(args[0]))
             if node.function == "spectral_radius":
@@ -118,7 +137,9 @@ class ExpressionLowering:
         if node.op == "@":
             if isinstance(right, Matrix):
                 return _matrix_times_matrix(left, right)
-            return _matrix_times_vector(left, right)
+            product = _matrix_times_vector(left, right)
+            self.reductions.append(Reduction(left, right.items, product.items))
+            return product
         op = _BINARY_OPERATIONS[node.op]
         if isinstance(left, Matrix) or isinstance(right, Matrix):
             return _matrix_arithmetic(op, left, right)
