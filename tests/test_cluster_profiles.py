@@ -8,12 +8,16 @@ partition, ``-A`` account, ``-t`` time limit, ``--cpus-per-task``, ``--mem``; PB
 
 from __future__ import annotations
 
+import re
+import sys
 from pathlib import Path
 
 import pytest
 
-from ensemble.run.clusters import ClusterProfile, find_profile, load_profile, resolve_profile
-from ensemble.run.worker_jobs import jobqueue_arguments, make_jobqueue_cluster, worker_lifetime
+from ensemble.run.clusters import (ClusterProfile, find_profile, job_python, load_profile,
+                                   resolve_profile)
+from ensemble.run.worker_jobs import (job_header, jobqueue_arguments, make_jobqueue_cluster,
+                                      worker_lifetime, worker_script)
 from ensemble.errors import ProfileError
 from support import REPO, run_cli, write_scenario
 
@@ -181,3 +185,122 @@ def test_pbs_job_script_carries_the_profile(tmp_path: Path) -> None:
                      "#PBS -l place=scatter", "module load python/3.11"):
         assert expected in lines, expected
     assert any(line.startswith("#PBS -l select=1:ncpus=4:mem=") for line in lines)
+
+
+# ----------------------------------------------------------------------------- hostile values
+
+
+@pytest.mark.parametrize(("line", "key"), [
+    ('interface = "ib0; touch pwned"', "cluster.interface"),
+    ('interface = "ib0 $(id)"', "cluster.interface"),
+    ('interface = "-ib0"', "cluster.interface"),
+    ('interface = "a-name-longer-than-15"', "cluster.interface"),
+    ('queue = "short; touch pwned"', "cluster.queue"),
+    ('queue = "-p evil"', "cluster.queue"),
+    ('queue = "q`id`"', "cluster.queue"),
+    ('account = "proj 42"', "cluster.account"),
+    ('account = "$(id)"', "cluster.account"),
+    ('directives = ["constraint=avx2"]', "cluster.directives[0]"),
+    ('directives = ["--qos=low\\rtouch pwned"]', "cluster.directives[0]"),
+    ('directives = ["--qos=low\\u001b[2J"]', "cluster.directives[0]"),
+    ('setup = ["source a\\rtouch pwned"]', "cluster.setup[0]"),
+    ('setup = ["true", "a\\u0000b"]', "cluster.setup[1]"),
+    ('setup = ["echo \\u0085"]', "cluster.setup[0]"),
+    ('python = "python3\\ntouch pwned"', "cluster.python"),
+    ('memory = "1e400GB"', "cluster.memory"),
+    ('memory = "16"', "cluster.memory"),
+    ('memory = "0GB"', "cluster.memory"),
+    ('memory = "2000TB"', "cluster.memory"),
+    ('walltime = "\uff10\uff11:00:00"', "cluster.walltime"),    # fullwidth digits
+])
+def test_profile_values_are_checked_by_what_they_are(tmp_path: Path, line: str,
+                                                     key: str) -> None:
+    """Each value that reaches a job script is refused unless it is what its key says:
+    an interface name (Linux: at most 15 characters), a queue or account name, one
+    option line, one shell line, a size with a unit."""
+    name = line.split(" = ")[0]
+    kept = [old for old in SLURM_PROFILE.splitlines() if not old.startswith(f"{name} =")]
+    path = write(tmp_path, "hostile.toml", "\n".join([*kept, line]) + "\n")
+    with pytest.raises(ProfileError) as caught:
+        load_profile(path)
+    assert key in {e.key for e in getattr(caught.value, "errors", [caught.value])}, \
+        str(caught.value)
+
+
+@pytest.mark.parametrize("line", ['queue = "compute,debug"', 'queue = "workq@pbs-server"',
+                                  'interface = "ib0"', 'interface = "enp3s0f1.100"',
+                                  'directives = ["-l place=free"]', 'memory = "16 GB"',
+                                  'memory = "1.5G"', 'python = "/opt/my envs/bin/python3"'])
+def test_ordinary_profile_values_are_accepted(tmp_path: Path, line: str) -> None:
+    name = line.split(" = ")[0]
+    kept = [old for old in SLURM_PROFILE.splitlines() if not old.startswith(f"{name} =")]
+    load_profile(write(tmp_path, "site.toml", "\n".join([*kept, line]) + "\n"))
+
+
+# ----------------------------------------------------------------------------- memory units
+
+SLURM_UNITS = {"K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
+"""sbatch(1), --mem: "Different units can be specified using the suffix [K|M|G|T]"; SLURM
+counts them in powers of 1024 (a megabyte of --mem is 1,048,576 bytes)."""
+
+PBS_UNITS = {"b": 1, "kb": 2**10, "mb": 2**20, "gb": 2**30, "tb": 2**40}
+"""PBS Professional Reference Guide, "size" format: suffixes b, kb, mb, gb, tb, "1kb =
+1024 bytes"."""
+
+
+def slurm_bytes(header: str) -> int:
+    number, unit = re.fullmatch(r"(\d+)([KMGT])", re.search(r"--mem=(\S+)", header)[1]).groups()
+    return int(number) * SLURM_UNITS[unit]
+
+
+def pbs_bytes(header: str) -> int:
+    number, unit = re.fullmatch(r"(\d+)(b|kb|mb|gb|tb)",
+                                re.search(r":mem=(\S+)", header)[1]).groups()
+    return int(number) * PBS_UNITS[unit]
+
+
+@pytest.mark.parametrize(("memory", "size"), [
+    ("8GB", 8 * 2**30), ("8G", 8 * 2**30), ("8GiB", 8 * 2**30), ("16gb", 16 * 2**30),
+    ("1.5GB", 3 * 2**29), ("4000M", 4000 * 2**20),
+    ("7.45GB", 7999376589),         # 7.45 x 2^30 = 7,999,376,588.8 bytes, rounded up
+    ("2T", 2 * 2**40), ("1536KB", 1536 * 2**10), ("1048577B", 1048577)])
+def test_slurm_and_pbs_are_asked_for_the_same_bytes(tmp_path: Path, memory: str,
+                                                     size: int) -> None:
+    """One convention, K, M, G and T powers of 1024 as both batch systems read them: the
+    same profile gives SLURM's --mem and PBS's mem= the same bytes (the requested size,
+    rounded up to a whole KiB at most)."""
+    slurm = load_profile(write(tmp_path, "slurm.toml",
+                               SLURM_PROFILE.replace('"8GB"', f'"{memory}"')))
+    pbs = load_profile(write(tmp_path, "pbs.toml", SLURM_PROFILE.replace(
+        '"8GB"', f'"{memory}"').replace('"slurm"', '"pbs"').replace(
+        '["--constraint=skylake", "--qos=low"]', "[]")))
+    assert slurm.memory_bytes == pbs.memory_bytes == size
+    asked = slurm_bytes(job_header(slurm, "x"))
+    assert asked == pbs_bytes(job_header(pbs, "x"))
+    assert size <= asked < size + 1024
+
+
+def test_eight_gigabytes_is_eight_gibibytes_on_both_systems(tmp_path: Path) -> None:
+    profile = load_profile(write(tmp_path, "site.toml", SLURM_PROFILE))   # memory = "8GB"
+    assert "#SBATCH --mem=8G" in job_header(profile, "x").splitlines()
+    pbs = load_profile(write(tmp_path, "pbs.toml", SLURM_PROFILE.replace('"slurm"', '"pbs"')))
+    assert "#PBS -l select=1:ncpus=4:mem=8gb" in job_header(pbs, "x").splitlines()
+
+
+# ----------------------------------------------------------------------------- the jobs' Python
+
+
+def test_jobs_run_the_python_the_profile_chooses(tmp_path: Path) -> None:
+    with_setup = load_profile(write(tmp_path, "a.toml", SLURM_PROFILE))
+    assert job_python(with_setup) == "python3"         # from the PATH the setup makes
+    without = load_profile(write(tmp_path, "b.toml", SLURM_PROFILE.replace(
+        'setup = ["module load python/3.11", "source /opt/venvs/ens/bin/activate"]',
+        "setup = []")))
+    assert job_python(without) == sys.executable       # this machine's
+    chosen = load_profile(write(tmp_path, "c.toml",
+                                SLURM_PROFILE + 'python = "/opt/my envs/bin/python3"\n'))
+    assert job_python(chosen) == "/opt/my envs/bin/python3"
+    script = worker_script(chosen).splitlines()
+    worker = next(line for line in script if "distributed.cli.dask_worker" in line)
+    assert worker.startswith("'/opt/my envs/bin/python3' -m distributed.cli.dask_worker ")
+    assert "# Python: /opt/my envs/bin/python3 (the profile's python)" in script

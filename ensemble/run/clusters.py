@@ -46,8 +46,9 @@ _QUEUE_NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.,@+:-]{0,127}")
 """A partition, queue or account name: letters, digits and ``_ . , @ + : -``, not starting
 with ``-`` (it would read as an option); SLURM's comma separates partitions, PBS's ``@``
 names a server."""
-_INTERFACE = re.compile(r"[A-Za-z0-9_.:-]{1,15}")
-"""A network interface name as Linux allows it (at most 15 characters)."""
+_INTERFACE = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.:-]{0,14}")
+"""A network interface name (at most 15 characters, as Linux allows), not starting with
+``-``."""
 
 MEMORY_UNITS = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
 """Memory units of a profile: powers of 1024, as SLURM (``--mem``) and PBS (``mem=``)
