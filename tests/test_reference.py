@@ -111,6 +111,20 @@ compare_to = "usual"
 
 [compute]
 chunk = 2
+
+[[measures]]
+name = "sick"
+of = "I"
+groups = "each"
+threshold = 5
+units = "1"
+description = "infectious persons"
+
+[[measures]]
+name = "infections"
+of = "infection"
+groups = ["old"]
+window = 2
 """
 
 SCENARIOS = sorted((REPO / "scenarios").glob("*.toml"))
@@ -309,10 +323,18 @@ def result_file(tmp_path_factory: pytest.TempPathFactory) -> ResultFile:
                    progress=False, backend="numpy")
     with netCDF4.Dataset(path) as nc:
         return ResultFile(
-            dimensions=set(nc.dimensions),
-            variables={re.sub(r"^param_.+", "param_<name>", name) for name in nc.variables},
+            dimensions={_general(name) for name in nc.dimensions},
+            variables={_general(re.sub(r"^param_.+", "param_<name>", name))
+                       for name in nc.variables},
             variable_attributes={a for v in nc.variables.values() for a in v.ncattrs()},
             global_attributes=set(nc.ncattrs()))
+
+
+def _general(name: str) -> str:
+    """A name of the result with a measure's name and a window's length as the
+    reference writes them (``measure_<name>_quantile``, ``time_<window>d``)."""
+    name = re.sub(r"^measure_(sick|infections)", "measure_<name>", name)
+    return re.sub(r"^time_\d+d", "time_<window>d", name)
 
 
 def test_every_dimension_of_the_result_is_documented(result_file, documented) -> None:

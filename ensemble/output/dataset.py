@@ -33,6 +33,8 @@ import xarray as xr
 
 from ensemble.about import CAUTION
 from ensemble.output.layout import ResultLayout
+from ensemble.output.measure_results import (file_values, find_variable,
+                                             measure_coordinates, measure_variables)
 from ensemble.output.variables import (MEMBER_VALUE_NAMES, MEMBER_VALUES, METRIC_NAMES,
                                        TRAJECTORY_NAMES, member_value, metric, trajectory)
 from ensemble.records import STATUS_FLAGS
@@ -153,6 +155,9 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
             "long_name": "member status bit flags",
             "flag_masks": np.array(masks, dtype=np.uint8),
             "flag_meanings": " ".join(meanings)})
+    measured = find_variable(layout, name, time_attrs(layout))
+    if measured is not None:
+        return VariableSpec(measured.dims, measured.dtype, dict(measured.attrs))
     if name.startswith("param_") and name.removeprefix("param_") in layout.parameters:
         parameter = name.removeprefix("param_")
         info = layout.parameters[parameter]
@@ -178,6 +183,7 @@ def result_variables(layout: ResultLayout) -> tuple[str, ...]:
         names.extend([value.name, f"{value.name}_quantile"] if value.summarised
                      else [value.name])
     names.append("status")
+    names.extend(v.name for v in measure_variables(layout, time_attrs(layout)))
     return tuple(names)
 
 
@@ -204,6 +210,12 @@ def coordinates(layout: ResultLayout) -> dict[str, xr.Variable]:
         if values:
             coords[f"{dim}_name"] = xr.Variable(dim, np.array(values, dtype=object),
                                                 {"long_name": long_names[dim]})
+    coords["variant_title"] = xr.Variable("variant", np.array(
+        [v.title or v.name for v in layout.scenario.variants], dtype=object),
+        {"long_name": "title of the scenario variant (its name when it has none)"})
+    for name, (dims, values, attrs) in measure_coordinates(layout,
+                                                           time_attrs(layout)).items():
+        coords[name] = xr.Variable(dims, values, attrs)
     return coords
 
 
@@ -235,6 +247,9 @@ def file_shape(layout: ResultLayout, name: str, array: np.ndarray) -> np.ndarray
 
     The first two axes (variant and member or quantile) keep their lengths, so a chunk
     of members reshapes as well as the whole ensemble."""
+    measured = find_variable(layout, name, time_attrs(layout))
+    if measured is not None:
+        return file_values(measured, array)
     sizes = {"time": layout.n_reports, "group": layout.n_groups,
              **{dim: len(layout.labels(dim)) for dim in ("compartment", "flow")}}
     trailing = tuple(sizes[d] for d in variable_spec(layout, name).dims[2:])

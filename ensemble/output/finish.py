@@ -24,6 +24,7 @@ from ensemble.output.brackets import BracketCache
 from ensemble.output.candidates import (candidate_parts, cells_per_block, reusable,
                                         summed_counts)
 from ensemble.output.layout import ResultLayout
+from ensemble.output.measure_results import finish_measures
 from ensemble.output.metrics import summary_quantiles
 from ensemble.output.quantiles import quantiles
 from ensemble.output.sources import MemberSource
@@ -82,7 +83,8 @@ class Finisher:
     def member_variables(self) -> dict[str, np.ndarray]:
         """Every per-member array of every chunk as (variant, member, ...) arrays, with
         ``members_in_summary`` and the quantiles of the metrics and of their
-        differences (:func:`.metrics.summary_quantiles`)."""
+        differences (:func:`.metrics.summary_quantiles`), and the measures' summaries
+        (:func:`.measure_results.finish_measures`)."""
         layout = self.layout
         gathered: dict[str, np.ndarray] = {}
         for key in self.keys:
@@ -96,6 +98,7 @@ class Finisher:
         gathered.update(summary_quantiles(gathered, gathered["status"],
                                           layout.scenario.output.quantiles,
                                           layout.compare_index))
+        finish_measures(layout, gathered, layout.scenario.output.quantiles)
         return gathered
 
     def trajectories(self, name: str) -> np.ndarray:
@@ -223,4 +226,3 @@ class Finisher:
         chosen = np.concatenate(values, axis=1)[:, included]
         return quantiles(chosen, self.layout.scenario.output.quantiles, axis=1,
                          overwrite_input=True)
-

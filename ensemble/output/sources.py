@@ -19,6 +19,7 @@ from typing import Protocol
 import numpy as np
 
 from ensemble.output.layout import ResultLayout
+from ensemble.output.measures import member_measures
 from ensemble.output.metrics import member_metrics
 from ensemble.output.selection import Candidates
 from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
@@ -93,8 +94,8 @@ def chunk_member_arrays(layout: ResultLayout, key: ChunkKey, result: ChunkResult
                         trajectories: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The per-member arrays of a chunk: each of :data:`.variables.MEMBER_VALUES`,
     ``status``, ``param_<name>`` of every reported parameter ((members,) or (members,
-    groups)) and the metrics of its ``trajectories`` (name -> (members, rows,
-    n_reports)).
+    groups)), the metrics of its ``trajectories`` (name -> (members, rows,
+    n_reports)) and every measure's series and metrics (:mod:`.measures`).
 
     Raises
     ------
@@ -115,6 +116,7 @@ def chunk_member_arrays(layout: ResultLayout, key: ChunkKey, result: ChunkResult
                              f"{values.shape}, expected {shape}")
         arrays[f"param_{name}"] = values.T if values.ndim == 2 else values
     arrays.update(member_metrics(trajectories, layout.times))
+    arrays.update(member_measures(layout, trajectories))
     return arrays
 
 

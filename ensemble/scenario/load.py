@@ -31,6 +31,7 @@ from typing import Any
 from ensemble.errors import ScenarioError
 from ensemble.methods import METHODS
 from ensemble.scenario.initial import read_initial
+from ensemble.scenario.measures import read_measures
 from ensemble.scenario.overrides import apply_overrides
 from ensemble.scenario.parameters import ParameterReader, Resolved
 from ensemble.scenario.reader import MISSING, Reader, time_text
@@ -42,7 +43,7 @@ from ensemble.scenario.structure import (MODEL_KEYS, Scope, Structure, read_flow
                                          read_structure)
 
 _TOP_LEVEL = ("scenario", "model", "parameters", "sampling", "variants", "solver", "output",
-              "compute")
+              "compute", "measures")
 
 
 def load_scenario(path: str | Path, *, member_count: int | None = None,
@@ -119,6 +120,11 @@ def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
                             [v.name for v in parts.variants] if parts and parts.variants
                             else None)
     compute = reader.attempt(read_compute, reader, data.get("compute", {}))
+    measures = None
+    if parts is not None and parts.flows is not None and head and solver:
+        measures = reader.attempt(read_measures, reader, data.get("measures", []),
+                                  structure.compartments, structure.groups, parts.flows,
+                                  solver.report_every, head.days)
     reader.raise_collected()
     assert head and solver and structure and parts and parts.complete
     assert output and compute and sampling
@@ -128,7 +134,7 @@ def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
         model=parts.model(structure), parameters=MappingProxyType(parts.resolved.parameters),
         sampling=sampling, variants=parts.variants,  # type: ignore[arg-type]
         solver=solver.solver(structure.population), output=output, compute=compute,
-        source=Source(file, text))
+        source=Source(file, text), measures=measures or ())
 
 
 @dataclass(frozen=True)

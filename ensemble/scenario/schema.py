@@ -263,6 +263,33 @@ class Output:
     compare_to: str | None = None
     compression: int = 4
     show_stages: bool = False
+    pairs: tuple[tuple[str, str], ...] = ()
+
+
+MeasureGroups = Union[Literal["sum", "each"], tuple[str, ...]]
+"""How a measure treats the groups: added up, one row each, or the named groups added."""
+
+
+@dataclass(frozen=True)
+class Measure:
+    """A quantity of the briefing, computed per member from the trajectories
+    (``[[measures]]`` in the project's reference, ``ensemble/scenario/reference.md``).
+
+    ``of`` is an expression over compartments (a stock, reported at each time), or the
+    name of one flow (``flow`` set: persons moved, added up over windows of ``window``
+    days, a whole number of report intervals).  ``groups`` says how groups combine;
+    ``threshold`` asks for the days above it; ``units`` and ``description`` become the
+    result variables' attributes.
+    """
+
+    name: str
+    of: Expression
+    flow: str | None
+    groups: MeasureGroups
+    window: Fraction
+    units: str
+    threshold: float | None = None
+    description: str | None = None
 
 
 @dataclass(frozen=True)
@@ -308,6 +335,7 @@ class Scenario:
     output: Output
     compute: Compute
     source: Source
+    measures: tuple[Measure, ...] = ()
 
     @property
     def n_reports(self) -> int:

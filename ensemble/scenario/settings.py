@@ -139,11 +139,14 @@ def read_output(reader: Reader, value: object, name: str,
     """The ``[output]`` table; ``compare_to`` is checked once the variants are known."""
     path = "output"
     table = reader.table(value, path, ("path", "quantiles", "keep_members", "compare_to",
-                                       "compression", "show_stages"))
+                                       "compression", "show_stages", "pairs"))
     compare_to = None
+    pairs: tuple[tuple[str, str], ...] = ()
     if "compare_to" in table and variant_names is not None:
         compare_to = reader.known(table["compare_to"], variant_names,
                                   key_path(path, "compare_to"), "variant")
+    if "pairs" in table and variant_names is not None:
+        pairs = _pairs(reader, table["pairs"], key_path(path, "pairs"), variant_names)
     return Output(
         path=reader.get(table, path, "path", lambda v, p: _path(reader, v, p),
                         f"results/{name}.nc"),
@@ -153,7 +156,28 @@ def read_output(reader: Reader, value: object, name: str,
         compare_to=compare_to,
         compression=reader.get(table, path, "compression",
                                lambda v, p: reader.integer(v, p, minimum=0, maximum=9), 4),
-        show_stages=reader.get(table, path, "show_stages", reader.boolean, False))
+        show_stages=reader.get(table, path, "show_stages", reader.boolean, False),
+        pairs=pairs)
+
+
+def _pairs(reader: Reader, value: object, path: str, variant_names: list[str]
+           ) -> tuple[tuple[str, str], ...]:
+    """``[[variant, reference], ...]``: each member's measures in the first variant minus
+    the same member's in the second."""
+    if not isinstance(value, list):
+        raise reader.error(path, value, "must be a list of [variant, reference] pairs")
+    pairs = []
+    for i, pair in enumerate(value):
+        where = f"{path}[{i}]"
+        if not isinstance(pair, list) or len(pair) != 2:
+            raise reader.error(where, pair, "must be a pair [variant, reference]")
+        first, second = (reader.known(name, variant_names, f"{where}[{j}]", "variant")
+                         for j, name in enumerate(pair))
+        if first == second:
+            raise reader.error(where, pair, "compares a variant with itself: every "
+                                            "difference would be zero")
+        pairs.append((first, second))
+    return tuple(pairs)
 
 
 def _path(reader: Reader, value: object, path: str) -> str:
