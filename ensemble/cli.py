@@ -37,7 +37,13 @@ def _interrupt(signum: int, frame: object) -> None:
     The interrupt may land inside a call that dask's event loop thread is serving, whose
     clean-up callbacks can then fail and log tracebacks (distributed 2026.8: ``sync``'s
     ``cancel`` reads a name not yet bound); the run is being abandoned, so those logs are
-    silenced and the one-line message stays the only output."""
+    silenced and the one-line message stays the only output.  Integrations running in
+    other threads of this process (dask worker threads) are asked to stop too
+    (:mod:`ensemble.integrate.interrupts`), and the main thread's compiled kernels return
+    between blocks, so the run ends within seconds in every mode."""
+    from ensemble.integrate.interrupts import request_stop
+
+    request_stop()
     logging.getLogger("tornado.application").setLevel(logging.CRITICAL)
     raise KeyboardInterrupt
 
@@ -140,6 +146,8 @@ def _stop_on_signals() -> None:
     """Ctrl-C and SIGTERM interrupt the run (:func:`_interrupt`); dask's own logging is
     kept to errors."""
     import signal
+
+    import ensemble.integrate.interrupts  # noqa: F401  (imported before any signal)
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
     signal.signal(signal.SIGTERM, _interrupt)

@@ -56,7 +56,8 @@ Theta method (theta = 1 backward Euler, 1/2 trapezoid) for step k, from ``y0``:
 After every step a member with a non-finite state gets NON_FINITE and is NaN from then on
 (state and the flow counts of the interval).  At each reported time a state below -atol
 sets BELOW_NEGATIVE_ATOL.  Members with ``design.invalid_start`` get INVALID_START, are
-NaN throughout and are not integrated.
+NaN throughout and are not integrated.  Before every step the run ends if it was asked to
+stop (:func:`ensemble.integrate.interrupts.stop_if_requested`).
 """
 
 from __future__ import annotations
@@ -65,6 +66,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ensemble.integrate.interrupts import stop_if_requested
 from ensemble.methods import Method
 from ensemble.records import (BELOW_NEGATIVE_ATOL, INVALID_START,
                                        NEWTON_NOT_CONVERGED, NON_FINITE)
@@ -367,6 +369,7 @@ def integrate_fixed(model: LoweredModel, design: Design, method: Method, step: f
             if report > 0:
                 interval_flows.fill(0.0)
                 for k in range((report - 1) * steps_per_report, report * steps_per_report):
+                    stop_if_requested()
                     increment = stepper.advance(k, y, dead, status)
                     np.add(interval_flows, increment, out=interval_flows)
                     blown_up = ~np.isfinite(y).all(axis=0) & ~dead

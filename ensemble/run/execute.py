@@ -16,6 +16,7 @@ from contextlib import closing, contextmanager
 from pathlib import Path
 
 from ensemble.errors import RunFailed
+from ensemble.integrate.interrupts import clear_stop_request, request_stop
 from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey
 from ensemble.run.clusters import ClusterProfile
@@ -130,10 +131,14 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     keys = journal.pending(plan_chunks(scenario, chunk, member_range=member_range))
     _import_writer_meanwhile()
     progress.start(len(keys), len(journal.saved()), sum(end - start for _, start, end in keys))
+    clear_stop_request()
     try:
         if keys:
             _compute_and_save(journal, scenario, models, keys, backend, where, progress,
                               candidates=finish is None)   # a part file needs every value
+    except KeyboardInterrupt:
+        request_stop()      # this process's worker threads end their chunks too
+        raise
     except RunFailed as failure:
         raise RunFailed(f"{failure} (finished chunks are kept in {journal.work}; continue "
                         "with --resume)") from failure.__cause__
