@@ -301,8 +301,8 @@ def test_second_process_loads_kernel_from_disk_without_compiling(tmp_path):
         integrate_fixed_compiled(model, design, METHODS["forward-euler"], 0.25, 4, 3,
                                  scenario.solver.newton, 0.01)
         module, _ = KernelCache.for_environment().load(model, METHODS["forward-euler"])
-        print(sum(module.integrate.stats.cache_hits.values()),
-              sum(module.integrate.stats.cache_misses.values()))
+        print(sum(module.integrate_block.stats.cache_hits.values()),
+              sum(module.integrate_block.stats.cache_misses.values()))
     """)
     environment = dict(os.environ, ENSEMBLE_KERNEL_CACHE=str(tmp_path / "kernels"))
 

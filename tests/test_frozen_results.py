@@ -10,6 +10,12 @@ that records when and how a file was made (``history``, ``source``, ``scenario``
 the project itself, not an outside source; the numbers were checked against published
 results by the other tests when they were written.
 
+The compiled backend's floating-point numbers are compared to 1e-12 relative rather than
+bit for bit: its kernels now loop over groups and fill the Newton matrix of the implicit
+methods term by term, which changes the order of some sums (the seasonal file's states
+moved by at most 5e-16 relative).  Its integers (status bits, counts) and every number of
+the numpy backend must stay exactly what they were.
+
 One change of meaning since: the quantiles now rest on the members without any status
 bit, where they used to keep members whose step check failed, that went below minus atol
 or whose Newton iteration did not converge (the policy in the reference's result-file
@@ -74,4 +80,7 @@ def test_numbers_are_those_written_before(tmp_path: Path, name: str, backend: st
                 assert before[variable].dims[0] == "variant", variable
                 kept = unchanged_variants(before, variable, compare_to)
                 old, new = old[kept], new[kept]
-            assert np.array_equal(old, new, equal_nan=old.dtype.kind == "f"), variable
+            if backend == "compiled" and old.dtype.kind == "f":
+                np.testing.assert_allclose(new, old, rtol=1e-12, atol=0, err_msg=variable)
+            else:
+                assert np.array_equal(old, new, equal_nan=old.dtype.kind == "f"), variable

@@ -1,14 +1,18 @@
 """The compiled backend: numba kernels generated for one model and one method.
 
-The modules, from the text of a kernel to running it:
+The modules, from the model to running a kernel:
 
+- :mod:`.form`: the model as a kernel sees it: families of flow elements (one per group,
+  one tree in the group index, :mod:`ensemble.model.grouped`) looped over groups, single
+  elements written out, matrix products looped over their entries; the matrices'
+  numbers and every pattern as data, so the text depends on the model's structure only;
 - :mod:`.blocks`: members per block, the unit every kernel loops over;
 - :mod:`.expressions`: straight-line scalar code of :mod:`ensemble.model.ir` trees;
-- :mod:`.schedules` and :mod:`.rates`: the model's rates at the stages of a step, per
-  member, with the schedule values in force;
+- :mod:`.rates` and :mod:`.schedules`: the model's rates at a stage, in loops over groups
+  with the members innermost, with the schedule values in force;
 - :mod:`.explicit` (Butcher tableaux) and :mod:`.implicit` (theta methods, with
-  :mod:`.newton_matrix` planning the Newton matrix and :mod:`.sparsity` its factors'
-  pattern): one step of a block of members;
+  :mod:`.newton_matrix` planning and filling the Newton matrix and :mod:`.sparsity` its
+  factors' pattern): one step of a block of members;
 - :mod:`.reports`: what is kept at each reported time (trajectories, or the step check's
   comparison);
 - :mod:`.scalars` and :mod:`.block_lu`: plain functions whose source is copied into the

@@ -1,20 +1,37 @@
-"""Members per block: the unit of work of every generated kernel.
+"""Members per block, the unit of work of every generated kernel, and the padding of a
+chunk.
 
 A kernel integrates a chunk block after block, each block's members side by side in the
 SIMD lanes.  The block size depends on the model and the method only, never on the
-chunk, so that every member of a chunk of any size runs through the same code path (the
-caller pads the last block).
+chunk; the last block of a chunk is only as wide as the members left, padded to a whole
+number of :data:`LANES`.
 """
 
 from __future__ import annotations
 
+from ensemble.integrate.kernels.form import KernelForm
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
 
-EXPLICIT_BLOCK = 512
-"""Members per block of an explicit method."""
+LANES = 64
+"""A chunk is padded to a multiple of this many members (or of the block, if smaller).
+Without a vector math library (numba uses Intel's SVML when it is installed) a member
+gets the same bits in a vector lane as in the scalar loop that ends a loop over members;
+with one, a vectorised ``exp`` may differ from the scalar one in the last bit.  Widths
+that are whole multiples of any vector width times unrolling the compiler picks (64 at
+most: 8 lanes of AVX-512 unrolled 8 times) keep every member in the vector body.  Common
+practice, no source."""
 
-BLOCK_BYTES = 1_100_000
+FUSED_BLOCK = 512
+"""Members per block when one pass takes the whole step (every stage in registers)."""
+
+STAGED_BYTES = 512 * 1024
+"""Largest size of a block's arrays when a step is staged over arrays (states, rates of
+every stage, increments, flow counts, sums over groups): a quarter of the L2 cache of one
+core of the machine measured (2 MB), so that the arrays and the parameters they read stay
+in it (measured with scripts/benchmark.py)."""
+
+IMPLICIT_BYTES = 1_100_000
 """Largest size of a block's Newton matrices and right-hand sides (members x n x (n + 1)
 float64): about the L2 cache of one core of the machines measured (1 MB).  On the 16-group
 model (n = 64) that is 32 members; 8 members gave twice the cost per step (measured with
@@ -22,13 +39,30 @@ scripts/benchmark.py)."""
 
 
 def block_size(model: LoweredModel, method: Method) -> int:
-    """Members per block: :data:`EXPLICIT_BLOCK` for explicit methods; for implicit ones as
-    many as keep the block's Newton matrices near :data:`BLOCK_BYTES` (a power of two, 8
-    to 512)."""
-    if not method.implicit:
-        return EXPLICIT_BLOCK
-    per_member = 8 * model.n_states * (model.n_states + 1)
+    """Members per block of the kernel of ``model`` and ``method``
+    (:func:`form_block_size`)."""
+    return form_block_size(KernelForm(model, method))
+
+
+def form_block_size(form: KernelForm) -> int:
+    """Members per block, a power of two from 8 to 512: :data:`FUSED_BLOCK` for a fused
+    explicit step; otherwise as many as keep the block's arrays near
+    :data:`STAGED_BYTES` (explicit) or its Newton matrices near :data:`IMPLICIT_BYTES`."""
+    if form.fused:
+        return FUSED_BLOCK
+    if form.method.implicit:
+        per_member, limit = 8 * form.n_states * (form.n_states + 1), IMPLICIT_BYTES
+    else:
+        rows = (2 * form.n_states + (len(form.method.b) + 2) * form.n_elements
+                + 2 * form.n_groups * len(form.structured)
+                + len(form.method.b) * len(form.model.schedule_slots))
+        per_member, limit = 8 * rows, STAGED_BYTES
     size = 512
-    while size > 8 and size * per_member > BLOCK_BYTES:
+    while size > 8 and size * per_member > limit:
         size //= 2
     return size
+
+
+def padding_unit(block: int) -> int:
+    """Members a chunk is padded to a multiple of, for blocks of ``block`` members."""
+    return min(LANES, block)

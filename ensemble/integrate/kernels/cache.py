@@ -1,11 +1,21 @@
 """Generated kernels on disk, and the modules loaded from them in this process.
 
 The kernel text of a (model, method) is written to ``kernel_<sha256 of the text>.py`` in
-the cache's directory and imported from there, so numba's own ``cache=True`` keeps the
+the cache's directory and imported from there (the text depends on the model's structure
+only, so the variants of a scenario that differ in their values share one file), so numba's own ``cache=True`` keeps the
 machine code next to it: a second process running the same model loads it without
 compiling.  Files are written whole or not at all (:func:`ensemble.durable.replace_atomically`),
 so processes compiling at once never see half a file, and an existing file is never
 rewritten (numba keys its cache on the file's modification time).
+
+A damaged cache is rebuilt, never trusted.  A kernel file is checked against the text it
+should hold before it is imported (its name is the digest of that text; an empty or
+edited file, as a crash or a full disk can leave, is written again).  numba's own files
+of the kernel (``__pycache__/kernel_*.nbi`` and ``.nbc``) that fail to load are deleted
+and the kernel compiled again (:class:`DiscardingCompiledCache`).  When the directory
+cannot be used (a file stands where it should be, or it cannot be written), the process
+keeps its kernels in a temporary directory of its own, removed when it exits.  Each of
+these says so with a :class:`KernelCacheWarning`.
 
 The directory is the one named by ``ENSEMBLE_KERNEL_CACHE``, else
 ``$XDG_CACHE_HOME/ensemble/kernels``, else ``~/.cache/ensemble/kernels``.  A process holds
@@ -15,14 +25,21 @@ remembers the modules it loaded.
 
 from __future__ import annotations
 
+import atexit
 import hashlib
 import importlib.util
 import os
+import shutil
 import sys
+import tempfile
 import threading
+import warnings
 from pathlib import Path
 from types import ModuleType
 from typing import ClassVar
+
+from numba.core.caching import FunctionCache
+from numba.core.dispatcher import Dispatcher
 
 from ensemble.durable import replace_atomically
 from ensemble.integrate.kernels.source import KernelSource
@@ -34,6 +51,10 @@ CACHE_ENVIRONMENT = "ENSEMBLE_KERNEL_CACHE"
 
 RECENT_PAIRS = 16
 """(model, method) pairs whose kernel a cache finds without generating its text again."""
+
+
+class KernelCacheWarning(UserWarning):
+    """The kernel cache was damaged or unusable and is being rebuilt or bypassed."""
 
 
 def cache_directory() -> Path:
@@ -88,13 +109,10 @@ class KernelCache:
         if known is not None and known[0] is model:
             return known[1], known[2]
         source = KernelSource(model, method)
-        path = self.path(source)
         with self._loading:
-            module = self._modules.get(path.stem)
+            module = self._modules.get(self.path(source).stem)
             if module is None:
-                if not path.exists():
-                    replace_atomically(path, lambda temporary: temporary.write_text(
-                        source.text, encoding="utf-8"), suffix=".py")
+                path = self._kernel_file(source)
                 module = self._modules[path.stem] = _import(path)
             if len(self._recent) >= RECENT_PAIRS:
                 self._recent.clear()
@@ -102,10 +120,110 @@ class KernelCache:
         return module, source
 
 
+    def _kernel_file(self, source: KernelSource) -> Path:
+        """The file of a kernel's text, written unless it holds that text already; in a
+        temporary directory from now on when this cache's directory cannot be used."""
+        path = self.path(source)
+        try:
+            return _written(path, source.text)
+        except OSError as error:
+            self.directory = _fallback_directory(self.directory, error)
+            return _written(self.path(source), source.text)
+
+
+def _written(path: Path, text: str) -> Path:
+    """``path``, holding ``text``: written (whole) when it is missing or holds anything
+    else, as a damaged file does."""
+    expected = text.encode("utf-8")
+    try:
+        found = path.read_bytes()
+    except FileNotFoundError:
+        found = None
+    except OSError:
+        found = b""
+    if found == expected:
+        return path
+    if found is not None:
+        warnings.warn(f"the kernel file {path} was damaged ({len(found)} bytes instead of "
+                      f"{len(expected)}, or other bytes); writing it again",
+                      KernelCacheWarning, stacklevel=4)
+    replace_atomically(path, lambda temporary: temporary.write_bytes(expected), suffix=".py")
+    return path
+
+
+_fallback_lock = threading.Lock()
+_fallback: list[Path] = []
+"""The temporary kernel directory of this process, once made (removed at exit)."""
+
+
+def _fallback_directory(unusable: Path, error: OSError) -> Path:
+    """This process's temporary kernel directory, made (with a warning) on first use."""
+    with _fallback_lock:
+        if not _fallback:
+            made = Path(tempfile.mkdtemp(prefix="ensemble-kernels-"))
+            atexit.register(shutil.rmtree, made, ignore_errors=True)
+            _fallback.append(made)
+        reason = error.strerror or str(error)
+        warnings.warn(f"the kernel cache {unusable} cannot be used ({reason}); this process "
+                      f"keeps its kernels in {_fallback[0]} and compiles them again. Set "
+                      f"{CACHE_ENVIRONMENT} to a directory you can write", KernelCacheWarning,
+                      stacklevel=5)
+        return _fallback[0]
+
+
+class DiscardingCompiledCache:
+    """numba's disk cache of one compiled function of a kernel module, which deletes the
+    kernel's cache files when they fail to load (damaged bytes, a truncated file), so
+    that numba compiles the function again and writes them afresh, instead of failing on
+    every run.
+
+    It stands in for the dispatcher's own cache object (``Dispatcher._cache``, which
+    numba's dispatcher calls to load and save compiled code) and hands every call on.
+    """
+
+    def __init__(self, inner: object, stem: str):
+        self.inner = inner
+        self.stem = stem
+
+    @property
+    def cache_path(self) -> str:
+        return self.inner.cache_path
+
+    def load_overload(self, sig: object, target_context: object) -> object | None:
+        try:
+            return self.inner.load_overload(sig, target_context)
+        except Exception as error:      # noqa: BLE001 (any failure to load: rebuild)
+            directory = Path(self.inner.cache_path)
+            for stale in [*directory.glob(f"{self.stem}.*.nbi"),
+                          *directory.glob(f"{self.stem}.*.nbc")]:
+                stale.unlink(missing_ok=True)
+            warnings.warn(f"numba's compiled cache of {self.stem} in {directory} could not "
+                          f"be loaded ({type(error).__name__}: {error}); it was deleted and "
+                          "the kernel is compiled again", KernelCacheWarning, stacklevel=2)
+            return None
+
+    def save_overload(self, sig: object, data: object) -> None:
+        self.inner.save_overload(sig, data)
+
+    def enable(self) -> None:
+        self.inner.enable()
+
+    def disable(self) -> None:
+        self.inner.disable()
+
+    def flush(self) -> None:
+        self.inner.flush()
+
+
 def _import(path: Path) -> ModuleType:
-    """Import the kernel file ``path`` as ``ensemble_kernels.<its stem>``."""
+    """Import the kernel file ``path`` as ``ensemble_kernels.<its stem>``, its compiled
+    functions' disk caches wrapped in :class:`DiscardingCompiledCache`."""
     spec = importlib.util.spec_from_file_location(f"ensemble_kernels.{path.stem}", path)
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module
     spec.loader.exec_module(module)
+    for value in vars(module).values():
+        inner = getattr(value, "_cache", None)
+        if isinstance(value, Dispatcher) and isinstance(inner, FunctionCache):
+            value._cache = DiscardingCompiledCache(inner, path.stem)
     return module

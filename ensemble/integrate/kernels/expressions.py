@@ -13,6 +13,7 @@ import math
 from collections.abc import Callable, Iterable
 
 from ensemble.integrate.kernels.scalars import OPERATION_HELPERS
+from ensemble.model.grouped import GroupParam, GroupSchedule, GroupState
 from ensemble.model.ir import (Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef,
                                TimeRef, walk)
 
@@ -56,6 +57,16 @@ def weighted_sum(weights: list[float], names: list[str]) -> str | None:
     return " + ".join(terms) if terms else None
 
 
+_LEAF_READS: dict[type, frozenset[str]] = {
+    StateRef: frozenset({"state"}), GroupState: frozenset({"state", "group"}),
+    ParamRef: frozenset({"param"}), GroupParam: frozenset({"param", "group"}),
+    ScheduleRef: frozenset({"schedule"}), GroupSchedule: frozenset({"schedule", "group"}),
+    TimeRef: frozenset({"time"}), Const: frozenset(),
+}
+"""What each kind of leaf reads; a sum over groups (:data:`ensemble.model.grouped.STRUCTURED`)
+reads the state, at the group at hand."""
+
+
 class ExpressionWriter:
     """Straight-line code for rate trees, each distinct subtree computed once; remembers
     what each subtree reads, so that code can be hoisted out of the loops it does not
@@ -65,7 +76,8 @@ class ExpressionWriter:
         self._depends: dict[ScalarNode, frozenset[str]] = {}
 
     def depends(self, node: ScalarNode) -> frozenset[str]:
-        """What ``node`` reads: a subset of {"state", "param", "schedule", "time"}."""
+        """What ``node`` reads: a subset of {"state", "param", "schedule", "time",
+        "group"} ("group": the group at hand, :mod:`ensemble.model.grouped`)."""
         known = self._depends.get(node)
         if known is not None:
             return known
@@ -76,30 +88,15 @@ class ExpressionWriter:
 
     def _reads(self, node: ScalarNode) -> frozenset[str]:
         """What ``node`` reads, its arguments' already known."""
-        if isinstance(node, StateRef):
-            return frozenset({"state"})
-        if isinstance(node, ParamRef):
-            return frozenset({"param"})
-        if isinstance(node, ScheduleRef):
-            return frozenset({"schedule"})
-        if isinstance(node, TimeRef):
-            return frozenset({"time"})
-        if isinstance(node, Const):
-            return frozenset()
-        return frozenset().union(*(self._depends[a] for a in node.args))
+        if isinstance(node, Apply):
+            return frozenset().union(*(self._depends[a] for a in node.args))
+        return _LEAF_READS.get(type(node), frozenset({"state", "group"}))
 
-    def split(self, roots: list[ScalarNode]) -> tuple[list[ScalarNode], list[ScalarNode]]:
-        """Subtrees of the roots that read time only, and that read parameters only."""
-        time_only, param_only = [], []
-        for node in walk(*roots):
-            if not isinstance(node, Apply):
-                continue
-            kinds = self.depends(node)
-            if kinds == {"time"}:
-                time_only.append(node)
-            elif kinds == {"param"}:
-                param_only.append(node)
-        return time_only, param_only
+    def time_only(self, roots: list[ScalarNode]) -> list[ScalarNode]:
+        """Subtrees of the roots that read the time and nothing else (the same for every
+        member and group: computed once per stage)."""
+        return [node for node in walk(*roots)
+                if isinstance(node, Apply) and self.depends(node) == {"time"}]
 
     def emit(self, roots: Iterable[ScalarNode], names: dict[ScalarNode, str], prefix: str,
              lines: list[str], leaf: Callable[[ScalarNode], str]) -> list[str]:

@@ -6,23 +6,29 @@ round-off), from the kernel of the (model, method) (:mod:`.source`, cached by
 :mod:`.cache`); :func:`step_error_compiled` runs the step check's refined run and compares
 it as it goes.
 
-Threads.  The kernel spreads blocks of members over numba's threads.  A process that runs
-chunks alone should use every core (the default); a worker that shares the machine with
-others (a dask worker thread or process) should use one thread: call
-:func:`set_kernel_threads` with 1 in it (or start it with ``NUMBA_NUM_THREADS=1``) so
-that workers times threads never exceeds the cores.  With one thread the kernel's serial
-driver runs the blocks in the calling thread without holding the GIL and without numba's
-threading layer, so several threads of one process may integrate at once.
+Threads.  The kernel integrates one block of members per call, without holding the GIL;
+the blocks of a chunk run one after another in the calling thread, or side by side on a
+small pool of threads.  A process that runs chunks alone should use every core (the
+default); a worker that shares the machine with others (a dask worker thread or process)
+should use one thread: call :func:`set_kernel_threads` with 1 in it (or start it with
+``NUMBA_NUM_THREADS=1``) so that workers times threads never exceeds the cores.  Several
+threads of one process may integrate at once.
 """
 
 from __future__ import annotations
 
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from types import ModuleType
 
 import numba
 import numpy as np
 
+from ensemble.integrate.kernels.blocks import padding_unit
 from ensemble.integrate.kernels.cache import KernelCache
+from ensemble.integrate.kernels.schedules import schedule_arrays
+from ensemble.integrate.kernels.source import KernelSource
 from ensemble.integrate.reference import Trajectory
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
@@ -34,15 +40,33 @@ __all__ = ["ReportBuffers", "integrate_fixed_compiled", "kernel_threads",
            "set_kernel_threads", "step_error_compiled"]
 
 
+_settings = threading.local()
+"""Each thread's number of kernel threads (:func:`set_kernel_threads`)."""
+
+_pool: ThreadPoolExecutor | None = None
+_pool_lock = threading.Lock()
+
+
 def set_kernel_threads(count: int) -> None:
-    """Use ``count`` threads in compiled kernels of this process (1 in a dask worker
-    process that shares the machine with others; all cores for a single-process run)."""
-    numba.set_num_threads(max(1, min(int(count), numba.config.NUMBA_NUM_THREADS)))
+    """Use ``count`` threads for the compiled kernels this thread runs (1 in a dask
+    worker that shares the machine with others; all cores, the default, for a
+    single-process run); at most ``NUMBA_NUM_THREADS`` (numba's count of the cores)."""
+    _settings.threads = max(1, min(int(count), numba.config.NUMBA_NUM_THREADS))
 
 
 def kernel_threads() -> int:
-    """Threads compiled kernels of this process use."""
-    return numba.get_num_threads()
+    """Threads the compiled kernels this thread runs use."""
+    return getattr(_settings, "threads", numba.config.NUMBA_NUM_THREADS)
+
+
+def _shared_pool() -> ThreadPoolExecutor:
+    """The process's threads for blocks of members, made on first use."""
+    global _pool
+    with _pool_lock:
+        if _pool is None:
+            _pool = ThreadPoolExecutor(max_workers=numba.config.NUMBA_NUM_THREADS,
+                                       thread_name_prefix="ensemble-kernel")
+        return _pool
 
 
 class ReportBuffers:
@@ -84,9 +108,10 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
     """Integrate every member of ``design`` with ``method`` at a fixed ``step``, as
     :func:`ensemble.integrate.reference.integrate_fixed` does, in a generated kernel.
 
-    Members are padded to whole blocks with copies of a valid member (members with an
-    impossible drawn start are replaced the same way and reported as NaN with
-    ``INVALID_START``), so every member runs through the same vectorised code.
+    Members are padded to whole vectors (:data:`.blocks.LANES`) with copies of a valid
+    member (members with an impossible drawn start are replaced the same way and reported
+    as NaN with ``INVALID_START``), so every member runs through the same vectorised
+    code.
     ``buffers`` (a :class:`ReportBuffers` and a slot name) gives the output arrays to
     write into instead of new ones.  The kernel comes from the cache the environment
     names (:meth:`.cache.KernelCache.for_environment`).
@@ -97,7 +122,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
         ``state`` and ``flow_count`` are (M, rows, n_reports) views of report-major
         arrays (the layout the kernel writes fastest); copy them where contiguity matters.
     """
-    module, padded = _kernel_and_padding(model, method, design)
+    module, source, padded = _kernel_and_padding(model, method, design)
     n_members = design.member_index.shape[0]
     if buffers is None:
         state = np.empty((n_reports, model.n_states, padded))
@@ -106,7 +131,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
     else:
         state, flow_count, status = buffers[0].arrays(
             buffers[1], n_reports, model.n_states, model.n_flow_elements, padded)
-    invalid = _launch(module, model, design, step, steps_per_report, n_reports, newton,
+    invalid = _launch(module, source, design, step, steps_per_report, n_reports, newton,
                       atol, padded, status, (state, flow_count))
     if invalid.any():
         state[:, :, :n_members][:, :, invalid] = np.nan
@@ -139,12 +164,12 @@ def step_error_compiled(model: LoweredModel, design: Design, method: Method, ste
     (error, status) : (M,) scaled Richardson estimates (NaN for a member with a non-finite
         value in either run) and the refined run's status bits.
     """
-    module, padded = _kernel_and_padding(model, method, design)
+    module, source, padded = _kernel_and_padding(model, method, design)
     n_members = design.member_index.shape[0]
     reference = np.ascontiguousarray(coarse.transpose(2, 1, 0))
     error = np.empty(padded)
     status = np.empty(padded, np.uint8)
-    invalid = _launch(module, model, design, step, steps_per_report, n_reports, newton,
+    invalid = _launch(module, source, design, step, steps_per_report, n_reports, newton,
                       atol, padded, status, None,
                       (reference, rtol, 1.0 - float(refine) ** -order, error))
     error = error[:n_members]
@@ -153,10 +178,12 @@ def step_error_compiled(model: LoweredModel, design: Design, method: Method, ste
 
 
 def _kernel_and_padding(model: LoweredModel, method: Method, design: Design
-                        ) -> tuple[ModuleType, int]:
-    """The kernel module, and the members of ``design`` padded to whole blocks."""
+                        ) -> tuple[ModuleType, KernelSource, int]:
+    """The kernel module and its source, and the members of ``design`` padded to whole
+    vectors (:func:`.blocks.padding_unit`)."""
     module, source = KernelCache.for_environment().load(model, method)
-    return module, max(1, -(-design.member_index.shape[0] // source.block)) * source.block
+    unit = padding_unit(source.block)
+    return module, source, max(1, -(-design.member_index.shape[0] // unit)) * unit
 
 
 def _columns(array: np.ndarray, columns: np.ndarray | None) -> np.ndarray:
@@ -178,20 +205,23 @@ def _padding_columns(valid: np.ndarray, padded: int) -> np.ndarray | None:
     return member_index
 
 
-def _schedule_arguments(model: LoweredModel, design: Design, step: float,
-                        columns: np.ndarray | None) -> list[np.ndarray]:
-    """The kernel's ``days_i, values_i`` of every schedule slot: the knots' step indices
-    (``rint(day / h)``) of a "step" slot, or their days of a "linear" one, and the
-    members' values in the kernel's columns."""
-    arrays: list[np.ndarray] = []
-    for slot, values in zip(model.schedule_slots, design.schedule_values):
-        knots = (np.rint(slot.days / step).astype(np.int64) if slot.between == "step"
-                 else np.ascontiguousarray(slot.days, dtype=np.float64))
-        arrays += [knots, _columns(values, columns)]
-    return arrays
+def _run_blocks(kernel: Callable[..., None], first: int, end: int, block: int,
+                threads: int, arguments: tuple) -> None:
+    """Integrate members ``first .. end - 1`` block by block: in this thread, or with
+    ``threads`` > 1 the blocks side by side on the shared pool (each block writes its own
+    members' columns, so the order does not matter)."""
+    starts = range(first, end, block)
+    if threads == 1 or len(starts) == 1:
+        for m0 in starts:
+            kernel(m0, min(block, end - m0), *arguments)
+        return
+    pool = _shared_pool()
+    for running in [pool.submit(kernel, m0, min(block, end - m0), *arguments)
+                    for m0 in starts]:
+        running.result()
 
 
-def _launch(module: ModuleType, model: LoweredModel, design: Design, step: float,
+def _launch(module: ModuleType, source: KernelSource, design: Design, step: float,
             steps_per_report: int, n_reports: int, newton: Newton, atol: float,
             padded: int, status: np.ndarray,
             outputs: tuple[np.ndarray, np.ndarray] | None,
@@ -214,11 +244,14 @@ def _launch(module: ModuleType, model: LoweredModel, design: Design, step: float
         state, flow_count = outputs if outputs is not None else (_NO_REPORTS, _NO_REPORTS)
         reference, rtol, gain, error = (compare if compare is not None
                                         else (_NO_REPORTS, 0.0, 1.0, _NO_MEMBERS))
-        kernel = module.integrate if kernel_threads() > 1 else module.integrate_serial
-        kernel(_columns(design.initial, columns), _columns(design.parameters, columns),
-               *_schedule_arguments(model, design, step, columns), float(step),
-               int(steps_per_report), int(n_reports), float(atol), float(newton.tol),
-               int(newton.max_iter), state, flow_count, status, compare is not None,
-               reference, float(rtol), float(gain), error)
+        threads = kernel_threads()
+        arguments = (_columns(design.initial, columns), _columns(design.parameters, columns),
+                     *schedule_arrays(source.model.schedule_slots, design.schedule_values,
+                                      step, columns),
+                     *source.data, float(step), int(steps_per_report), int(n_reports),
+                     float(atol), float(newton.tol), int(newton.max_iter), state,
+                     flow_count, status, compare is not None, reference, float(rtol),
+                     float(gain), error)
+        _run_blocks(module.integrate_block, 0, padded, source.block, threads, arguments)
     status[:design.member_index.shape[0]][invalid] = INVALID_START
     return invalid

@@ -1,14 +1,25 @@
-"""Scalar functions whose source is copied into every kernel.
+"""Plain functions whose source is copied into every kernel.
 
 They are plain Python, so the tests can run them as they are; :mod:`.source` copies their
 text into the kernel module under numba's ``njit``.  The first three give the operations
 ``min``, ``max`` and ``sign`` of :mod:`ensemble.model.ir` numpy's NaN rules
 (:data:`ensemble.model.ir.OPERATION_MEANINGS`) and are inlined where they are called; the
-last two find the schedule value in force, by the rules of the numpy reference
-(:mod:`ensemble.integrate.reference`, "Schedules").
+others work between a kernel's loops over members, on data rather than on the model's
+trees: the schedule values in force (the rules of the numpy reference,
+:mod:`ensemble.integrate.reference`, "Schedules"), the state update ``y (+) S inc``, and
+the members that stopped being finite.
 """
 
 from __future__ import annotations
+
+import math
+
+INLINED = "@njit(inline='always', error_model='numpy')"
+"""The decorator of the scalar operations: inlined where they are called."""
+
+COMPILED = "@njit(error_model='numpy', boundscheck=False)"
+"""The decorator of every other function of a kernel: compiled on its own (numba's
+inlining of large functions costs more compile time than it saves, measured)."""
 
 
 def _min(a, b):
@@ -43,25 +54,86 @@ OPERATION_HELPERS = {"min": _min, "max": _max, "sign": _sign}
 operation's name (the call is the function's name)."""
 
 
-def step_value_index(knot_steps, k):
-    """Index of the knot in force during step ``k`` under ``between = "step"``: the last
-    knot whose step index (``rint(day / h)``) is <= k, the first before the first knot."""
-    index = 0
-    for j in range(1, knot_steps.shape[0]):
-        if knot_steps[j] <= k:
-            index = j
-    return index
+def schedule_values(out, stage, step, time, knot_steps, knot_days, slot_knots, slot_linear,
+                    knot_values, m0, width):
+    """Write into ``out[stage, i, b]`` the value in force of every schedule slot i at a
+    stage at ``time`` of step ``step``, for members ``m0 .. m0 + width - 1``.
+
+    Slot i's knots are ``slot_knots[i] .. slot_knots[i + 1] - 1`` of ``knot_steps`` (their
+    step indices), ``knot_days`` and ``knot_values`` (knots by members).  A "step" slot
+    takes the value of its last knot whose step index is <= ``step`` (the first before the
+    first knot); a "linear" one (``slot_linear[i]``) is interpolated at ``time`` on the
+    knot interval holding it, ``(high - low) / gap * offset + low``, and held outside the
+    knots: the rules and the arithmetic of the numpy reference.
+    """
+    for i in range(slot_knots.shape[0] - 1):
+        start = slot_knots[i]
+        count = slot_knots[i + 1] - start
+        if slot_linear[i]:
+            j = -1
+            while j + 1 < count and knot_days[start + j + 1] <= time:
+                j += 1
+            if j < 0 or j >= count - 1:
+                row = start if j < 0 else start + count - 1
+                for b in range(width):
+                    out[stage, i, b] = knot_values[row, m0 + b]
+            else:
+                offset = time - knot_days[start + j]
+                gap = knot_days[start + j + 1] - knot_days[start + j]
+                for b in range(width):
+                    low = knot_values[start + j, m0 + b]
+                    high = knot_values[start + j + 1, m0 + b]
+                    out[stage, i, b] = (high - low) / gap * offset + low
+        else:
+            j = 0
+            for k in range(1, count):
+                if knot_steps[start + k] <= step:
+                    j = k
+            for b in range(width):
+                out[stage, i, b] = knot_values[start + j, m0 + b]
 
 
-def interpolation_segment(days, t):
-    """``searchsorted(days, t, side="right") - 1``: the knot interval holding ``t`` (-1
-    before the first knot, the last index from the last knot on)."""
-    j = -1
-    while j + 1 < days.shape[0] and days[j + 1] <= t:
-        j += 1
-    return j
+def apply_moves(state, increment, out, touch_start, touch_element, touch_sign, width):
+    """``out = state (+) S increment`` for the first ``width`` members (columns): state row
+    s plus the signed increments of the flow elements touching it, the first one signed
+    and each further one added, in increasing element order (the numpy reference's
+    state update).  ``out`` must not be ``state``."""
+    for s in range(state.shape[0]):
+        first = touch_start[s]
+        last = touch_start[s + 1]
+        if first == last:
+            for b in range(width):
+                out[s, b] = state[s, b]
+            continue
+        element = touch_element[first]
+        sign = touch_sign[first]
+        for b in range(width):
+            out[s, b] = sign * increment[element, b]
+        for k in range(first + 1, last):
+            element = touch_element[k]
+            sign = touch_sign[k]
+            for b in range(width):
+                out[s, b] = out[s, b] + sign * increment[element, b]
+        for b in range(width):
+            out[s, b] = state[s, b] + out[s, b]
 
 
-SCHEDULE_LOOKUPS = (step_value_index, interpolation_segment)
-"""Functions the kernels call, outside the members loop, to find the schedule values in
-force at a stage."""
+def mark_bad(state, flow_count, bad, check, width):
+    """After a step: a member whose ``check`` (the sum of ``x - x`` over its new state,
+    NaN once a value is not finite) is not 0 is bad from then on, and a bad member's state
+    and flow counts are NaN."""
+    for b in range(width):
+        if check[b] != 0.0:
+            bad[b] = 1
+    for s in range(state.shape[0]):
+        for b in range(width):
+            if bad[b]:
+                state[s, b] = math.nan
+    for e in range(flow_count.shape[0]):
+        for b in range(width):
+            if bad[b]:
+                flow_count[e, b] = math.nan
+
+
+STEP_HELPERS = (schedule_values, apply_moves, mark_bad)
+"""Functions every kernel calls between its loops over members."""

@@ -1,77 +1,55 @@
-"""Code finding the schedule values in force at a stage, by the rules of the numpy
-reference (:mod:`ensemble.integrate.reference`, "Schedules").
+"""The schedules as a kernel reads them: every slot's knots and values packed into a few
+arrays, and the calls that find the values in force at each stage of a step.
 
-Slot i of the model's schedules is passed to the kernel as two arrays: ``days_i`` (the
-knots' step indices for a "step" slot, their days for a "linear" one) and ``values_i``
-(knots by members).  Where a stage falls among the knots is the same for every member, so
-it is found once per step or stage, outside the members loop (with the lookups of
-:mod:`.scalars`); only the values are read per member.
+Where a stage falls among a slot's knots is the same for every member, so it is found
+once per stage, outside the loops over members, by
+:func:`~ensemble.integrate.kernels.scalars.schedule_values`, which writes the values of
+every slot at every stage of the step into ``sv[stage, slot, member]``; the rates read
+them from there.  The arrays hold data only, so the kernel's text does not depend on the
+number of slots or knots.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
+import numpy as np
+
 from ensemble.model.lower import ScheduleSlot
 
-
-class ScheduleCode:
-    """Lines of kernel code reading the schedule slots ``slots``."""
-
-    def __init__(self, slots: tuple[ScheduleSlot, ...]):
-        self.slots = slots
-
-    def arguments(self) -> list[str]:
-        """The kernel's arguments holding the slots, in the order they are passed."""
-        names = []
-        for i in range(len(self.slots)):
-            names += [f"days_{i}", f"values_{i}"]
-        return names
-
-    def step_prelude(self, indent: str) -> list[str]:
-        """Per step, outside the members loop: the knot in force for every "step" slot."""
-        lines = []
-        for i, slot in enumerate(self.slots):
-            if slot.between == "step":
-                lines.append(f"{indent}knot_{i} = step_value_index(days_{i}, step)")
-        return lines
-
-    def stage_prelude(self, stage: str, time: str, indent: str) -> list[str]:
-        """Per stage, outside the members loop: where each "linear" slot's stage time falls
-        (``seg``: the knot interval; ``held``: before the first or from the last knot)."""
-        lines = []
-        for i, slot in enumerate(self.slots):
-            if slot.between == "linear":
-                lines += _segment_lines(i, len(slot.days) - 1, stage, time, indent)
-        return lines
-
-    def values(self, stage: str, used: set[int]) -> list[str]:
-        """Per member and stage: the value of every used slot, as ``s<stage>_<slot>``."""
-        lines = []
-        for i in sorted(used):
-            slot = self.slots[i]
-            if slot.between == "step":
-                lines.append(f"s{stage}_{i} = values_{i}[knot_{i}, m]")
-            else:
-                lines.append(f"lo = values_{i}[seg{stage}_{i}, m]")
-                lines.append(f"hi = values_{i}[nxt{stage}_{i}, m]")
-                lines.append(f"s{stage}_{i} = lo if held{stage}_{i} else "
-                             f"(hi - lo) / gap{stage}_{i} * off{stage}_{i} + lo")
-        return lines
+ARGUMENTS = ("knot_steps", "knot_days", "slot_knots", "slot_linear", "knot_values")
+"""The kernel's arguments holding the schedules, in the order :func:`schedule_arrays`
+gives them."""
 
 
-def _segment_lines(i: int, last: int, stage: str, time: str, indent: str) -> list[str]:
-    """Where ``time`` falls among the knots of "linear" slot ``i`` (whose last knot index is
-    ``last``): its segment, offset into it and width, and the knot after it."""
-    return [
-        f"{indent}seg{stage}_{i} = interpolation_segment(days_{i}, {time})",
-        f"{indent}held{stage}_{i} = seg{stage}_{i} < 0 or seg{stage}_{i} >= {last}",
-        f"{indent}if held{stage}_{i}:",
-        f"{indent}    seg{stage}_{i} = 0 if seg{stage}_{i} < 0 else {last}",
-        f"{indent}    off{stage}_{i} = 0.0",
-        f"{indent}    gap{stage}_{i} = 1.0",
-        f"{indent}else:",
-        f"{indent}    off{stage}_{i} = {time} - days_{i}[seg{stage}_{i}]",
-        f"{indent}    gap{stage}_{i} = days_{i}[seg{stage}_{i} + 1] - "
-        f"days_{i}[seg{stage}_{i}]",
-        f"{indent}nxt{stage}_{i} = seg{stage}_{i} if held{stage}_{i} else "
-        f"seg{stage}_{i} + 1",
-    ]
+def schedule_lines(stages: Sequence[tuple[str, str]], indent: str) -> list[str]:
+    """Per step, outside the loops over members: the values in force at each stage
+    (named ``time<stage>`` in the kernel), into ``sv``."""
+    return [f"{indent}schedule_values(sv, {index}, step, time{stage}, "
+            f"{', '.join(ARGUMENTS)}, m0, width)"
+            for index, (stage, _) in enumerate(stages)]
+
+
+def schedule_arrays(slots: Sequence[ScheduleSlot], values: Sequence[np.ndarray], step: float,
+                    columns: np.ndarray | None) -> tuple[np.ndarray, ...]:
+    """The arrays of :data:`ARGUMENTS` for ``slots`` with their per-member ``values``
+    (knots by members): the knots' step indices ``rint(day / step)`` and days, where each
+    slot's knots start, which slots are "linear", and the values of every knot in the
+    kernel's member columns (``columns``: the member of each column, None for all in
+    order)."""
+    steps, days, starts, linear, rows = [], [], [0], [], []
+    for slot, slot_values in zip(slots, values):
+        steps.append(np.rint(slot.days / step).astype(np.int64))
+        days.append(np.asarray(slot.days, dtype=np.float64))
+        starts.append(starts[-1] + len(slot.days))
+        linear.append(slot.between == "linear")
+        rows.append(np.asarray(slot_values, dtype=np.float64))
+    n_columns = (len(columns) if columns is not None
+                 else (rows[0].shape[1] if rows else 0))
+    knot_values = (np.concatenate(rows) if rows else np.empty((0, n_columns)))
+    if columns is not None:
+        knot_values = np.take(knot_values, columns, axis=1)
+    return (np.concatenate(steps) if steps else np.empty(0, np.int64),
+            np.concatenate(days) if days else np.empty(0),
+            np.array(starts, np.int64), np.array(linear, np.uint8),
+            np.ascontiguousarray(knot_values))

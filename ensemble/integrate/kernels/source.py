@@ -5,17 +5,19 @@ is the readable reference it must agree with.  Its shape is the usual way of vec
 an ensemble of small independent ODE systems on a CPU, members as the SIMD lanes (common
 practice, no source):
 
-- members are cut into blocks of a fixed size ``BLOCK`` (:mod:`.blocks`; the caller pads
-  the last one), and blocks are spread over threads with ``numba.prange``;
-- inside a block the steps loop is outside and the members loop inside, with the whole
-  step of one member written out as straight-line scalar code from the rate trees
-  (:mod:`.rates`), so LLVM vectorises the members loop (one member per SIMD lane);
-- every member goes through the same code path whatever its position in the chunk (a
-  fixed block size, padding instead of a remainder, no fast-math), so a member gets the
-  same bits in any chunk.
+- members are cut into blocks of a fixed size ``BLOCK`` (:mod:`.blocks`; the last one
+  only as wide as the members left), which :mod:`.launch` spreads over threads;
+- inside a block the steps loop is outside and the members loop innermost, every loop
+  over groups, states, flow elements or a matrix's entries around it (:mod:`.rates`), so
+  that LLVM vectorises across members and the code does not grow with the groups;
+- a member goes through the same arithmetic whatever its position in the chunk (no
+  fast-math, widths padded to whole vectors, :data:`.blocks.LANES`), so it gets the same
+  bits in any chunk.
 
 The step itself comes from :mod:`.explicit` or :mod:`.implicit`, by the kind of method;
-the reports from :mod:`.reports`.
+the reports from :mod:`.reports`.  The text depends on the model's structure only; its
+numbers (matrices, which elements touch which states, the Newton matrix's pattern) are
+:attr:`KernelSource.data`, passed to the kernel with the members' inputs.
 """
 
 from __future__ import annotations
@@ -23,24 +25,27 @@ from __future__ import annotations
 import inspect
 from collections.abc import Callable
 
-from ensemble.integrate.kernels.blocks import block_size
+import numpy as np
+
+from ensemble.integrate.kernels.blocks import form_block_size
 from ensemble.integrate.kernels.explicit import ExplicitStep
+from ensemble.integrate.kernels.form import KernelForm
 from ensemble.integrate.kernels.implicit import ThetaStep
-from ensemble.integrate.kernels.rates import RateCode, stage_times
+from ensemble.integrate.kernels.rates import RateCode
 from ensemble.integrate.kernels.reports import first_report, report
-from ensemble.integrate.kernels.scalars import OPERATION_HELPERS, SCHEDULE_LOOKUPS
+from ensemble.integrate.kernels.scalars import COMPILED, INLINED, OPERATION_HELPERS, STEP_HELPERS
+from ensemble.integrate.kernels.schedules import ARGUMENTS as SCHEDULE_ARGUMENTS
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
 from ensemble.records import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINITE
 
-GENERATOR_VERSION = 4
+GENERATOR_VERSION = 5
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
 
-# decorators of the copied functions: the scalar operations are inlined where they are
-# called, the others compiled on their own
-INLINED = "@njit(inline='always', error_model='numpy')"
-COMPILED = "@njit(error_model='numpy', boundscheck=False)"
+TOUCH_ARGUMENTS = ("touch_start", "touch_element", "touch_sign")
+"""The kernel's arguments saying which flow elements touch each state
+(:attr:`.form.KernelForm.touch_start`)."""
 
 
 class KernelSource:
@@ -48,105 +53,90 @@ class KernelSource:
 
     Attributes
     ----------
-    text : the Python source of a module defining ``integrate`` (blocks spread over
-        numba's threads) and ``integrate_serial`` (blocks one after another in the
-        calling thread), with the same arguments and the same bits.
-    block : members per block (:func:`.blocks.block_size`).
+    form : the model as the kernel sees it (:class:`.form.KernelForm`).
+    text : the Python source of a module defining ``integrate_block``, which integrates
+        one block of members without holding the GIL (:mod:`.launch` runs the blocks of
+        a chunk, in the calling thread or spread over threads).
+    block : members per block (:func:`.blocks.form_block_size`).
+    data : the model's arrays the kernel takes after the schedules' (for ``model``'s
+        values; another variant of the same structure has the same text and other data).
     """
 
     def __init__(self, model: LoweredModel, method: Method):
         self.model = model
         self.method = method
-        self.block = block_size(model, method)
-        self._rates = RateCode(model, method)
-        self._step = (ThetaStep if method.implicit else ExplicitStep)(self._rates, method)
-        self.text = "\n".join(self._head() + self._block_body() + self._drivers()) + "\n"
+        self.form = KernelForm(model, method)
+        self.block = form_block_size(self.form)
+        self._rates = RateCode(self.form)
+        self._step = (ThetaStep if method.implicit else ExplicitStep)(self._rates)
+        self.data: tuple[np.ndarray, ...] = (
+            np.array([self.form.n_states, self.form.n_elements, self.form.n_groups],
+                     np.int64),
+            self.form.touch_start, self.form.touch_element, self.form.touch_sign,
+            *(array for node in self.form.structured if node in self.form.plans
+              for array in self.form.plans[node].arrays),
+            *self._step.data())
+        self.text = "\n".join(self._head() + self._block_body()) + "\n"
 
     def _arguments(self) -> str:
-        """The arguments of every driver and of the block function (after ``m0``)."""
-        return ", ".join(["y0", "p", *self._rates.schedules.arguments(), "h",
-                          "steps_per_report", "n_reports", "atol", "newton_tol",
+        """The arguments of the block function after ``m0`` and ``width``."""
+        return ", ".join(["y0", "p", *SCHEDULE_ARGUMENTS, "sizes", *TOUCH_ARGUMENTS,
+                          *self._rates.data_arguments(), *self._step.data_arguments(),
+                          "h", "steps_per_report", "n_reports", "atol", "newton_tol",
                           "newton_max_iter", "state_out", "flow_out", "status", "compare",
                           "reference", "rtol", "gain", "error_out"])
 
     def _head(self) -> list[str]:
-        """Imports, constants, the copied and generated functions the block calls, and
-        the start of the block function."""
-        model, method = self.model, self.method
+        """Imports, constants, the copied functions the block calls, and the start of the
+        block function."""
+        form, method = self.form, self.method
         lines = [
             f"# Generated by ensemble.integrate.kernels (version {GENERATOR_VERSION}); "
             "do not edit.",
-            f"# Model: {', '.join(model.state_labels)}; method: {method.name}.",
+            f"# Model: {form.n_states} states, {form.n_groups} groups, {form.n_elements} "
+            f"flow elements ({len(form.families)} families, {len(form.singles)} single); "
+            f"method: {method.name}.",
             "import math",
             "import numpy as np",
-            "from numba import njit, prange",
+            "from numba import njit",
             "",
             f"BLOCK = {self.block}",
-            f"N_STATES = {model.n_states}",
-            f"N_FLOWS = {model.n_flow_elements}",
             f"NON_FINITE = {NON_FINITE}",
             f"BELOW_NEGATIVE_ATOL = {BELOW_NEGATIVE_ATOL}",
             f"NEWTON_NOT_CONVERGED = {NEWTON_NOT_CONVERGED}",
             "",
         ]
-        lines += self._step.constants()
-        lines += _copied([*OPERATION_HELPERS.values(), *SCHEDULE_LOOKUPS,
+        lines += _copied([*OPERATION_HELPERS.values(), *STEP_HELPERS,
                           *self._step.support()])
+        if not form.fused:
+            lines += self._rates.function()
         lines += self._step.functions()
-        # the block's work is its own function, so numba's parallel pass (slow to compile)
-        # sees only the small driver loop
         lines += ["",
-                  "@njit(cache=True, error_model='numpy', boundscheck=False)",
-                  f"def integrate_block(m0, {self._arguments()}):",
-                  '    """Integrate members m0 .. m0 + BLOCK - 1."""']
+                  "@njit(nogil=True, cache=True, error_model='numpy', boundscheck=False)",
+                  f"def integrate_block(m0, width, {self._arguments()}):",
+                  '    """Integrate members m0 .. m0 + width - 1 (width <= BLOCK)."""',
+                  "    n_states, n_elements, n_groups = sizes[0], sizes[1], sizes[2]"]
         return lines
 
     def _block_body(self) -> list[str]:
         """The block function's body: its arrays, the first report, then per report
         interval the steps and the report."""
-        rates = self._rates
-        time_only, param_only = rates.writer.split(list(self.model.rates))
-        lines = ["    y = np.empty((N_STATES, BLOCK))",
-                 "    fc = np.zeros((N_FLOWS, BLOCK))",
-                 "    bad = np.zeros(BLOCK, np.uint8)"]
+        lines = ["    y = np.empty((n_states, BLOCK))",
+                 "    fc = np.zeros((n_elements, BLOCK))",
+                 "    bad = np.zeros(BLOCK, np.uint8)",
+                 "    low = np.empty(BLOCK, np.bool_)"]
+        lines += self._rates.buffers()
         lines += self._step.buffers()
         lines += first_report()
         lines += ["    for k in range(1, n_reports):",
-                  "        for b in range(BLOCK):",
-                  "            for f in range(N_FLOWS):",
-                  "                fc[f, b] = 0.0",
+                  "        for e in range(n_elements):",
+                  "            for b in range(width):",
+                  "                fc[e, b] = 0.0",
                   "        for j in range(steps_per_report):",
                   "            step = (k - 1) * steps_per_report + j"]
-        indent = " " * 12
-        context, time_names = rates.step_context(indent, stage_times(self.method),
-                                                 time_only)
-        lines += context
-        lines += self._step.lines(indent, param_only, time_names)
-        lines += report(" " * 8, self.model.n_states)
+        lines += self._step.lines(" " * 12)
+        lines += report(" " * 8)
         return lines
-
-    def _drivers(self) -> list[str]:
-        """Two drivers of the same blocks (the same bits): blocks spread over numba's
-        threads, or one after another in the calling thread, without the GIL and without
-        numba's threading layer, for callers that are threads of their own."""
-        arguments = self._arguments()
-        return [
-            "",
-            "",
-            "@njit(parallel=True, cache=True, error_model='numpy', boundscheck=False)",
-            f"def integrate({arguments}):",
-            '    """Integrate a padded chunk, blocks in parallel: see '
-            'ensemble.integrate.kernels.launch."""',
-            "    for blk in prange(y0.shape[1] // BLOCK):",
-            f"        integrate_block(blk * BLOCK, {arguments})",
-            "",
-            "",
-            "@njit(nogil=True, cache=True, error_model='numpy', boundscheck=False)",
-            f"def integrate_serial({arguments}):",
-            '    """Integrate a padded chunk, block after block, in the calling thread."""',
-            "    for blk in range(y0.shape[1] // BLOCK):",
-            f"        integrate_block(blk * BLOCK, {arguments})",
-        ]
 
 
 def _copied(functions: list[Callable]) -> list[str]:

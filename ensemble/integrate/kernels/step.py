@@ -2,46 +2,49 @@
 :mod:`.implicit`.
 
 :class:`~.source.KernelSource` assembles the module around one :class:`StepCode`: its
-constants and copied functions go into the module's head, its generated functions after
-them, its work arrays at the start of each block, and its lines inside the loop over the
-steps of a report interval.
+copied functions go into the module's head, its work arrays at the start of each block,
+its data among the kernel's arguments, and its lines inside the loop over the steps of a
+report interval.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
 
-from ensemble.integrate.kernels.rates import Names, RateCode
-from ensemble.methods import Method
-from ensemble.model.ir import ScalarNode
+import numpy as np
+
+from ensemble.integrate.kernels.rates import RateCode
 
 
 class StepCode:
-    """Kernel code of one step of ``method``, evaluating the rates through ``rates``."""
+    """Kernel code of one step of the method of ``rates.form``, evaluating the rates
+    through ``rates``."""
 
-    def __init__(self, rates: RateCode, method: Method):
+    def __init__(self, rates: RateCode):
         self.rates = rates
-        self.method = method
-
-    def constants(self) -> list[str]:
-        """Module-level constant definitions the step reads."""
-        return []
+        self.form = rates.form
+        self.method = rates.form.method
 
     def support(self) -> list[Callable]:
         """Plain functions (beyond :mod:`.scalars`) whose source the kernel must hold."""
-        return []
-
-    def functions(self) -> list[str]:
-        """Lines of the generated functions the step calls."""
         return []
 
     def buffers(self) -> list[str]:
         """Allocations of the per-block work arrays the step needs beyond the state."""
         return []
 
-    def lines(self, indent: str, param_only: list[ScalarNode],
-              time_names: dict[str, Names]) -> list[str]:
-        """Code of step ``step`` for every member of the block, at ``indent``;
-        ``param_only`` are the rate subtrees of parameters alone, ``time_names`` the
-        variables of each stage's subtrees of time alone."""
+    def data_arguments(self) -> list[str]:
+        """Names of the kernel's arguments holding the step's own data."""
+        return []
+
+    def data(self) -> list[np.ndarray]:
+        """The arrays of :meth:`data_arguments`, in order."""
+        return []
+
+    def functions(self) -> list[str]:
+        """Lines of the generated functions the step calls (beyond ``rates_at``)."""
+        return []
+
+    def lines(self, indent: str) -> list[str]:
+        """Code of step ``step`` for every member of the block, at ``indent``."""
         raise NotImplementedError
