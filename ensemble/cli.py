@@ -237,13 +237,21 @@ def check(scenario: ScenarioFile, settings: Settings = None) -> None:
 
 @app.command()
 def summary(result: Annotated[Path, typer.Argument(
-        help="Result file written by ensemble run.")]) -> None:
-    """Print, per variant, quantiles over members of each compartment's peak size and
-    time and of each flow's total and peak, and the members behind each status bit."""
+        help="Result file written by ensemble run.")],
+        only: Annotated[Optional[list[str]], typer.Option(
+            "--only", help="Only the rows of these measures, compartments or flows "
+                           "(repeatable, or NAME,NAME).")] = None,
+        show_all: Annotated[bool, typer.Option(
+            "--all", help="Also every compartment's and flow's own rows.")] = False,
+) -> None:
+    """Print the measures' quantiles over members (peaks with the share of censored
+    ones, totals, days above a threshold), R0, the stored differences between variants
+    and the members behind each status bit, leaving out rows without information."""
     from ensemble import api
 
     with _reported():
-        text = api.summarize(result)
+        text = api.summarize(result, show_all=show_all, only=[
+            name for item in only or [] for name in item.split(",") if name])
     typer.echo(text, nl=False)
 
 
