@@ -18,7 +18,8 @@ import pytest
 import xarray as xr
 
 from ensemble import durable
-from ensemble.errors import FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError
+from ensemble.errors import (FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError,
+                             WorkInProgress)
 from ensemble.output import brackets as brackets_module
 from ensemble.output import result_file, writer
 from ensemble.output.finish import block_plan
@@ -131,19 +132,24 @@ def test_after_a_crash_of_the_system_only_durable_chunks_are_kept(tmp_path, layo
     for key in [(0, 0, 3), (0, 3, 6), (1, 0, 3)]:
         journal.save(key, *made_up_members(layout, *key))
     journal.make_durable([(0, 0, 3)])
+    journal.close()                     # the run ends (its lock is released)
     assert _open(path, layout, resume=True).saved() == [(0, 0, 3), (0, 3, 6), (1, 0, 3)]
     for name in ("chunk-v0-0000000000-0000000003", "chunk-v0-0000000003-0000000006"):
         (partial_path(path) / name / chunk_files.BOOT_FILE).write_text("an earlier boot")
+        chunk_files.write_checksums(partial_path(path) / name)   # as that boot wrote it
     resumed = _open(path, layout, resume=True)
     assert resumed.saved() == [(0, 0, 3), (1, 0, 3)]
     np.testing.assert_array_equal(resumed.load((0, 0, 3))[0].state,
                                   made_up_members(layout, 0, 0, 3)[0].state)
 
 
-def test_without_resume_old_work_is_discarded(tmp_path, layout):
+def test_without_resume_old_work_is_kept_unless_forced(tmp_path, layout):
     path = tmp_path / "r.nc"
     _open(path, layout).save((0, 0, 3), *made_up_members(layout, 0, 0, 3))
-    assert _open(path, layout).saved() == []
+    with pytest.raises(WorkInProgress, match="--resume.*--force"):
+        _open(path, layout)
+    assert _open(path, layout, resume=True).saved() == [(0, 0, 3)]
+    assert _open(path, layout, force=True).saved() == []
 
 
 def test_resume_of_a_different_scenario_is_refused(tmp_path, layout):
@@ -272,7 +278,7 @@ def test_finish_gathers_thousands_of_members_in_small_blocks(tmp_path):
     assert journal.largest_block_bytes <= 100_000
     assert journal.block_count >= 2 * 2 * layout.n_reports
     with xr.open_dataset(tmp_path / "r.nc", decode_times=False) as dataset:
-        keep = (dataset.status.values & 12) == 0
+        keep = in_summary(dataset.status.values)
         for v in range(2):
             expected = np.quantile(dataset.state.values[v][keep[v]],
                                    dataset["quantile"].values, axis=0)
