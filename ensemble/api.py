@@ -31,14 +31,26 @@ if TYPE_CHECKING:
 def check_report(scenario: Scenario) -> str:
     """The text ``ensemble check`` prints: what the scenario sets, its basic
     reproduction number R0 by the next-generation matrix (at the parameters' medians and
-    over the first members of each variant), and its warnings."""
+    over the first members of each variant), the figures of running it (work, memory,
+    disk) and its warnings.
+
+    Raises
+    ------
+    ensemble.errors.InputError : the run could not finish or be written
+        (:func:`ensemble.run.feasibility.refuse_infeasible`), or a part of an expression
+        made of numbers alone is not finite.
+    """
     import numpy as np
 
     from ensemble.model.reproduction import infected_compartments
+    from ensemble.run.feasibility import (advice, estimate, machine_cores,
+                                          refuse_infeasible, section)
     from ensemble.run.layout import lowered_models
     from ensemble.sampling.design import make_design, median_design
     from ensemble.scenario.describe import describe, reproduction_section
 
+    figures = estimate(scenario)
+    refuse_infeasible(scenario, figures, Path(scenario.output.path))
     first_members = np.arange(min(scenario.member_count, QUICK_DRAW))
     rows = []
     for variant, model in zip(scenario.variants, lowered_models(scenario)):
@@ -46,8 +58,10 @@ def check_report(scenario: Scenario) -> str:
         drawn = make_design(scenario, variant, model, first_members)
         rows.append((variant.name, float(median), drawn.basic_reproduction_number))
     infected = infected_compartments(scenario.model)
-    section = reproduction_section(infected.compartments, infected.note, rows)
-    return describe(scenario, scenario_warnings(scenario), [section])
+    cores = machine_cores()
+    return describe(scenario, scenario_warnings(scenario), [
+        reproduction_section(infected.compartments, infected.note, rows),
+        section(figures, advice(scenario, figures, cores), cores)])
 
 
 QUICK_DRAW = 200
@@ -120,6 +134,7 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     profile = cluster if not isinstance(cluster, (str, type(None))) else cluster_profile(
         cluster if cluster is not None else scenario.compute.cluster)
     local_workers = workers if workers is not None else scenario.compute.workers
+    _refuse_infeasible(scenario, output, shard, resume)
     on_this_machine = (local_workers != 0 and profile is None
                        and (address or scenario.compute.address) is None)
     # the local cluster starts while the rest of the pipeline is imported
@@ -135,12 +150,37 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
             started.close()
 
 
+def _refuse_infeasible(scenario: Scenario, output: str | os.PathLike[str] | None,
+                       shard: Shard | str | None, resume: bool) -> None:
+    """Refuse, before anything starts, a run that cannot finish or be written
+    (:func:`ensemble.run.feasibility.refuse_infeasible`: exit status 2 with the
+    figures)."""
+    from ensemble.run.feasibility import estimate, refuse_infeasible
+    from ensemble.run.shards import Shard, default_part_path as part_path
+
+    part = Shard.parse(shard) if isinstance(shard, str) else shard
+    if part is not None and output is None:
+        output = part_path(scenario, part)
+    target = Path(output if output is not None else scenario.output.path)
+    refuse_infeasible(scenario, estimate(scenario, _members_computed(scenario, part)),
+                      target, resume)
+
+
+def _members_computed(scenario: Scenario, part: Shard | None) -> int | None:
+    """Members per variant a run computes: a shard's, or None for all of them."""
+    if part is None:
+        return None
+    start, end = part.member_range(scenario.member_count)
+    return end - start
+
+
 def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume, force,
          progress, backend, history, profile, shard, processes, dashboard) -> Path:
     """:func:`run` once the scenario is loaded and any local cluster is starting."""
     import dataclasses
 
     from ensemble.run.execute import fewer_collections, run_scenario
+    from ensemble.run.feasibility import advice, estimate, machine_cores
     from ensemble.run.progress import Progress
     from ensemble.run.tasks import DEFAULT_BACKEND
     from ensemble.run.plan import fingerprint
@@ -158,10 +198,15 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
     if part is not None and resume and not force and part_is_complete(
             output, fingerprint(scenario, backend), part):
         return Path(output)
+    reporter = Progress(bar=progress)
+    local = profile is None and (address or scenario.compute.address) is None
+    figures = estimate(scenario, _members_computed(scenario, part))
+    for note in advice(scenario, figures, machine_cores(), local):
+        reporter.note(note)
     with fewer_collections():
         return run_scenario(scenario, history=history, backend=backend,
                             chunk=chunk, workers=workers, address=address, cluster=profile,
-                            resume=resume, force=force, progress=Progress(bar=progress),
+                            resume=resume, force=force, progress=reporter,
                             started=started, processes=processes, dashboard=dashboard,
                             **(engine_options(scenario, part, backend) if part else {}))
 

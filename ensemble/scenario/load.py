@@ -38,7 +38,8 @@ from ensemble.scenario.reader import MISSING, Reader, time_text
 from ensemble.scenario.schema import (Expression, Flow, InitialValue, Model, Parameter, Rest,
                                       Scenario, Schedule, Source, Variant, is_drawn)
 from ensemble.scenario.settings import (check_whole_days, read_compute, read_head,
-                                        read_output, read_sampling, read_seed, read_solver)
+                                        read_member_count, read_output, read_sampling,
+                                        read_seed, read_solver)
 from ensemble.scenario.structure import (MODEL_KEYS, Scope, Structure, read_flows,
                                          read_structure)
 
@@ -83,7 +84,8 @@ def load_scenario(path: str | Path, *, member_count: int | None = None,
             scenario.source, overrides=tuple(settings)))
     overrides: dict[str, int] = {}
     if member_count is not None:
-        overrides["member_count"] = _override(file, "members", member_count, minimum=1)
+        overrides["member_count"] = read_member_count(Reader(file), member_count,
+                                                      "scenario.members")
     if seed is not None:
         overrides["seed"] = read_seed(Reader(file), seed, "scenario.seed")
     return dataclasses.replace(scenario, **overrides) if overrides else scenario
@@ -277,13 +279,6 @@ def _parameter_sets(scenario: Scenario) -> list[tuple[str, Mapping[str, Paramete
 
 def _next_power_of_two(n: int) -> int:
     return 1 << (n - 1).bit_length()
-
-
-def _override(file: str, key: str, value: object, minimum: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-        raise ScenarioError(file, f"scenario.{key}", value,
-                            f"--{key} must be a whole number >= {minimum}")
-    return value
 
 
 def _read_text(file: str) -> str:

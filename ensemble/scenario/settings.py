@@ -20,6 +20,9 @@ DEFAULT_QUANTILES = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
 MAX_SEED = 2 ** 63 - 1
 """Largest seed: the result file stores it as a 64-bit signed integer."""
 
+MAX_MEMBERS = 2 ** 31 - 1
+"""Most members per variant: the result file numbers them with 32-bit integers."""
+
 
 @dataclass(frozen=True)
 class Head:
@@ -69,8 +72,17 @@ def read_head(reader: Reader, value: object) -> Head:
         start=reader.get(table, path, "start", reader.date, None),
         days=reader.get(table, path, "days", reader.positive_time),
         member_count=reader.get(table, path, "members",
-                                lambda v, p: reader.integer(v, p, minimum=1), 1),
+                                lambda v, p: read_member_count(reader, v, p), 1),
         seed=reader.get(table, path, "seed", lambda v, p: read_seed(reader, v, p), 0))
+
+
+def read_member_count(reader: Reader, value: object, path: str) -> int:
+    """Members per variant: a whole number from 1 to :data:`MAX_MEMBERS`."""
+    if (isinstance(value, int) and not isinstance(value, bool)
+            and value > MAX_MEMBERS):
+        raise reader.error(path, value, f"must be at most {MAX_MEMBERS:,} (2^31 - 1: the "
+                           "result file numbers members with 32-bit integers)")
+    return reader.integer(value, path, minimum=1)
 
 
 def read_seed(reader: Reader, value: object, path: str) -> int:
