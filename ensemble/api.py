@@ -293,6 +293,34 @@ def simulate(scenario: Scenario | str | os.PathLike[str], *,
     return decode(result_dataset(Finisher(layout, MembersInMemory(layout, chunks))))
 
 
+def score(result: str | os.PathLike[str], observed: str | os.PathLike[str], *,
+          measure: str | None = None, flow: str | None = None,
+          after: str | None = None) -> str:
+    """The text of ``ensemble score``: the quantiles of a flow measure (or of a flow's
+    counts) in a complete result file scored against the counts of ``observed`` (a CSV
+    file date,value), per variant and horizon (days after the ISO date ``after``,
+    by default the start), by the weighted interval score and the coverage of the central intervals.
+
+    Raises
+    ------
+    ensemble.errors.NotAResult : ``result`` is not a complete result file.
+    ensemble.errors.UsageError : a bad counts file (naming its line), an unknown measure
+        or flow, or a date that ends no window of the series.
+    """
+    import xarray as xr
+
+    from ensemble.fit.counts_file import read_counts
+    from ensemble.fit.score_result import format_scores, score_result
+    from ensemble.output.result_file import result_fingerprint
+
+    result_fingerprint(result)
+    counts = read_counts(observed)
+    with xr.open_dataset(result, decode_times=False) as dataset:
+        table = score_result(dataset.load(), counts, str(result), measure=measure,
+                             flow=flow, after=after)
+    return format_scores(table)
+
+
 def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
     """``scenario`` with only the variants ``names``, in that order (``compare_to``
     dropped when its variant is not among them).
@@ -318,15 +346,10 @@ def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
             scenario.output, compare_to=compare_to if compare_to in names else None))
 
 
-def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
-              show_all: bool = False) -> str:
-    """A readable summary of a complete result file: the members behind the quantiles
-    of each variant and the step check in plain words; quantiles of R0, of each
-    measure's peak, peak time, total and days above its threshold (with units and the
-    share of censored peaks), of the compartments' and flows' own metrics when the file
-    has no measures (or with ``show_all``), and of the stored differences; rows without
-    information left out.  ``only`` keeps the rows of those measures, compartments and
-    flows.
+def summarize(path: str | os.PathLike[str]) -> str:
+    """A readable summary of a complete result file: per variant, quantiles of each
+    compartment's peak size and peak time and of each flow's total and peak, and the
+    members behind each status bit.
 
     Raises
     ------
@@ -335,7 +358,7 @@ def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
     from ensemble.present.summary import summary_text
 
     with open_result(path) as dataset:
-        return summary_text(dataset, only=only, show_all=show_all)
+        return summary_text(dataset)
 
 
 def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | None:

@@ -256,6 +256,32 @@ def summary(result: Annotated[Path, typer.Argument(
 
 
 @app.command()
+def score(
+    result: Annotated[Path, typer.Argument(help="Result file written by ensemble run.")],
+    observed: Annotated[Path, typer.Argument(
+        help="CSV file with the columns date,value: counts observed after the projection "
+             "was made, each date the end of a window of the scored series.")],
+    measure: Annotated[Optional[str], typer.Option(
+        "--measure", help="The flow measure to score (needed when the file has several).")
+    ] = None,
+    flow: Annotated[Optional[str], typer.Option(
+        "--flow", help="Score a flow's counts per report interval instead of a measure.")
+    ] = None,
+    after: Annotated[Optional[str], typer.Option(
+        "--after", metavar="DATE",
+        help="Count horizons in days from this ISO date (default: the projection's start).")
+    ] = None,
+) -> None:
+    """Score RESULT's projections against OBSERVED counts, per variant and horizon: the
+    weighted interval score and whether each count is inside the central intervals."""
+    from ensemble import api
+
+    with _reported():
+        text = api.score(result, observed, measure=measure, flow=flow, after=after)
+    typer.echo(text, nl=False)
+
+
+@app.command()
 def merge(
     parts: Annotated[list[Path], typer.Argument(help="The part file of every shard.")],
     output: Annotated[Path, typer.Option("--output", "-o", help="Result file to write.")],
@@ -310,7 +336,7 @@ def worker_script(
 
     with _reported():
         text = api.worker_script(cluster)
-    typer.echo(text)
+    typer.echo(text, nl=False)
 
 
 def main() -> None:

@@ -211,7 +211,7 @@ def worker_script(profile: ClusterProfile) -> str:
     starting anything."""
     job = _cluster_class(profile).job_cls(scheduler=SCHEDULER_PLACEHOLDER, name="worker",
                                           **jobqueue_arguments(profile))
-    return job.job_script()
+    return job.job_script().rstrip("\n") + "\n"
 
 
 def make_jobqueue_cluster(profile: ClusterProfile, dashboard: str | None = None,
