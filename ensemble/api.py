@@ -346,10 +346,15 @@ def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
             scenario.output, compare_to=compare_to if compare_to in names else None))
 
 
-def summarize(path: str | os.PathLike[str]) -> str:
-    """A readable summary of a complete result file: per variant, quantiles of each
-    compartment's peak size and peak time and of each flow's total and peak, and the
-    members behind each status bit.
+def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
+              show_all: bool = False) -> str:
+    """A readable summary of a complete result file: the members behind the quantiles
+    of each variant and the step check in plain words; quantiles of R0, of each
+    measure's peak, peak time, total and days above its threshold (with units and the
+    share of censored peaks), of the compartments' and flows' own metrics when the file
+    has no measures (or with ``show_all``), and of the stored differences; rows without
+    information left out.  ``only`` keeps the rows of those measures, compartments and
+    flows.
 
     Raises
     ------
@@ -358,7 +363,7 @@ def summarize(path: str | os.PathLike[str]) -> str:
     from ensemble.present.summary import summary_text
 
     with open_result(path) as dataset:
-        return summary_text(dataset)
+        return summary_text(dataset, only=only, show_all=show_all)
 
 
 def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | None:
