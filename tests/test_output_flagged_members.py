@@ -68,5 +68,5 @@ def test_summary_says_why_members_were_left_out(badly_stepped: Path) -> None:
         for v, name in enumerate(result["variant_name"].values):
             failed = int(np.count_nonzero(result["status"].values[v] & STEP_CHECK_FAILED))
             behind = int(result["members_in_summary"].values[v])
-            assert (f"variant {name}: {behind} members in the quantiles; left out, by "
-                    f"status bit: step_check_failed {failed}") in text
+            assert (f"variant {name} ({behind} members in the quantiles; left out, by "
+                    f"status bit: step_check_failed {failed})") in text
