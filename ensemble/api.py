@@ -346,6 +346,46 @@ def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
             scenario.output, compare_to=compare_to if compare_to in names else None))
 
 
+def plot(path: str | os.PathLike[str], directory: str | os.PathLike[str] | None = None,
+         measures: Sequence[str] = (), bands: Sequence[int] = (50, 90)) -> list[Path]:
+    """Draw the fan chart (median and central bands over time, a panel per variant) and
+    the distribution of the peak and total of each measure of a result file as PNG and
+    SVG files in ``directory`` (default: beside the result); the files written.
+
+    Raises
+    ------
+    ensemble.errors.NotAResult : ``path`` is not a complete result file.
+    ensemble.errors.UsageError : no measures, an unknown measure, or a band whose
+        quantiles the result does not hold.
+    """
+    from ensemble.present.plot import plot_measures
+
+    target = Path(directory) if directory is not None else Path(path).parent
+    with open_result(path) as dataset:
+        return plot_measures(dataset, target, measures, bands)
+
+
+def export(path: str | os.PathLike[str], directory: str | os.PathLike[str] | None = None,
+           file_format: str = "csv") -> list[Path]:
+    """Write tidy tables of the measures of a result file (bands, metrics, differences)
+    into ``directory`` (default: beside the result), the caution as each file's leading
+    ``#`` line; the files written.
+
+    Raises
+    ------
+    ensemble.errors.NotAResult : ``path`` is not a complete result file.
+    ensemble.errors.UsageError : a format other than ``csv``, or no measures.
+    """
+    from ensemble.errors import UsageError
+    from ensemble.present.export import export_tables
+
+    if file_format != "csv":
+        raise UsageError("--format", "", file_format, "the only table format is csv")
+    target = Path(directory) if directory is not None else Path(path).parent
+    with open_result(path) as dataset:
+        return export_tables(dataset, target, Path(path).stem)
+
+
 def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
               show_all: bool = False) -> str:
     """A readable summary of a complete result file: the members behind the quantiles

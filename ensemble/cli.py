@@ -295,6 +295,60 @@ def merge(
     typer.echo(f"result: {path} (from {len(parts)} parts)")
 
 
+def _bands(text: str) -> list[int]:
+    """``50,90`` -> [50, 90] (exit 2 for anything but whole percentages in 1..99)."""
+    from ensemble.errors import UsageError
+
+    with _reported():
+        widths = []
+        for item in text.split(","):
+            if not item.strip().isdigit() or not 0 < int(item) < 100:
+                raise UsageError("--bands", "", text, "must list whole percentages "
+                                 "between 1 and 99, such as 50,90")
+            widths.append(int(item))
+    return widths
+
+
+@app.command()
+def plot(
+    result: Annotated[Path, typer.Argument(help="Result file written by ensemble run.")],
+    measure: Annotated[Optional[list[str]], typer.Option(
+        "--measure", help="Only this measure (repeatable).")] = None,
+    bands: Annotated[str, typer.Option(
+        "--bands", help="Central bands to shade, in percent of members.")] = "50,90",
+    output: Annotated[Optional[Path], typer.Option(
+        "--output", "-o", help="Directory for the figures (default: beside RESULT).")
+    ] = None,
+) -> None:
+    """Draw each measure's fan chart (a panel per variant) and the distribution of its
+    peak and total, as PNG and SVG."""
+    from ensemble import api
+
+    widths = _bands(bands)
+    with _reported():
+        written = api.plot(result, output, measure or [], widths)
+    for path in written:
+        typer.echo(f"wrote {path}")
+
+
+@app.command()
+def export(
+    result: Annotated[Path, typer.Argument(help="Result file written by ensemble run.")],
+    file_format: Annotated[str, typer.Option(
+        "--format", help="Table format (csv).")] = "csv",
+    output: Annotated[Optional[Path], typer.Option(
+        "--output", "-o", help="Directory for the tables (default: beside RESULT).")
+    ] = None,
+) -> None:
+    """Write tidy CSV tables of the measures: bands, metrics and differences."""
+    from ensemble import api
+
+    with _reported():
+        written = api.export(result, output, file_format)
+    for path in written:
+        typer.echo(f"wrote {path}")
+
+
 @app.command("array-script")
 def array_script(
     scenario: ScenarioFile,

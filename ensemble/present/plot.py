@@ -1,0 +1,186 @@
+"""Fan charts of the measures of a result (``ensemble plot``), and the distribution over
+members of each measure's peak and total, drawn headless (matplotlib's Agg and SVG
+backends) into PNG and SVG files.
+
+A fan chart draws, per variant in a panel of its own (shared axes), the median of the
+measure over members as a line and each central band (50 % between the 0.25 and 0.75
+quantiles, 90 % between 0.05 and 0.95, ...) as a shaded area, from the quantiles the
+result stores; a band needs both of its quantiles in the file.  Every figure carries the
+result's caution in its footer.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import xarray as xr  # noqa: E402
+
+from ensemble.errors import UsageError  # noqa: E402
+from ensemble.present.summary import measure_names  # noqa: E402
+
+LINE = "#1b4d6b"
+"""Colour of the median line and, lighter, of the bands."""
+
+BAND_ALPHA = 0.22
+"""Opacity of one band; nested bands add up, darkest in the middle."""
+
+FORMATS = ("png", "svg")
+
+
+def band_quantiles(dataset: xr.Dataset, widths: Sequence[int]) -> list[tuple[int, float,
+                                                                              float]]:
+    """(width, lower, upper) of each central band of ``widths`` percent, checked
+    against the result's quantiles.
+
+    Raises
+    ------
+    UsageError : a band whose quantiles the result does not hold.
+    """
+    stored = [float(q) for q in dataset["quantile"].values]
+    bands = []
+    for width in sorted(widths, reverse=True):
+        lower, upper = round((1 - width / 100) / 2, 6), round((1 + width / 100) / 2, 6)
+        if not (any(np.isclose(q, lower) for q in stored)
+                and any(np.isclose(q, upper) for q in stored)):
+            raise UsageError("--bands", "", width, f"the result holds no quantiles "
+                             f"{lower:g} and {upper:g} for a {width}% band",
+                             "its quantiles are " + ", ".join(f"{q:g}" for q in stored))
+        bands.append((width, lower, upper))
+    return bands
+
+
+def _quantile(array: xr.DataArray, probability: float) -> np.ndarray:
+    index = int(np.argmin(np.abs(array["quantile"].values - probability)))
+    return array.isel(quantile=index).values
+
+
+def _footer(figure, dataset: xr.Dataset) -> None:
+    caution = str(dataset.attrs.get("caution", ""))
+    title = str(dataset.attrs.get("title", ""))
+    figure.text(0.01, 0.005, f"{title}. {caution}", fontsize=7, color="#444444",
+                ha="left", va="bottom", wrap=True)
+
+
+def _panels(dataset: xr.Dataset, rows: int = 1):
+    variants = list(dataset["variant"].values)
+    figure, axes = plt.subplots(rows, len(variants), sharex=True, sharey=True,
+                                squeeze=False, figsize=(4.2 * len(variants), 3.4 * rows + 0.6))
+    return figure, axes, variants
+
+
+def _title(dataset: xr.Dataset, variant: object) -> str:
+    if "variant_title" in dataset.coords:
+        return str(dataset["variant_title"].sel(variant=variant).values)
+    return str(variant)
+
+
+def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, float]]):
+    """The figure of measure ``name``: one panel per variant (one row per group for a
+    measure by group)."""
+    array = dataset[f"measure_{name}_quantile"]
+    time_dim = array.dims[-1]
+    groups = list(array["group"].values) if "group" in array.dims else [None]
+    figure, axes, variants = _panels(dataset, len(groups))
+    times = dataset[time_dim].values
+    units = str(array.attrs.get("units", ""))
+    for column, variant in enumerate(variants):
+        for row, group in enumerate(groups):
+            axis = axes[row][column]
+            part = array.sel(variant=variant)
+            if group is not None:
+                part = part.sel(group=group)
+            for width, lower, upper in bands:
+                axis.fill_between(times, _quantile(part, lower), _quantile(part, upper),
+                                  color=LINE, alpha=BAND_ALPHA, linewidth=0,
+                                  step="pre" if time_dim != "time" else None,
+                                  label=f"{width}% of members")
+            axis.plot(times, _quantile(part, 0.5), color=LINE, linewidth=1.6,
+                      drawstyle="steps-pre" if time_dim != "time" else "default",
+                      label="median")
+            axis.grid(color="#dddddd", linewidth=0.6)
+            heading = _title(dataset, variant) + (f" ({group})" if group else "")
+            axis.set_title(heading, fontsize=9)
+            if column == 0:
+                axis.set_ylabel("persons" if units == "1" else units)
+            axis.tick_params(axis="x", labelrotation=30, labelsize=7)
+    axes[0][0].legend(fontsize=7, loc="upper left", frameon=False)
+    figure.suptitle(str(array.attrs.get("long_name", name)).removeprefix(
+        "quantile over members of the "), fontsize=11)
+    figure.tight_layout(rect=(0, 0.05, 1, 1))
+    _footer(figure, dataset)
+    return figure
+
+
+def distribution_chart(dataset: xr.Dataset, name: str):
+    """The figure of the distribution over members of measure ``name``'s peak and (a
+    flow) total: per variant, box-like bars from the stored quantiles (the outer pair
+    as whiskers, the inner pair as the box, the median as a tick)."""
+    metrics = [m for m in ("peak_value", "total")
+               if f"measure_{name}_{m}_quantile" in dataset]
+    figure, axes = plt.subplots(1, len(metrics), squeeze=False,
+                                figsize=(4.6 * len(metrics), 3.6))
+    variants = list(dataset["variant"].values)
+    for axis, metric in zip(axes[0], metrics):
+        array = dataset[f"measure_{name}_{metric}_quantile"]
+        if "group" in array.dims:
+            array = array.sum("group")
+        probabilities = array["quantile"].values
+        for position, variant in enumerate(variants):
+            values = array.sel(variant=variant).values
+            low, high = values[0], values[-1]
+            inner = (_quantile(array.sel(variant=variant), 0.25),
+                     _quantile(array.sel(variant=variant), 0.75))
+            axis.plot([position, position], [low, high], color=LINE, linewidth=1)
+            axis.add_patch(plt.Rectangle((position - 0.2, inner[0]), 0.4,
+                                         inner[1] - inner[0], color=LINE, alpha=0.35))
+            axis.plot([position - 0.2, position + 0.2],
+                      [_quantile(array.sel(variant=variant), 0.5)] * 2, color=LINE,
+                      linewidth=2)
+        axis.set_xticks(range(len(variants)),
+                        [_title(dataset, v) for v in variants], fontsize=7, rotation=15)
+        axis.set_title(f"{name}: {metric.replace('_', ' ')} (quantiles "
+                       f"{probabilities[0]:g} to {probabilities[-1]:g})", fontsize=9)
+        axis.grid(axis="y", color="#dddddd", linewidth=0.6)
+    figure.tight_layout(rect=(0, 0.07, 1, 1))
+    _footer(figure, dataset)
+    return figure
+
+
+def plot_measures(dataset: xr.Dataset, directory: Path, names: Sequence[str] = (),
+                  bands: Sequence[int] = (50, 90)) -> list[Path]:
+    """Write the fan chart and the distribution chart of each measure (``names``, or
+    every one) as ``<measure>-fan.png``/``.svg`` and ``<measure>-peaks.png``/``.svg``
+    in ``directory``; the files written.
+
+    Raises
+    ------
+    UsageError : the result has no measures, an unknown name, or a band its quantiles
+        cannot draw.
+    """
+    known = measure_names(dataset)
+    if not known:
+        raise UsageError("RESULT", "", None, "the result has no measures to plot",
+                         "declare [[measures]] in the scenario and run it again")
+    for name in names:
+        if name not in known:
+            raise UsageError("--measure", "", name, f"the result has no measure {name!r}",
+                             "its measures are: " + ", ".join(known))
+    chosen = band_quantiles(dataset, bands)
+    directory.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name in names or known:
+        for suffix, figure in (("fan", fan_chart(dataset, name, chosen)),
+                               ("peaks", distribution_chart(dataset, name))):
+            for extension in FORMATS:
+                path = directory / f"{name}-{suffix}.{extension}"
+                figure.savefig(path, dpi=110)
+                written.append(path)
+            plt.close(figure)
+    return written
