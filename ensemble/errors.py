@@ -8,8 +8,9 @@ Every error the command line turns into a message is an :class:`EnsembleError`, 
   :class:`ScenarioError` for scenario files, :class:`ProfileError` for cluster profiles,
   :class:`UsageError` for command-line options and result or part files that cannot be
   used as asked.
-  :class:`ResultExists`, :class:`FingerprintMismatch`, :class:`NotAResult` and
-  :class:`PartError` are usage errors about result, work-in-progress and part files.
+  :class:`ResultExists`, :class:`FingerprintMismatch`, :class:`NotAResult`,
+  :class:`PartError`, :class:`WorkInProgress` and :class:`WorkLocked` are usage errors
+  about result, work-in-progress and part files.
 - :class:`RunError` (status 1, finished work kept): a run failed while it was computing
   (:class:`RunFailed`) or writing (:class:`StoreWriteError`, :class:`IncompleteWork`).
 """
@@ -107,6 +108,15 @@ class NotAResult(UsageError):
 
 class PartError(UsageError):
     """Part files of a sharded run that cannot be merged, or a file that is not a part."""
+
+
+class WorkInProgress(UsageError):
+    """The work directory of a result holds saved work that the run was not asked to
+    continue (``--resume``) or discard (``--force``), or is not the program's own."""
+
+
+class WorkLocked(UsageError):
+    """Another process is running on the same work directory (it holds its lock)."""
 
 
 class RunError(EnsembleError):

@@ -15,18 +15,25 @@ One directory per chunk of members::
         members.npz           step_error, observed_order, status, param_<name> and the
                               per-member metrics
         boot                  the boot of the operating system that wrote it
+        sha256sums            the SHA-256 of each file above (FIPS 180-4), written last,
+                              in the format of ``sha256sum`` (GNU coreutils)
 
 Trajectories are time-major so that the quantiles over members are computed block of
 times by block of times, reading each chunk file once whatever the number of members.
 A chunk is written under a temporary name and renamed into place when complete, so a
 process killed at any instant leaves the whole chunk or none of it.  Chunks are not
-synced one by one (see :mod:`.journal` on durability).
+synced one by one (see :mod:`.journal` on durability).  A chunk whose files do not match
+its checksums (:meth:`ChunkFiles.damage`: edited, truncated, replaced or missing) is not
+trusted: the journal computes it again.
 """
 
 from __future__ import annotations
 
+import concurrent.futures
 import errno
+import hashlib
 import os
+import re
 import shutil
 import threading
 from collections.abc import Callable, Mapping, Sequence
@@ -50,6 +57,10 @@ TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
 BOOT_FILE = "boot"
 """File in each chunk directory naming the boot of the system that wrote it."""
+CHECKSUM_FILE = "sha256sums"
+"""File in each chunk directory with the SHA-256 of each of its other files."""
+CHUNK_NAME = re.compile(rf"{CHUNK_PREFIX}v(\d+)-(\d+)-(\d+)")
+"""The directory name of a saved chunk (:func:`chunk_name`)."""
 CANDIDATE_PARTS = ("below", "nans", "offsets", "values")
 """Files ``<name>-<part>.npy`` of a chunk kept as candidates (:class:`Candidates`)."""
 NPY_HEADER_ROOM = 4096
@@ -101,12 +112,19 @@ class ChunkFiles:
     # ------------------------------------------------------------------ which chunks
 
     def saved(self) -> list[ChunkKey]:
-        """Keys of the chunks on disk, sorted."""
+        """Keys of the chunks on disk, sorted (entries whose name is not a chunk's are
+        left out: :meth:`strays`)."""
         keys = []
         for entry in self.work.glob(f"{CHUNK_PREFIX}v*"):
-            variant, first, end = entry.name.removeprefix(f"{CHUNK_PREFIX}v").split("-")
-            keys.append((int(variant), int(first), int(end)))
+            named = CHUNK_NAME.fullmatch(entry.name)
+            if named:
+                keys.append((int(named[1]), int(named[2]), int(named[3])))
         return sorted(keys)
+
+    def strays(self) -> list[Path]:
+        """Entries named like chunks whose name is not a chunk's."""
+        return [entry for entry in self.work.glob(f"{CHUNK_PREFIX}*")
+                if not CHUNK_NAME.fullmatch(entry.name)]
 
     def pending(self, chunks: Sequence[ChunkKey]) -> list[ChunkKey]:
         """The member ranges of ``chunks`` not yet saved.
@@ -167,6 +185,7 @@ class ChunkFiles:
                                        included)
             np.savez(temporary / MEMBER_FILE, **member_arrays)
             (temporary / BOOT_FILE).write_text(boot)
+            write_checksums(temporary)
             if final.exists():
                 shutil.rmtree(final)
             try:
@@ -192,6 +211,43 @@ class ChunkFiles:
         for part in CANDIDATE_PARTS:
             write_npy(directory / f"{name}-{part}.npy", getattr(kept, part))
         (directory / f"{name}-brackets").write_text(brackets.digest())
+
+    # ------------------------------------------------------------------ checking
+
+    def damaged(self, keys: Sequence[ChunkKey]) -> dict[ChunkKey, str]:
+        """The chunks of ``keys`` that fail :meth:`damage`, with what is wrong, checked
+        side by side on every core (hashing releases the interpreter lock)."""
+        if not keys:
+            return {}
+        with concurrent.futures.ThreadPoolExecutor(
+                min(len(keys), os.cpu_count() or 1), "ensemble-verify") as pool:
+            reasons = dict(zip(keys, pool.map(self.damage, keys)))
+        return {key: reason for key, reason in reasons.items() if reason is not None}
+
+    def damage(self, key: ChunkKey) -> str | None:
+        """What is wrong with saved chunk ``key``, or None when every file it holds is
+        the one it was written with (the checksums of :func:`write_checksums`)."""
+        directory = self.directory(key)
+        try:
+            listed = read_checksums(directory)
+        except (OSError, UnicodeDecodeError, ValueError):
+            return f"its list of checksums ({CHECKSUM_FILE}) is missing or unreadable"
+        try:
+            present = {entry.name for entry in directory.iterdir()} - {CHECKSUM_FILE}
+        except OSError as error:
+            return f"it cannot be read ({error.strerror})"
+        if MEMBER_FILE not in listed:
+            return f"its {MEMBER_FILE} is not listed"
+        if present != set(listed):
+            odd = sorted(present.symmetric_difference(listed))
+            return f"its files are not the ones it was written with ({', '.join(odd)})"
+        for name, expected in listed.items():
+            try:
+                if file_checksum(directory / name) != expected:
+                    return f"{name} does not match its checksum"
+            except OSError as error:
+                return f"{name} cannot be read ({error.strerror})"
+        return None
 
     # ------------------------------------------------------------------ reading
 
@@ -245,6 +301,38 @@ class ChunkFiles:
 
     def trajectory(self, key: ChunkKey, name: str) -> np.ndarray:
         return np.load(self.directory(key) / f"{name}.npy").transpose(2, 1, 0)
+
+
+# ---------------------------------------------------------------------- checksums
+
+def file_checksum(path: Path) -> str:
+    """The SHA-256 of the file ``path``, in hexadecimal."""
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
+def write_checksums(directory: Path) -> None:
+    """List the SHA-256 of every file of ``directory`` in its :data:`CHECKSUM_FILE`."""
+    lines = [f"{file_checksum(entry)}  {entry.name}\n"
+             for entry in sorted(directory.iterdir()) if entry.name != CHECKSUM_FILE]
+    (directory / CHECKSUM_FILE).write_text("".join(lines), encoding="ascii")
+
+
+def read_checksums(directory: Path) -> dict[str, str]:
+    """File name -> SHA-256 listed in ``directory``'s :data:`CHECKSUM_FILE`.
+
+    Raises
+    ------
+    OSError, UnicodeDecodeError : the list cannot be read.
+    ValueError : a line is not ``<64 hexadecimal digits>  <name>``.
+    """
+    listed = {}
+    for line in (directory / CHECKSUM_FILE).read_text(encoding="ascii").splitlines():
+        digest, separator, name = line.partition("  ")
+        if not separator or not re.fullmatch(r"[0-9a-f]{64}", digest) or not name:
+            raise ValueError(f"not a checksum line: {line!r}")
+        listed[name] = digest
+    return listed
 
 
 # ---------------------------------------------------------------------- .npy files

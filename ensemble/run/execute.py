@@ -15,7 +15,7 @@ from collections.abc import Callable, Generator, Iterator, Sequence
 from contextlib import closing, contextmanager
 from pathlib import Path
 
-from ensemble.errors import RunFailed
+from ensemble.errors import RunFailed, StoreWriteError
 from ensemble.integrate.interrupts import clear_stop_request, request_stop
 from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey
@@ -121,21 +121,50 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     models = lowered_models(scenario)
     journal = WorkJournal.open(path, result_layout(scenario, models, run_fingerprint,
                                                    history), resume=resume, force=force)
-    where = Workers(workers if workers is not None else scenario.compute.workers,
-                    address if address is not None else scenario.compute.address,
-                    cluster, started, processes, dashboard)
-    if chunk is None:
-        chunk = scenario.compute.chunk or default_chunk(
-            scenario, models[0].n_states, models[0].n_flow_elements, where.count(),
-            backend, kernel_block(models[0], scenario, backend))
-    keys = journal.pending(plan_chunks(scenario, chunk, member_range=member_range))
-    _import_writer_meanwhile()
+    try:
+        where = Workers(workers if workers is not None else scenario.compute.workers,
+                        address if address is not None else scenario.compute.address,
+                        cluster, started, processes, dashboard)
+        if chunk is None:
+            chunk = scenario.compute.chunk or default_chunk(
+                scenario, models[0].n_states, models[0].n_flow_elements, where.count(),
+                backend, kernel_block(models[0], scenario, backend))
+        planned = plan_chunks(scenario, chunk, member_range=member_range)
+        _import_writer_meanwhile()
+        for _ in range(2):
+            _compute_pending(journal, scenario, models, planned, backend, where, progress,
+                             candidates=finish is None)   # a part file needs every value
+            if not journal.drop_damaged():  # every chunk checked before finishing
+                break
+        else:
+            raise StoreWriteError(f"chunks saved in {journal.work} were damaged again after "
+                                  "being computed again; check the disk")
+    except BaseException:
+        journal.close()
+        raise
+    progress.note(f"every chunk saved; writing {path}")
+    if finish is not None:
+        return finish(journal)
+    return journal.finish(lambda key: compute_chunk(scenario, models[key[0]], key,
+                                                    backend).result)
+
+
+def _compute_pending(journal: WorkJournal, scenario: Scenario,
+                     models: Sequence[LoweredModel], planned: Sequence[ChunkKey],
+                     backend: str, where: Workers, progress: Progress,
+                     candidates: bool) -> None:
+    """Compute and save the chunks of ``planned`` that ``journal`` lacks, after printing
+    what the journal has to say (damaged chunks it removed, a lock it took over)."""
+    for note in journal.notes:
+        progress.note(note)
+    journal.notes.clear()
+    keys = journal.pending(planned)
     progress.start(len(keys), len(journal.saved()), sum(end - start for _, start, end in keys))
     clear_stop_request()
     try:
         if keys:
             _compute_and_save(journal, scenario, models, keys, backend, where, progress,
-                              candidates=finish is None)   # a part file needs every value
+                              candidates)
     except KeyboardInterrupt:
         request_stop()      # this process's worker threads end their chunks too
         raise
@@ -144,11 +173,6 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
                         "with --resume)") from failure.__cause__
     finally:
         progress.close()
-    progress.note(f"every chunk saved; writing {path}")
-    if finish is not None:
-        return finish(journal)
-    return journal.finish(lambda key: compute_chunk(scenario, models[key[0]], key,
-                                                    backend).result)
 
 
 def _import_writer_meanwhile() -> None:

@@ -38,8 +38,9 @@ import numpy as np
 import psutil
 
 from ensemble.durable import fsync_directory, replace_atomically
-from ensemble.errors import FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError
-from ensemble.output.brackets import BracketCache
+from ensemble.errors import (FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError,
+                             WorkInProgress)
+from ensemble.output.brackets import FILE_PREFIX, BracketCache
 from ensemble.output.finish import DEFAULT_BLOCK_BYTES, Finisher
 from ensemble.output.layout import ResultLayout
 from ensemble.output.quantiles import in_summary
@@ -48,6 +49,8 @@ from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
 from ensemble.output.result_file import is_complete, unfinished_files
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.chunk_files import BOOT_FILE, CHUNK_PREFIX, MEMBER_FILE, ChunkFiles
+from ensemble.run.work_directory import (LOCK_FILE, OWNER_MARK, WorkLock, create_owned,
+                                         is_owned)
 
 MANIFEST = "manifest.json"
 MARKER = "driver-marker"
@@ -55,6 +58,9 @@ MARKER = "driver-marker"
 the same token back sees the same directory, and may save chunks there itself."""
 DURABLE_LIST = "durable-chunks"
 """File in the work directory listing, a name a line, the chunks made durable."""
+TAKE_ATTEMPTS = 5
+"""Times :meth:`WorkJournal.open` looks for the work directory again when a run that
+held it removes it meanwhile (it finished)."""
 CHECKPOINT_SECONDS = 60.0
 """Seconds between two calls of :meth:`WorkJournal.make_durable` on the chunks saved
 meanwhile: a crash of the operating system loses at most about this much work."""
@@ -90,6 +96,12 @@ class WorkJournal:
         self.block_bytes = block_bytes
         self.chunks = ChunkFiles(self.work, layout)
         self.brackets = BracketCache(layout, self.chunks, self.work, block_bytes)
+        self.notes: list[str] = []
+        """What :meth:`open` found and did that the user should hear of (a lock taken
+        over, damaged chunks removed), one line each."""
+        self._lock: WorkLock | None = None
+        self._verified: set[ChunkKey] = set()
+        """Chunks that passed :meth:`drop_damaged` and were not saved again since."""
         self.block_count = 0
         """Blocks of trajectories gathered by :meth:`finish` (for tests and tuning)."""
         self.largest_block_bytes = 0
@@ -102,7 +114,8 @@ class WorkJournal:
     @classmethod
     def open(cls, path: str | os.PathLike[str], layout: ResultLayout, *, resume: bool,
              force: bool, block_bytes: int = DEFAULT_BLOCK_BYTES) -> WorkJournal:
-        """Open the work in progress of result ``path``.
+        """Open the work in progress of result ``path``, holding its lock until
+        :meth:`finish`, :meth:`discard` or :meth:`close`.
 
         Parameters
         ----------
@@ -110,10 +123,11 @@ class WorkJournal:
             Missing parent directories are created.
         layout : the result's layout; its fingerprint is recorded in the manifest.
         resume : keep the chunks of an existing ``.partial`` (whose fingerprint must
-            equal ``layout.fingerprint``) and remove stray temporaries; without it, an
-            existing ``.partial`` is discarded.  A ``.partial`` without a readable
-            manifest is started afresh either way.
-        force : allow replacing an existing ``path`` (only at :meth:`finish`, so the old
+            equal ``layout.fingerprint``) that pass their checks: a chunk that a crash
+            of the system may have cut short, or whose files do not match their
+            checksums, is removed and computed again (:attr:`notes` says so).
+        force : discard the saved chunks of an existing ``.partial`` when not resuming,
+            and allow replacing an existing ``path`` (only at :meth:`finish`, so the old
             file stays until the new one is complete).
         block_bytes : memory for one block of trajectories in :meth:`finish`.
 
@@ -121,6 +135,10 @@ class WorkJournal:
         ------
         ResultExists : ``path`` exists and ``force`` is false (callers that resume check
             :meth:`is_complete` first).
+        WorkInProgress : ``<path>.partial`` holds saved chunks and neither ``resume``
+            nor ``force`` was given, or it was not made by this program (it is then
+            left as it is, whatever the options).
+        WorkLocked : another process is running on the same ``<path>.partial``.
         FingerprintMismatch : resume of work made with a different fingerprint.
         StoreWriteError : the directory cannot be created or written.
         """
@@ -130,18 +148,40 @@ class WorkJournal:
                                "use --force to replace it")
         journal = cls(path, layout, block_bytes=block_bytes)
         try:
-            journal._prepare(resume)
+            journal._take()
+            journal._prepare(resume, force)
         except OSError as error:
+            journal.close()
             raise StoreWriteError.from_os_error(error, journal.work, journal.work) from error
+        except BaseException:
+            journal.close()
+            raise
         return journal
 
-    def _prepare(self, resume: bool) -> None:
-        """Adopt or create the work directory (see :meth:`open`)."""
-        if self.work.exists() and not self.work.is_dir():
-            raise StoreWriteError(f"{self.work} exists and is not a work directory")
+    def _take(self) -> None:
+        """Find or create the work directory and take its lock."""
+        for _ in range(TAKE_ATTEMPTS):
+            create_owned(self.work)
+            if not is_owned(self.work):
+                raise WorkInProgress(
+                    str(self.work), "", None, "exists but was not made by ensemble (it has "
+                    f"no {OWNER_MARK} file), so it is left as it is",
+                    "move it away, or give the result another name (-o)")
+            self._lock = WorkLock.acquire(self.work)
+            if self._lock is not None:
+                if self._lock.previous is not None:
+                    self.notes.append(f"taking over {self.work} from "
+                                      f"{self._lock.previous}, which is no longer running")
+                return
+        raise StoreWriteError(f"{self.work} keeps disappearing: another run is finishing "
+                              "the same result")
+
+    def _prepare(self, resume: bool, force: bool) -> None:
+        """Adopt the work directory, or start it afresh (see :meth:`open`)."""
         for stray in unfinished_files(self.path):
             stray.unlink(missing_ok=True)       # a result file of a killed finish
         manifest = self._read_manifest()
+        saved = len(self.saved())
         if resume and manifest is not None:
             if manifest.get("fingerprint") != self.layout.fingerprint:
                 raise FingerprintMismatch(
@@ -149,20 +189,87 @@ class WorkJournal:
                     "holds work of a different scenario or settings (fingerprint "
                     f"{str(manifest.get('fingerprint'))[:12]}..., this run "
                     f"{self.layout.fingerprint[:12]}...)",
-                    "run without --resume to start afresh")
-            for stray in self.work.glob(".*"):  # files and chunks half-written when killed
-                if stray.is_dir():
-                    shutil.rmtree(stray, ignore_errors=True)
-                else:
-                    stray.unlink(missing_ok=True)
-            self._drop_untrusted_chunks()
+                    "resume with the scenario and options that made it, or discard it "
+                    "with --force (without --resume)")
+            self._adopt()
             return
-        if self.work.exists():
-            shutil.rmtree(self.work)
-        self.work.mkdir(parents=True)
+        if saved and not force:
+            why = ("holds" if not resume else
+                   "has no readable manifest, so nothing tells which run made its")
+            raise WorkInProgress(
+                str(self.work), "", None, f"{why} {saved} saved chunk{'s' * (saved != 1)} "
+                "of an unfinished run",
+                "continue it with --resume, or discard it with --force" if not resume
+                else "discard it with --force")
+        for entry in self.work.iterdir():
+            if entry.name in (OWNER_MARK, LOCK_FILE):
+                continue
+            if entry.is_dir() and not entry.is_symlink():
+                shutil.rmtree(entry)
+            else:
+                entry.unlink()
         text = json.dumps(self._manifest(), indent=1)
         replace_atomically(self.work / MANIFEST, lambda target: target.write_text(text))
-        fsync_directory(self.work.parent)
+
+    def _adopt(self) -> None:
+        """Keep the saved work that passes its checks: remove files and chunks
+        half-written when a run was killed, chunks a crash of the system may have cut
+        short, damaged chunks and unreadable brackets."""
+        for stray in [*self.work.glob(".*"), *self.chunks.strays()]:
+            if stray.is_dir() and not stray.is_symlink():
+                shutil.rmtree(stray, ignore_errors=True)
+            else:
+                stray.unlink(missing_ok=True)
+        self._drop_untrusted_chunks()
+        self._drop_damaged(self.saved(), "computing it again")
+        for stored in [path for prefix in FILE_PREFIX.values()
+                       for path in self.work.glob(f"{prefix}v*.npz")]:
+            try:
+                with np.load(stored) as brackets:
+                    for name in brackets.files:
+                        brackets[name]
+            except Exception:               # noqa: BLE001 (any damage: derived again)
+                stored.unlink(missing_ok=True)
+                self.notes.append(f"{stored} was damaged; deriving it again")
+
+    def _drop_damaged(self, keys: Sequence[ChunkKey], then: str) -> dict[ChunkKey, str]:
+        """Remove the chunks of ``keys`` whose files fail their checksums; return a line
+        for each (ending in ``then``), also added to :attr:`notes`."""
+        lines = {}
+        for key, reason in self.chunks.damaged(keys).items():
+            shutil.rmtree(self.chunks.directory(key), ignore_errors=True)
+            variant, first, end = key
+            lines[key] = (f"the saved chunk of members {first}..{end - 1} of variant "
+                          f"{self.layout.variants[variant]!r} is damaged ({reason}); {then}")
+        self.notes.extend(lines.values())
+        return lines
+
+    def drop_damaged(self) -> list[ChunkKey]:
+        """Check every saved chunk against its checksums, as a run does before it
+        finishes; remove those that fail (with a note each) and return their keys, for
+        the caller to compute again."""
+        keys = self.saved()
+        damaged = self._drop_damaged(keys, "computing it again")
+        self._verified.update(key for key in keys if key not in damaged)
+        return list(damaged)
+
+    def close(self) -> None:
+        """Release the work directory's lock (the work in progress stays); a journal
+        that does not hold it is left as it is."""
+        if self._lock is not None:
+            self._lock.release()
+            self._lock = None
+
+    def discard(self) -> None:
+        """Remove the work in progress and release the lock (only a journal that holds
+        it: a copy in another process does nothing)."""
+        if self._lock is not None:
+            shutil.rmtree(self.work, ignore_errors=True)
+            self.close()
+
+    def __getstate__(self) -> dict[str, object]:
+        """A copy for a task in another process holds no lock and no notes."""
+        return {**self.__dict__, "_lock": None, "notes": []}
 
     def _manifest(self) -> dict[str, object]:
         layout = self.layout
@@ -273,6 +380,7 @@ class WorkJournal:
         trajectories = {variable.name: variable.values(result) for variable in TRAJECTORIES}
         arrays = chunk_member_arrays(self.layout, key, result, reported, trajectories)
         brackets = self.brackets.cutting(key) if candidates else None
+        self._verified.discard(key)
         self.chunks.write(key, trajectories, arrays, brackets, in_summary(result.status),
                           boot_identity())
 
@@ -334,33 +442,45 @@ class WorkJournal:
                                  + " not saved")
 
     def finish(self, recompute: Callable[[ChunkKey], ChunkResult] | None = None) -> Path:
-        """Write the result file (:func:`ensemble.output.writer.write_result`) and remove
-        the work in progress.
+        """Write the result file (:func:`ensemble.output.writer.write_result`), remove
+        the work in progress and release its lock (which is released also when the
+        finish fails: the chunks are kept for a resume).
 
-        Every member of every variant must be saved.  Chunks saved as candidates give
-        the quantiles they would give whole; for the rare cell whose ranks the brackets
-        missed, and for a chunk cut with other brackets (not expected), ``recompute(key)``
-        (the chunk computed again, same bits) supplies every value.
+        Every member of every variant must be saved, in chunks whose files match their
+        checksums (those not checked by :meth:`drop_damaged` since they were saved are
+        checked here).  Chunks saved as candidates give the quantiles they would give
+        whole; for the rare cell whose ranks the brackets missed, and for a chunk cut
+        with other brackets (not expected), ``recompute(key)`` (the chunk computed again,
+        same bits) supplies every value.
 
         Raises
         ------
-        IncompleteWork : members are missing (the message names the ranges), or a chunk
-            must be computed again and ``recompute`` is None.
+        IncompleteWork : members are missing (the message names the ranges), a chunk is
+            damaged (it is removed, for a resume to compute it again), or a chunk must be
+            computed again and ``recompute`` is None.
         StoreWriteError : the file could not be written; the chunks are kept.
         """
         from ensemble.output.writer import write_result   # xarray: only to write a result
 
-        self._check_complete()
-        chunks = ChunkFiles(self.work, self.layout, recompute)
-        finisher = Finisher(self.layout, chunks,
-                            BracketCache(self.layout, chunks, self.work, self.block_bytes),
-                            self.block_bytes)
-        write_result(self.path, finisher, self.work)
-        self.block_count += finisher.block_count
-        self.largest_block_bytes = max(self.largest_block_bytes,
-                                       finisher.largest_block_bytes)
-        # the result is complete; a leftover work directory is only clutter
-        shutil.rmtree(self.work, ignore_errors=True)
+        try:
+            damaged = self._drop_damaged(
+                [key for key in self.saved() if key not in self._verified],
+                "continue with --resume to compute it again")
+            if damaged:
+                raise IncompleteWork("\n".join(damaged.values()))
+            self._check_complete()
+            chunks = ChunkFiles(self.work, self.layout, recompute)
+            finisher = Finisher(self.layout, chunks,
+                                BracketCache(self.layout, chunks, self.work, self.block_bytes),
+                                self.block_bytes)
+            write_result(self.path, finisher, self.work)
+            self.block_count += finisher.block_count
+            self.largest_block_bytes = max(self.largest_block_bytes,
+                                           finisher.largest_block_bytes)
+            # the result is complete; a leftover work directory is only clutter
+            shutil.rmtree(self.work, ignore_errors=True)
+        finally:
+            self.close()
         return self.path
 
 
