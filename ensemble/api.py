@@ -211,6 +211,29 @@ def _run(scenario: Scenario, started, *, output, chunk, workers, address, resume
                             **(engine_options(scenario, part, backend) if part else {}))
 
 
+def step_check_report(path: str | os.PathLike[str]) -> list[str]:
+    """The step check in plain words for each variant of a result (or part) file with
+    flagged members: the share flagged per reason, the worst ``step_error`` and a step
+    that would pass (:mod:`ensemble.present.step_check`); no lines when no member is
+    flagged."""
+    import xarray as xr
+
+    from ensemble.present.step_check import advice
+
+    lines = []
+    with xr.open_dataset(path, decode_times=False) as dataset:
+        names = dataset["variant_name"].values if "variant_name" in dataset else \
+            range(dataset.sizes["variant"])
+        for index, name in enumerate(names):
+            status = dataset["status"].isel(variant=index).values
+            errors = dataset["step_error"].isel(variant=index).values \
+                if "step_error" in dataset else status * float("nan")
+            found = advice(status, errors, str(dataset.attrs.get("solver_method", "")),
+                           float(dataset.attrs.get("solver_step", float("nan"))))
+            lines.extend(f"variant {name}: {line}" for line in found)
+    return lines
+
+
 def status_counts(path: str | os.PathLike[str]) -> dict[str, int]:
     """Members of a result file behind each status bit, over every variant.
 

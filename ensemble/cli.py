@@ -118,6 +118,9 @@ def run(
         "--shard", metavar="I/N", callback=_shard_option,
         help="Run only shard I of N (0-based) into a part file for `ensemble merge`.")
     ] = None,
+    strict: Annotated[bool, typer.Option(
+        "--strict", help="Exit with status 1 when any member is flagged (the file is "
+                         "still written), for pipelines that must stop.")] = False,
 ) -> None:
     """Run every variant of SCENARIO and write the result file."""
     import time
@@ -139,7 +142,10 @@ def run(
                        backend=backend.value if backend else None,
                        history=_history(), cluster=profile or "local", shard=shard,
                        processes=processes, dashboard=dashboard_address or dashboard)
-    _report_run(path, loaded, time.monotonic() - began)
+    flagged = _report_run(path, loaded, time.monotonic() - began)
+    if strict and flagged:
+        typer.echo("error: members are flagged and --strict was given", err=True)
+        raise typer.Exit(1)
 
 
 def _stop_on_signals() -> None:
@@ -181,9 +187,10 @@ def _loaded_for_run(scenario: Path, member_count: int | None, seed: int | None,
     return loaded, profile
 
 
-def _report_run(path: Path, loaded, seconds: float) -> None:
+def _report_run(path: Path, loaded, seconds: float) -> bool:
     """What a finished run prints: the result, its size and time, the members behind
-    each status bit, and the caution."""
+    each status bit, the step check in plain words when members are flagged, and the
+    caution; whether any member is flagged."""
     from ensemble import api
     from ensemble.about import CAUTION
 
@@ -193,7 +200,10 @@ def _report_run(path: Path, loaded, seconds: float) -> None:
                f"in {seconds:.1f} s")
     flagged = ", ".join(f"{word} {count}" for word, count in counts.items())
     typer.echo(f"flagged members: {flagged}")
+    for line in api.step_check_report(path):
+        typer.echo(line)
     typer.echo(CAUTION)
+    return any(counts.values())
 
 
 INTERRUPTED = 130

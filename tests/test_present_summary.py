@@ -103,3 +103,25 @@ def test_flagged_members_get_the_step_check_in_plain_words():
     assert step_that_passes(0.5, 16.0, 4) == pytest.approx(SAFETY * 0.25)
     assert f"{SAFETY * 0.25:.3g} days" in lines[1]
     assert advice(np.zeros(3, np.uint8), np.zeros(3), "rk4", 0.5) == []
+
+
+def test_a_strict_run_with_flagged_members_explains_the_step_and_exits_1(tmp_path):
+    """A tolerance no fixed step of this size meets flags every member (the project's
+    reference, ``[solver.check]``): the run writes its file, says so in plain words, and
+    --strict makes it exit 1; without --strict it exits 0."""
+    from support import GROUPED_TOML, run_cli
+
+    text = GROUPED_TOML.format(start="", members=4, keep_members="false", compression=1)
+    text = text.replace('report_every = 1', 'report_every = 1\ncheck = { rtol = 1e-12, '
+                        'atol = 1e-12 }')
+    (tmp_path / "tight.toml").write_text(text, encoding="utf-8")
+    strict = run_cli("run", "tight.toml", "--strict", "--workers", "0", "--backend",
+                     "numpy", "--output", "strict.nc", cwd=tmp_path)
+    assert strict.returncode == 1, strict.stderr
+    assert (tmp_path / "strict.nc").exists()
+    assert "100% of the members are flagged" in strict.stdout
+    assert "would pass: set [solver] step (now 0.5)" in strict.stdout
+    relaxed = run_cli("run", "tight.toml", "--workers", "0", "--backend", "numpy",
+                      "--output", "relaxed.nc", cwd=tmp_path)
+    assert relaxed.returncode == 0, relaxed.stderr
+    assert "members are flagged" in relaxed.stdout
