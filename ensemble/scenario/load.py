@@ -44,7 +44,7 @@ from ensemble.scenario.structure import (MODEL_KEYS, Scope, Structure, read_flow
                                          read_structure)
 
 _TOP_LEVEL = ("scenario", "model", "parameters", "sampling", "variants", "solver", "output",
-              "compute", "measures")
+              "compute", "measures", "observations")
 
 
 def load_scenario(path: str | Path, *, member_count: int | None = None,
