@@ -24,8 +24,9 @@ from ensemble.run.progress import Progress
 from ensemble.run.worker_jobs import make_jobqueue_cluster
 from support import REPO, run_cli, write_scenario
 
-PAGES = ("/status", "/health", "/info/main/workers.html", "/metrics", "/json/index.html")
-"""Pages dask's scheduler and workers serve when they serve any (distributed 2026.8)."""
+PAGES = ("/health", "/status", "/info/main/workers.html", "/metrics", "/json/index.html")
+"""Pages dask's scheduler and workers serve when they serve any (distributed 2026.8); the
+first answers at once from any of their web servers."""
 
 
 def listening() -> list[tuple[str, int]]:
@@ -46,11 +47,11 @@ def is_loopback(address: str) -> bool:
     return ipaddress.ip_address(address).is_loopback
 
 
-def http_status(address: str, port: int, page: str) -> int | None:
+def http_status(address: str, port: int, page: str, wait: float) -> int | None:
     """The status of ``GET page`` on a listener, or None when it does not answer HTTP
-    (a dask connection port, which waits for more bytes)."""
+    within ``wait`` seconds (a dask connection port, which waits for more bytes)."""
     try:
-        with socket.create_connection((address, port), timeout=2) as connection:
+        with socket.create_connection((address, port), timeout=wait) as connection:
             connection.sendall(f"GET {page} HTTP/1.0\r\n\r\n".encode())
             reply = connection.recv(64)
     except OSError:
@@ -61,11 +62,14 @@ def http_status(address: str, port: int, page: str) -> int | None:
 
 
 def pages(address: str, port: int) -> dict[str, int | None]:
-    """What a listener answers to each of :data:`PAGES` (None: it does not speak HTTP)."""
-    first = http_status(address, port, PAGES[0])
+    """What a listener answers to each of :data:`PAGES` (None: it does not speak HTTP).
+    A dashboard's first page may take seconds to draw on a busy machine, hence the long
+    wait once the listener is known to answer HTTP."""
+    first = http_status(address, port, PAGES[0], wait=2)
     if first is None:
         return dict.fromkeys(PAGES)
-    return {PAGES[0]: first} | {page: http_status(address, port, page) for page in PAGES[1:]}
+    return {PAGES[0]: first} | {page: http_status(address, port, page, wait=60)
+                                for page in PAGES[1:]}
 
 
 def sockets_during_run(tmp_path: Path, monkeypatch, **options) -> dict:
