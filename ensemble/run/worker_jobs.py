@@ -110,8 +110,8 @@ class SubmissionWatch:
 
     def answered(self, refusal: str | None) -> None:
         """Note one submission's answer: accepted (None) or refused (its message)."""
-        first = refusal is not None and self.refusal is None
         with self._answered:
+            first = refusal is not None and self.refusal is None
             if first:
                 self.refusal = refusal
             self._answers += 1
@@ -141,6 +141,7 @@ class _ReportsSubmissions:
     submit_command: str
 
     async def start(self) -> None:
+        """Submit the job (dask-jobqueue's start) and report the answer."""
         try:
             await super().start()       # writes the script, submits it, reads the job id
         except Exception as error:
