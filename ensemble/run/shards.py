@@ -9,7 +9,15 @@ and what is needed to rebuild the scenario (its text, member count, seed, backen
 :func:`merge_parts` feeds every part's members into one
 :class:`~ensemble.run.journal.WorkJournal` and finishes it, so the result is the file a
 single run would have written, identical in every number: chunks are pure functions of the
-member indices, and the summaries do not depend on how members were chunked.  A part
+member indices, and the summaries do not depend on how members were chunked.
+
+Every part is checked before its members count: its fingerprint must follow from the
+scenario text, member count, seed and backend it records, and its numbers and those
+attributes must match the checksum written into it (``content_sha256``: SHA-256, FIPS
+180-4, of the attributes and of each stored variable's values member by member,
+:class:`PartDigest`).  The checksum guards against parts damaged, edited or mixed up
+after they were written; it is not a signature (whoever edits a part on purpose can
+write a new checksum).  A part
 stores the chunk results' own series (the trajectory variables of
 :mod:`ensemble.output.variables` that are not derived from others), from which the journal
 makes every trajectory variable again.
@@ -19,10 +27,11 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import hashlib
+import json
 import os
-import shutil
 import tomllib
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from decimal import Decimal
 from pathlib import Path
@@ -32,11 +41,11 @@ import netCDF4
 import numpy as np
 
 from ensemble.durable import replace_atomically
-from ensemble.errors import PartError
+from ensemble.errors import InputError, PartError
 from ensemble.output.layout import ResultLayout
 from ensemble.output.variables import MEMBER_VALUE_NAMES, TRAJECTORIES
 from ensemble.records import ChunkKey, ChunkResult
-from ensemble.run.journal import WorkJournal, partial_path
+from ensemble.run.journal import WorkJournal
 from ensemble.run.layout import lowered_models, result_layout
 from ensemble.run.plan import fingerprint, plan_chunks, shard_range
 from ensemble.scenario.load import validate
@@ -50,6 +59,13 @@ BLOCK_BYTES = 64 * 2**20
 
 CHUNK_BYTES = 2**20
 """Target size of one netCDF chunk of a part's trajectories."""
+
+IDENTITY = ("ensemble_part", "fingerprint", "shard_index", "shard_count", "member_start",
+            "member_end", "members", "seed", "backend", "scenario")
+"""The attributes of a part that its content checksum covers, besides its numbers."""
+
+CHECKSUM_ATTRIBUTE = "content_sha256"
+"""The attribute of a part holding its content checksum (:class:`PartDigest`)."""
 
 
 MERGE = "ensemble merge"
@@ -135,31 +151,83 @@ def write_part(journal: WorkJournal, shard: Shard, backend: str) -> Path:
     missing = journal.pending(plan_chunks(layout.scenario, max(end - start, 1),
                                           member_range=(start, end)))
     if missing:
+        journal.close()
         raise RuntimeError(f"shard {shard}: members {missing} were never saved")
     path = Path(journal.path)
 
     def write(temporary: Path) -> None:
         with netCDF4.Dataset(temporary, "w", format="NETCDF4") as part:
             _define_part(part, layout, shard, backend, start, end)
+            digest = PartDigest(part)
             for key in journal.saved():
-                _write_chunk(part, layout, key, *journal.load(key), start)
+                _write_chunk(part, layout, key, *journal.load(key), start, digest)
+            part.setncattr(CHECKSUM_ATTRIBUTE, digest.hexdigest())
 
-    replace_atomically(path, write)
-    shutil.rmtree(partial_path(path), ignore_errors=True)
+    try:
+        replace_atomically(path, write)
+    except BaseException:
+        journal.close()
+        raise
+    journal.discard()
     return path
 
 
+class PartDigest:
+    """The content checksum of a part: SHA-256 of its :data:`IDENTITY` attributes and of
+    each stored variable's values, fed member by member in the order of the variants and
+    members (so that any blocks of members, written or read, give the same checksum),
+    each value in the variable's type, little-endian.
+
+    Parameters
+    ----------
+    part : the open part file, whose attributes and variables are covered.
+    """
+
+    def __init__(self, part: netCDF4.Dataset):
+        attributes = part.__dict__
+        self.identity = json.dumps({name: _plain(attributes.get(name)) for name in IDENTITY},
+                                   sort_keys=True)
+        self.types = {name: variable.dtype.newbyteorder("<")
+                      for name, variable in part.variables.items() if name != "member"}
+        self.hashes = {name: hashlib.sha256() for name in sorted(self.types)}
+
+    def add(self, name: str, values: np.ndarray) -> None:
+        """Values of variable ``name`` for the next members of one variant, members on
+        the last axis for the parameters, on the first otherwise."""
+        by_member = np.moveaxis(values, -1, 0) if name.startswith("param_") else values
+        self.hashes[name].update(np.ascontiguousarray(by_member, dtype=self.types[name]))
+
+    def hexdigest(self) -> str:
+        whole = hashlib.sha256(self.identity.encode("utf-8"))
+        for name, digest in self.hashes.items():
+            whole.update(f"\n{name} {digest.hexdigest()}".encode("ascii"))
+        return whole.hexdigest()
+
+
+def _plain(value: object) -> object:
+    """An attribute's value as JSON can hold it (numpy numbers as Python numbers)."""
+    return value.item() if isinstance(value, np.generic) else value
+
+
 def _write_chunk(part: netCDF4.Dataset, layout: ResultLayout, key: ChunkKey,
-                 result: ChunkResult, reported: dict[str, np.ndarray], start: int) -> None:
-    """One saved chunk's members into the part file."""
+                 result: ChunkResult, reported: dict[str, np.ndarray], start: int,
+                 digest: PartDigest) -> None:
+    """One saved chunk's members into the part file (and its checksum)."""
     variant, first, last = key
     rows = slice(first - start, last - start)
-    for variable in STORED:
-        part[variable.source][variant, rows] = getattr(result, variable.source)
-    for name in (*MEMBER_VALUE_NAMES, "status"):
-        part[name][variant, rows] = getattr(result, name)
-    for name in layout.parameters:
-        part[f"param_{name}"][variant, ..., rows] = reported[name]
+    for name, values in _chunk_values(layout, result, reported).items():
+        part[name][(variant, ..., rows) if name.startswith("param_") else (variant, rows)] = (
+            values)
+        digest.add(name, values)
+
+
+def _chunk_values(layout: ResultLayout, result: ChunkResult,
+                  reported: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Variable of a part -> the values a chunk gives it."""
+    values = {variable.source: getattr(result, variable.source) for variable in STORED}
+    values.update({name: getattr(result, name) for name in (*MEMBER_VALUE_NAMES, "status")})
+    values.update({f"param_{name}": reported[name] for name in layout.parameters})
+    return values
 
 
 def _define_part(part: netCDF4.Dataset, layout: ResultLayout, shard: Shard, backend: str,
@@ -216,6 +284,13 @@ class PartInfo:
     shard: Shard
     member_range: tuple[int, int]
     history: str
+    scenario_text: str
+    scenario_path: str
+    member_count: int
+    seed: int
+    backend: str
+    checksum: str
+    """Its content checksum (:class:`PartDigest`) as written into it."""
 
 
 def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
@@ -223,7 +298,8 @@ def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
 
     Raises
     ------
-    PartError : the file is missing, not netCDF, or not a part file.
+    PartError : the file is missing, not netCDF, not a part file, or lacks an attribute
+        (the message names it).
     """
     path = Path(path)
     try:
@@ -235,11 +311,31 @@ def read_part_info(path: str | os.PathLike[str]) -> PartInfo:
     if attributes.get("ensemble_part") != PART_FORMAT:
         raise PartError(str(path), "", None, "not a shard part file",
                         "parts are made by `ensemble run --shard I/N`")
-    return PartInfo(path=path, fingerprint=str(attributes["fingerprint"]),
-                    shard=Shard(int(attributes["shard_index"]), int(attributes["shard_count"])),
-                    member_range=(int(attributes["member_start"]),
-                                  int(attributes["member_end"])),
-                    history=str(attributes["history"]))
+
+    def attribute(name: str, kind: type) -> Any:
+        try:
+            value = attributes[name]
+            return kind(value.item() if isinstance(value, np.generic) else value)
+        except KeyError:
+            problem = "is missing"
+        except (TypeError, ValueError):
+            problem = "is not a valid value"
+        raise PartError(str(path), name, None, f"this attribute of the part {problem}",
+                        "make the part again with `ensemble run --shard I/N`")
+
+    try:
+        shard = Shard(attribute("shard_index", int), attribute("shard_count", int))
+    except ValueError as error:
+        raise PartError(str(path), "shard_index", None, str(error)) from None
+    return PartInfo(path=path, fingerprint=attribute("fingerprint", str), shard=shard,
+                    member_range=(attribute("member_start", int),
+                                  attribute("member_end", int)),
+                    history=attribute("history", str),
+                    scenario_text=attribute("scenario", str),
+                    scenario_path=attribute("scenario_path", str),
+                    member_count=attribute("members", int), seed=attribute("seed", int),
+                    backend=attribute("backend", str),
+                    checksum=attribute(CHECKSUM_ATTRIBUTE, str))
 
 
 def check_parts(parts: Sequence[PartInfo]) -> None:
@@ -296,59 +392,105 @@ def merge_parts(parts: Sequence[str | os.PathLike[str]], output: str | os.PathLi
 
     Raises
     ------
-    PartError : parts of different runs, repeated or missing shards, or not part files
-        (nothing is written).
+    PartError : parts of different runs, repeated or missing shards, not part files, or
+        a part whose fingerprint does not follow from its scenario or whose numbers or
+        attributes do not match its content checksum (nothing is written; the message
+        names the part).
     ensemble.errors.ResultExists : ``output`` exists and ``force`` is false.
     """
     infos = [read_part_info(path) for path in parts]
     check_parts(infos)
     infos.sort(key=lambda info: info.shard.index)
-    scenario, backend = _scenario_of(infos[0], output)
+    made: dict[tuple[str, int, int, str], Scenario] = {}
+    scenario = [_scenario_of(info, output, made) for info in infos][0]
     layout = result_layout(scenario, lowered_models(scenario), infos[0].fingerprint,
                            f"{infos[0].history}\n{history}")
     journal = WorkJournal.open(output, layout, resume=False, force=force)
-    for info in infos:
-        for key, result, reported in _read_chunks(info, layout):
-            journal.save(key, result, reported)
+    try:
+        for info in infos:
+            _merge_part(journal, info, layout)
+    except BaseException:
+        journal.discard()       # nothing of a refused merge is kept
+        raise
     return journal.finish()
 
 
-def _scenario_of(info: PartInfo, output: str | os.PathLike[str]) -> tuple[Scenario, str]:
+def _scenario_of(info: PartInfo, output: str | os.PathLike[str],
+                 made: dict[tuple[str, int, int, str], Scenario]) -> Scenario:
     """The scenario a part was made from (its recorded text and overrides), writing to
-    ``output``, checked against the part's fingerprint."""
-    with netCDF4.Dataset(info.path) as part:
-        text, original = str(part.scenario), str(part.scenario_path)
-        member_count, seed, backend = int(part.members), int(part.seed), str(part.backend)
-    scenario = validate(tomllib.loads(text, parse_float=Decimal), original, text)
-    scenario = dataclasses.replace(
-        scenario, member_count=member_count, seed=seed,
-        output=dataclasses.replace(scenario.output, path=os.fspath(output)))
-    if fingerprint(scenario, backend) != info.fingerprint:
-        raise PartError(str(info.path), "", None, "made by a different version of "
-                        "ensemble (its fingerprint does not match its scenario here)",
-                        "merge with the version that made the parts")
-    return scenario, backend
+    ``output``, checked against the part's fingerprint; ``made`` keeps the scenarios
+    already made from the same records.
+
+    Raises
+    ------
+    PartError : the recorded scenario is not valid, or does not give the part's
+        fingerprint (the part was edited, or made by another version of ensemble).
+    """
+    records = (info.scenario_text, info.member_count, info.seed, info.backend)
+    if records not in made:
+        try:
+            scenario = validate(tomllib.loads(info.scenario_text, parse_float=Decimal),
+                                info.scenario_path, info.scenario_text)
+        except (InputError, tomllib.TOMLDecodeError) as error:
+            raise PartError(str(info.path), "scenario", None,
+                            f"the scenario recorded in the part is not valid ({error})"
+                            ) from None
+        made[records] = dataclasses.replace(
+            scenario, member_count=info.member_count, seed=info.seed,
+            output=dataclasses.replace(scenario.output, path=os.fspath(output)))
+    scenario = made[records]
+    if fingerprint(scenario, info.backend) != info.fingerprint:
+        raise PartError(str(info.path), "fingerprint", None,
+                        "does not follow from the scenario, member count, seed and backend "
+                        "recorded in the part (the part was edited, or made by another "
+                        "version of ensemble)",
+                        "make the part again, or merge with the version that made it")
+    return scenario
 
 
-def _read_chunks(info: PartInfo, layout: ResultLayout
+def _merge_part(journal: WorkJournal, info: PartInfo, layout: ResultLayout) -> None:
+    """Save the members of part ``info`` into ``journal``, checking its content checksum.
+
+    Raises
+    ------
+    PartError : the part cannot be read, or its numbers or attributes do not match the
+        checksum it was written with.
+    """
+    try:
+        with netCDF4.Dataset(info.path) as part:
+            part.set_auto_mask(False)
+            digest = PartDigest(part)
+            for key, result, reported in _read_chunks(part, info, layout):
+                for name, values in _chunk_values(layout, result, reported).items():
+                    digest.add(name, values)
+                journal.save(key, result, reported)
+    except (OSError, RuntimeError, IndexError, ValueError) as error:
+        raise PartError(str(info.path), "", None, f"cannot be read as a part ({error})",
+                        "make the part again with `ensemble run --shard I/N`") from None
+    if digest.hexdigest() != info.checksum:
+        raise PartError(str(info.path), "", None,
+                        "its numbers or attributes are not those it was written with (they "
+                        f"do not match its {CHECKSUM_ATTRIBUTE})",
+                        "make the part again with `ensemble run --shard I/N`")
+
+
+def _read_chunks(part: netCDF4.Dataset, info: PartInfo, layout: ResultLayout
                  ) -> Iterator[tuple[tuple[int, int, int], ChunkResult, dict[str, np.ndarray]]]:
-    """A part's members as (key, result, reported), variant by variant, in blocks of at most
-    :data:`BLOCK_BYTES` of trajectories."""
+    """The members of the open part ``part`` as (key, result, reported), variant by
+    variant, in blocks of at most :data:`BLOCK_BYTES` of trajectories."""
     start, end = info.member_range
     per_member = 8 * sum(layout.cell_count(variable) for variable in STORED)
     block = max(1, BLOCK_BYTES // per_member)
-    with netCDF4.Dataset(info.path) as part:
-        part.set_auto_mask(False)
-        for variant in range(len(layout.variants)):
-            for first in range(start, end, block):
-                last = min(first + block, end)
-                rows = slice(first - start, last - start)
-                result = ChunkResult(
-                    members=np.arange(first, last, dtype=np.int64),
-                    **{variable.source: part[variable.source][variant, rows]
-                       for variable in STORED},
-                    **{name: part[name][variant, rows] for name in MEMBER_VALUE_NAMES},
-                    status=part["status"][variant, rows])
-                reported = {name: part[f"param_{name}"][variant, ..., rows]
-                            for name in layout.parameters}
-                yield (variant, first, last), result, reported
+    for variant in range(len(layout.variants)):
+        for first in range(start, end, block):
+            last = min(first + block, end)
+            rows = slice(first - start, last - start)
+            result = ChunkResult(
+                members=np.arange(first, last, dtype=np.int64),
+                **{variable.source: part[variable.source][variant, rows]
+                   for variable in STORED},
+                **{name: part[name][variant, rows] for name in MEMBER_VALUE_NAMES},
+                status=part["status"][variant, rows])
+            reported = {name: part[f"param_{name}"][variant, ..., rows]
+                        for name in layout.parameters}
+            yield (variant, first, last), result, reported
