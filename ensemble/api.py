@@ -344,6 +344,52 @@ def score(result: str | os.PathLike[str], observed: str | os.PathLike[str], *,
     return format_scores(table)
 
 
+def fit(scenario: Scenario | str | os.PathLike[str], *,
+        output: str | os.PathLike[str] | None = None, particles: int = 2000,
+        seed: int | None = None, backend: str | None = None, chunk: int | None = None,
+        force: bool = False, report=None) -> Path:
+    """Condition the scenario's ensemble on its ``[[observations]]`` by tempered
+    sequential Monte Carlo and write a result file whose members are the posterior
+    (equally weighted, with their log-likelihoods), projected for every variant.
+
+    Parameters
+    ----------
+    scenario : a validated scenario or the path of a scenario file.
+    output : the result file (default ``output.path`` with ``-fit`` before ``.nc``).
+    particles : particles of the sampler, the members of the result.
+    seed : the sampler's seed (default the scenario's); the same seed gives the same bits.
+    backend : ``"numpy"`` or ``"compiled"`` (default as for :func:`run`).
+    chunk : members integrated at once (default ``compute.chunk``, else 1000).
+    force : replace an existing result file.
+    report : called after each round with its number and its
+        :class:`ensemble.fit.smc.Round` (temperature, effective size, acceptance).
+
+    Raises
+    ------
+    ensemble.errors.ScenarioError : bad observations (naming the key or the counts
+        file's line), none, or no drawn parameter.
+    ensemble.errors.ResultExists : the output exists and ``force`` is not set.
+    """
+    from ensemble.errors import ResultExists
+    from ensemble.fit.result import fit_and_write
+    from ensemble.fit.smc import SamplerSettings
+    from ensemble.run.tasks import DEFAULT_BACKEND
+
+    if not isinstance(scenario, Scenario):
+        scenario = load_scenario(scenario)
+    default = Path(scenario.output.path)
+    target = Path(output) if output is not None else default.with_name(
+        f"{default.stem}-fit{default.suffix}")
+    if target.exists() and not force:
+        raise ResultExists(str(target), "", None, "already exists", "use --force to replace it")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    settings = SamplerSettings(particles=particles,
+                               seed=scenario.seed if seed is None else seed)
+    fit_and_write(scenario, target, settings, backend=backend or DEFAULT_BACKEND,
+                  chunk=chunk or scenario.compute.chunk or 1000, report=report)
+    return target
+
+
 def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
     """``scenario`` with only the variants ``names``, in that order (``compare_to``
     dropped when its variant is not among them).

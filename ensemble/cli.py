@@ -266,6 +266,38 @@ def summary(result: Annotated[Path, typer.Argument(
 
 
 @app.command()
+def fit(
+    scenario: ScenarioFile,
+    output: Annotated[Optional[Path], typer.Option(
+        "--output", "-o",
+        help="Result file (default: output.path with -fit before .nc).")] = None,
+    particles: Annotated[int, typer.Option(
+        "--particles", min=10, help="Particles of the sampler: the members of the result.")
+    ] = 2000,
+    seed: Seed = None,
+    settings: Settings = None,
+    chunk: ChunkSize = None,
+    backend: BackendChoice = None,
+    force: Force = False,
+) -> None:
+    """Fit SCENARIO's drawn parameters to its [[observations]] by tempered sequential
+    Monte Carlo and write the posterior members, projected for every variant."""
+    from ensemble import api
+
+    def report(number, done) -> None:
+        typer.echo(f"round {number}: temperature {done.temperature:.4g}, effective size "
+                   f"{done.effective_size:.0f} of {particles}, acceptance "
+                   f"{100 * done.acceptance:.0f}%")
+
+    with _reported():
+        loaded = api.load_scenario(scenario, settings=settings or [])
+        path = api.fit(loaded, output=output, particles=particles, seed=seed,
+                       backend=backend.value if backend else None, chunk=chunk,
+                       force=force, report=report)
+    typer.echo(f"result: {path} ({particles} posterior members per variant)")
+
+
+@app.command()
 def score(
     result: Annotated[Path, typer.Argument(help="Result file written by ensemble run.")],
     observed: Annotated[Path, typer.Argument(

@@ -3,7 +3,8 @@
 A date is an ISO date (``2027-03-08``), the end of the counting window it closes, or,
 for a scenario without a ``start``, a number of days since the start of the projection.
 A value is a count of persons, a whole number at least 0, or empty when nothing was
-reported. Errors name the file, the line and the value (``ensemble/scenario/
+reported. Lines starting with ``#`` are comments (a note that the numbers are invented,
+say). Errors name the file, the line and the value (``ensemble/scenario/
 reference.md``, ``[[observations]]``).
 """
 
@@ -66,15 +67,14 @@ def read_counts(path: str | Path, *, error: type[InputError] = UsageError) -> Ob
         text = Path(path).read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as problem:
         raise error(file, "", None, f"cannot read the counts file: {problem}") from None
-    rows = list(csv.reader(text.splitlines()))
-    header = [cell.strip().lower() for cell in rows[0]] if rows else []
-    if header[:2] != list(_COLUMNS) or len(header) != 2:
-        raise error(file, "line 1", ",".join(header),
-                    "the first line must name the columns date,value")
+    rows = [(number, row) for number, row in enumerate(csv.reader(text.splitlines()), 1)
+            if any(cell.strip() for cell in row) and not row[0].lstrip().startswith("#")]
+    first, header = (rows[0][0], [c.strip().lower() for c in rows[0][1]]) if rows else (1, [])
+    if header != list(_COLUMNS):
+        raise error(file, f"line {first}", ",".join(header),
+                    "the first line that is not a comment must name the columns date,value")
     dates, values, lines = [], [], []
-    for number, row in enumerate(rows[1:], start=2):
-        if not any(cell.strip() for cell in row):
-            continue
+    for number, row in rows[1:]:
         if len(row) != 2:
             raise error(file, f"line {number}", ",".join(row),
                         "a row holds a date and a value")

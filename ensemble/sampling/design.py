@@ -75,6 +75,18 @@ def make_design(scenario: Scenario, variant: Variant, model: LoweredModel,
                    lambda drawn: uniform_draws(scenario, drawn, member_index))
 
 
+def design_from_uniforms(scenario: Scenario, variant: Variant, model: LoweredModel,
+                         uniforms: Mapping[Element, np.ndarray]) -> Design:
+    """The inputs of members whose uniform draws are given instead of drawn (the
+    particles of a fit): ``uniforms`` maps every column of
+    :func:`~ensemble.sampling.uniform.uncertain_columns` to (M,) values in (0, 1); the
+    members are numbered 0 .. M - 1."""
+    count = len(next(iter(uniforms.values()))) if uniforms else 1
+    return _design(scenario, variant, model, np.arange(count, dtype=np.int64),
+                   lambda drawn: {key: np.asarray(uniforms[key], dtype=float)
+                                  for key in drawn})
+
+
 def median_design(scenario: Scenario, variant: Variant, model: LoweredModel) -> Design:
     """One member (index 0) whose drawn values are their distributions' medians (every
     uniform draw 1/2), for ``ensemble check``."""

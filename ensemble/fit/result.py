@@ -1,0 +1,71 @@
+"""``ensemble fit``: condition a scenario's ensemble on its ``[[observations]]`` by tempered
+sequential Monte Carlo (:mod:`ensemble.fit.smc`) and write a result file whose members
+are the posterior, projected for every variant.
+
+The file is a result file as ``ensemble run`` writes it (the same variables, read by
+``summary``, ``score`` and ``open_result``), with ``member`` the equally weighted
+posterior particles, plus each member's log-likelihood and the rounds of the fit
+(``ensemble/scenario/reference.md``, the result of a fit).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from ensemble.durable import replace_atomically
+from ensemble.fit.engine import FitProblem, posterior_chunks
+from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
+from ensemble.output.dataset import encoding
+from ensemble.output.finish import Finisher
+from ensemble.output.result_file import UNFINISHED_SUFFIX
+from ensemble.output.sources import MembersInMemory
+from ensemble.output.writer import result_dataset
+from ensemble.scenario.schema import Scenario
+
+
+def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *,
+                  backend: str, chunk: int,
+                  report: Callable[[int, Round], None] | None = None) -> Posterior:
+    """Fit ``scenario`` to its observations and write the posterior's result to
+    ``output`` (whole or not at all)."""
+    problem = FitProblem(scenario, backend, chunk)
+    posterior = tempered_smc(problem.log_likelihood, problem.dimension, settings, report)
+    layout, chunks = posterior_chunks(problem, posterior.z)
+    dataset = result_dataset(Finisher(layout, MembersInMemory(layout, chunks)))
+    stored = encoding(layout, dataset)
+    dataset = with_fit_variables(dataset, posterior, problem)
+    replace_atomically(output, lambda target: dataset.to_netcdf(
+        target, format="NETCDF4", engine="netcdf4", encoding=stored),
+        suffix=UNFINISHED_SUFFIX)
+    return posterior
+
+
+def with_fit_variables(dataset: xr.Dataset, posterior: Posterior,
+                       problem: FitProblem) -> xr.Dataset:
+    """``dataset`` with each member's log-likelihood, the rounds of the fit and the
+    observations it saw."""
+    rounds = posterior.rounds
+    last = max((series.last_time for series in problem.series), default=np.nan)
+    return dataset.assign(
+        log_likelihood=xr.DataArray(
+            posterior.log_likelihood, dims=("member",),
+            attrs={"long_name": "log-likelihood of the observations for the member "
+                                "(first variant)", "units": "1"}),
+        fit_temperature=xr.DataArray(
+            np.array([r.temperature for r in rounds]), dims=("fit_round",),
+            attrs={"long_name": "temperature of each round of the fit", "units": "1"}),
+        fit_effective_size=xr.DataArray(
+            np.array([r.effective_size for r in rounds]), dims=("fit_round",),
+            attrs={"long_name": "effective sample size of each round's weights",
+                   "units": "1"}),
+        fit_acceptance=xr.DataArray(
+            np.array([r.acceptance for r in rounds]), dims=("fit_round",),
+            attrs={"long_name": "share of moves accepted in each round", "units": "1"}),
+    ).assign_attrs(fit_log_evidence=posterior.log_evidence,
+                   fit_last_observed_day=last,
+                   fit_observations=", ".join(f"{s.measure} from {Path(s.file).name}"
+                                              for s in problem.series))
