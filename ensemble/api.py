@@ -467,12 +467,20 @@ def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
 
     Raises
     ------
-    ensemble.errors.NotAResult : ``path`` is not a complete result file.
+    ensemble.errors.NotAResult : ``path`` is not a complete result file, or one damaged
+        or edited so that it cannot be read as one.
     """
+    from ensemble.errors import NotAResult
     from ensemble.present.summary import summary_text
 
-    with open_result(path) as dataset:
-        return summary_text(dataset, only=only, show_all=show_all)
+    try:
+        with open_result(path) as dataset:
+            return summary_text(dataset, only=only, show_all=show_all)
+    except (KeyError, ValueError, TypeError, IndexError, RuntimeError, OSError) as error:
+        # the netCDF library's RuntimeError, or a variable missing or reshaped
+        reason = (str(error).splitlines() or [""])[0][:200]
+        raise NotAResult(os.fspath(path), "", None, "is damaged or was edited: it cannot "
+                         f"be read as a result ({type(error).__name__}: {reason})") from None
 
 
 def cluster_profile(name: str | os.PathLike[str] | None) -> ClusterProfile | None:

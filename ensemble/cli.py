@@ -156,6 +156,8 @@ def _stop_on_signals() -> None:
     import ensemble.integrate.interrupts  # noqa: F401  (imported before any signal)
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
+    # a failed chunk is reported once, in the run's one-line error (RunFailed)
+    logging.getLogger("distributed.worker").setLevel(logging.CRITICAL)
     signal.signal(signal.SIGTERM, _interrupt)
     signal.signal(signal.SIGINT, _interrupt)
 
@@ -214,23 +216,40 @@ INTERRUPTED = 130
 def _reported(work: Path | None = None) -> Iterator[None]:
     """Turn the errors of the body into ``error: ...`` lines on standard error and the
     error's exit status (:mod:`ensemble.errors`: 2 for invalid input, nothing written; 1
-    for a failed run).  An interrupt exits 130, naming the work in progress ``work`` kept
-    for ``--resume``; an operating-system error the run did not expect exits 1."""
+    for a failed run).  An interrupt exits 130; an operating-system error the run did not
+    expect exits 1.  A failed or interrupted run says how many finished chunks its work in
+    progress ``work`` keeps for ``--resume``, when it keeps any (:func:`_kept`)."""
     from ensemble.errors import EnsembleError
 
     try:
         yield
     except EnsembleError as error:
-        typer.echo("\n".join(f"error: {line}" for line in str(error).splitlines()), err=True)
+        lines = str(error).splitlines()
+        if error.exit_status == 1:
+            lines[-1] += _kept(work)
+        typer.echo("\n".join(f"error: {line}" for line in lines), err=True)
         raise typer.Exit(error.exit_status) from None
     except KeyboardInterrupt:
-        kept = f"; finished chunks are kept in {work}; continue with --resume" if work else ""
-        typer.echo(f"interrupted{kept}", err=True)
+        typer.echo(f"interrupted{_kept(work)}", err=True)
         raise typer.Exit(INTERRUPTED) from None
     except OSError as error:
-        kept = f" (finished chunks are kept in {work}; continue with --resume)" if work else ""
-        typer.echo(f"error: {error}{kept}", err=True)
+        typer.echo(f"error: {error}{_kept(work)}", err=True)
         raise typer.Exit(1) from None
+
+
+def _kept(work: Path | None) -> str:
+    """`` (N finished chunks are kept in WORK; continue with --resume)`` when the work in
+    progress ``work`` holds saved chunks, else nothing: a run stopped before its first
+    chunk was saved promises nothing to resume."""
+    from ensemble.run.chunk_files import CHUNK_PREFIX
+
+    if work is None or not work.is_dir():
+        return ""
+    count = sum(1 for _ in work.glob(f"{CHUNK_PREFIX}v*"))
+    if not count:
+        return ""
+    kept = f"{count} finished chunks are" if count > 1 else "1 finished chunk is"
+    return f" ({kept} kept in {work}; continue with --resume)"
 
 
 @app.command()

@@ -133,13 +133,12 @@ class StoreWriteError(RunError):
     disk...); chunks already saved are kept."""
 
     @classmethod
-    def from_os_error(cls, error: OSError, where: object, kept_in: object) -> StoreWriteError:
-        """One line for a failed write: the file (``where`` when the error names none),
-        the system's reason, and the directory ``kept_in`` where the finished chunks
-        wait for a resume."""
+    def from_os_error(cls, error: OSError, where: object) -> StoreWriteError:
+        """One line for a failed write: the file (``where`` when the error names none)
+        and the system's reason ("No space left on device" on a full disk).  Whether
+        finished chunks wait for a resume is for the command line to say, which looks."""
         reason = error.strerror or str(error)
-        return cls(f"cannot write {error.filename or where}: {reason} (finished chunks "
-                   f"are kept in {kept_in} for --resume)")
+        return cls(f"cannot write {error.filename or where}: {reason}")
 
 
 class IncompleteWork(RunError):

@@ -235,7 +235,7 @@ class BracketCache:
                 except FileExistsError:
                     pass                # another task stored them first
         except OSError as error:
-            raise StoreWriteError.from_os_error(error, final, self.directory) from error
+            raise StoreWriteError.from_os_error(error, final) from error
 
     @contextmanager
     def _exclusive(self, wait: bool) -> Iterator[bool]:

@@ -40,25 +40,31 @@ def result_dataset(finisher: Finisher) -> xr.Dataset:
     return build_dataset(finisher.layout, variables)
 
 
-def write_result(path: Path, finisher: Finisher, kept_in: Path) -> Path:
+FULL_DISK_BYTES = 64 * 2 ** 20
+"""Free space below which a write error of the netCDF library (which reports a full disk
+as "NetCDF: HDF error", without the system's reason) is taken for a full disk."""
+
+
+def write_result(path: Path, finisher: Finisher) -> Path:
     """Write the result file ``path`` (replacing one there) from ``finisher``'s chunks.
 
     Raises
     ------
-    StoreWriteError : the file could not be written (naming the free space when the
-        netCDF library reports the failure); no temporary is left, and the chunks stay in
-        ``kept_in``.
+    StoreWriteError : the file could not be written ("No space left on device" when
+        the disk is full, the netCDF library's reason otherwise, with the free space);
+        no temporary is left.
     """
     try:
         replace_atomically(path, lambda target: _write_file(target, finisher),
                            suffix=UNFINISHED_SUFFIX)
     except OSError as error:
-        raise StoreWriteError.from_os_error(error, path, kept_in) from error
+        raise StoreWriteError.from_os_error(error, path) from error
     except RuntimeError as error:       # the netCDF library's write errors
-        free = shutil.disk_usage(path.parent).free / 2**20
-        raise StoreWriteError(
-            f"cannot write {path}: {error} ({free:.0f} MiB free in {path.parent}; "
-            f"finished chunks are kept in {kept_in} for --resume)") from error
+        free = shutil.disk_usage(path.parent).free
+        reason = (f"No space left on device (the netCDF library reported: {error})"
+                  if free < FULL_DISK_BYTES else str(error))
+        raise StoreWriteError(f"cannot write {path}: {reason} ({free / 2**20:.0f} MiB free "
+                              f"in {path.parent})") from error
     return path
 
 

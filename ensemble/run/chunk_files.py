@@ -196,7 +196,7 @@ class ChunkFiles:
                 shutil.rmtree(temporary)    # another process saved this key meanwhile
         except OSError as error:
             shutil.rmtree(temporary, ignore_errors=True)
-            raise StoreWriteError.from_os_error(error, self.work, self.work) from error
+            raise StoreWriteError.from_os_error(error, self.work) from error
 
     @staticmethod
     def _write_trajectory(directory: Path, name: str, values: np.ndarray,

@@ -15,7 +15,7 @@ from collections.abc import Callable, Generator, Iterator, Sequence
 from contextlib import closing, contextmanager
 from pathlib import Path
 
-from ensemble.errors import RunFailed, StoreWriteError
+from ensemble.errors import StoreWriteError
 from ensemble.integrate.interrupts import clear_stop_request, request_stop
 from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey
@@ -168,9 +168,6 @@ def _compute_pending(journal: WorkJournal, scenario: Scenario,
     except KeyboardInterrupt:
         request_stop()      # this process's worker threads end their chunks too
         raise
-    except RunFailed as failure:
-        raise RunFailed(f"{failure} (finished chunks are kept in {journal.work}; continue "
-                        "with --resume)") from failure.__cause__
     finally:
         progress.close()
 

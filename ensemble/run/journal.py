@@ -152,7 +152,7 @@ class WorkJournal:
             journal._prepare(resume, force)
         except OSError as error:
             journal.close()
-            raise StoreWriteError.from_os_error(error, journal.work, journal.work) from error
+            raise StoreWriteError.from_os_error(error, journal.work) from error
         except BaseException:
             journal.close()
             raise
@@ -321,7 +321,7 @@ class WorkJournal:
         try:
             replace_atomically(self.work / MARKER, lambda target: target.write_text(token))
         except OSError as error:
-            raise StoreWriteError.from_os_error(error, self.work, self.work) from error
+            raise StoreWriteError.from_os_error(error, self.work) from error
         return token
 
     def shares_directory(self, token: str) -> bool:
@@ -408,7 +408,7 @@ class WorkJournal:
                 listing.flush()
                 os.fsync(listing.fileno())
         except OSError as error:
-            raise StoreWriteError.from_os_error(error, self.work, self.work) from error
+            raise StoreWriteError.from_os_error(error, self.work) from error
 
     def load(self, key: ChunkKey) -> tuple[ChunkResult, dict[str, np.ndarray]]:
         """Read a saved chunk back as (result, reported), e.g. to copy it to another
@@ -473,7 +473,7 @@ class WorkJournal:
             finisher = Finisher(self.layout, chunks,
                                 BracketCache(self.layout, chunks, self.work, self.block_bytes),
                                 self.block_bytes)
-            write_result(self.path, finisher, self.work)
+            write_result(self.path, finisher)
             self.block_count += finisher.block_count
             self.largest_block_bytes = max(self.largest_block_bytes,
                                            finisher.largest_block_bytes)

@@ -58,16 +58,20 @@ def available_cores() -> int:
 
 
 class WarmWorker(WorkerPlugin):
-    """Prepares a local worker process: it ignores SIGINT and imports :data:`WARM_MODULES`.
+    """Prepares a local worker process: it ignores SIGINT, keeps its failed tasks out of
+    its log and imports :data:`WARM_MODULES`.
 
     Ctrl-C on a terminal reaches every process of the foreground group; the driver
     answers it by closing the cluster, so the workers need not (and would only print
-    tracebacks).
+    tracebacks).  A chunk that fails is reported by the driver in one line naming its
+    members and error (:class:`~ensemble.errors.RunFailed`), so the worker's own block
+    for it ("Compute Failed") would only repeat it.
     """
 
     name = "ensemble-warm-worker"
 
     def setup(self, worker) -> None:
+        logging.getLogger("distributed.worker").setLevel(logging.CRITICAL)
         if threading.current_thread() is threading.main_thread():
             signal.signal(signal.SIGINT, signal.SIG_IGN)
         for module in WARM_MODULES:

@@ -281,14 +281,26 @@ def _next_power_of_two(n: int) -> int:
     return 1 << (n - 1).bit_length()
 
 
+MAX_SCENARIO_BYTES = 4 * 2 ** 20
+"""Largest scenario file read (4 MiB, hundreds of times a large model's): a device such as
+/dev/zero, or a file given by mistake, is refused instead of filling the memory."""
+
+
 def _read_text(file: str) -> str:
+    """The scenario file's text (UTF-8, at most :data:`MAX_SCENARIO_BYTES`)."""
     path = Path(file)
     if not path.exists():
         raise ScenarioError(file, "", None, "no such file")
     if path.is_dir():
         raise ScenarioError(file, "", None, "is a directory, not a scenario file")
     try:
-        return path.read_text(encoding="utf-8")
+        with path.open("rb") as handle:
+            data = handle.read(MAX_SCENARIO_BYTES + 1)
+        if len(data) > MAX_SCENARIO_BYTES:
+            raise ScenarioError(file, "", None, f"larger than {MAX_SCENARIO_BYTES // 2**20} "
+                                "MiB: not a scenario file")
+        # as text mode reads it: universal newlines
+        return data.decode("utf-8").replace("\r\n", "\n").replace("\r", "\n")
     except UnicodeDecodeError as exc:
         raise ScenarioError(file, "", None, f"not UTF-8 text (byte {exc.start})") from None
     except OSError as exc:
