@@ -171,6 +171,14 @@ def test_bad_counts_are_refused_naming_the_line(result, tmp_path, text, where):
     assert finished.returncode == 2 and where in finished.stderr
 
 
+def test_comment_lines_are_skipped_and_lines_keep_their_numbers(result, tmp_path):
+    observed = tmp_path / "observed.csv"
+    observed.write_text("# invented counts\ndate,value\n# a note\n2027-03-08,3\n"
+                        "2027-03-10,4\n")
+    with pytest.raises(UsageError, match="line 5, date"):
+        api.score(result, observed)
+
+
 def test_unknown_measure_is_refused(result, tmp_path):
     observed = tmp_path / "observed.csv"
     observed.write_text("date,value\n2027-03-08,3\n")
