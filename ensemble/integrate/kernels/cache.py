@@ -11,8 +11,9 @@ rewritten (numba keys its cache on the file's modification time).
 A damaged cache is rebuilt, never trusted.  A kernel file is checked against the text it
 should hold before it is imported (its name is the digest of that text; an empty or
 edited file, as a crash or a full disk can leave, is written again).  numba's own files
-of the kernel (``__pycache__/kernel_*.nbi`` and ``.nbc``) that fail to load are deleted
-and the kernel compiled again (:class:`DiscardingCompiledCache`).  When the directory
+of the kernel (``__pycache__/kernel_*.nbi`` and ``.nbc``) are loaded only when they match
+the checksums listed when they were saved, and otherwise deleted and compiled again
+(:mod:`.compiled_cache`).  When the directory
 cannot be used (a file stands where it should be, or it cannot be written), the process
 keeps its kernels in a temporary directory of its own, removed when it exits.  Each of
 these says so with a :class:`KernelCacheWarning`.
@@ -42,6 +43,7 @@ from numba.core.caching import FunctionCache
 from numba.core.dispatcher import Dispatcher
 
 from ensemble.durable import replace_atomically
+from ensemble.integrate.kernels.compiled_cache import CheckedCompiledCache, KernelCacheWarning
 from ensemble.integrate.kernels.source import KernelSource
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
@@ -51,10 +53,6 @@ CACHE_ENVIRONMENT = "ENSEMBLE_KERNEL_CACHE"
 
 RECENT_PAIRS = 16
 """(model, method) pairs whose kernel a cache finds without generating its text again."""
-
-
-class KernelCacheWarning(UserWarning):
-    """The kernel cache was damaged or unusable and is being rebuilt or bypassed."""
 
 
 def cache_directory() -> Path:
@@ -171,53 +169,9 @@ def _fallback_directory(unusable: Path, error: OSError) -> Path:
         return _fallback[0]
 
 
-class DiscardingCompiledCache:
-    """numba's disk cache of one compiled function of a kernel module, which deletes the
-    kernel's cache files when they fail to load (damaged bytes, a truncated file), so
-    that numba compiles the function again and writes them afresh, instead of failing on
-    every run.
-
-    It stands in for the dispatcher's own cache object (``Dispatcher._cache``, which
-    numba's dispatcher calls to load and save compiled code) and hands every call on.
-    """
-
-    def __init__(self, inner: object, stem: str):
-        self.inner = inner
-        self.stem = stem
-
-    @property
-    def cache_path(self) -> str:
-        return self.inner.cache_path
-
-    def load_overload(self, sig: object, target_context: object) -> object | None:
-        try:
-            return self.inner.load_overload(sig, target_context)
-        except Exception as error:      # noqa: BLE001 (any failure to load: rebuild)
-            directory = Path(self.inner.cache_path)
-            for stale in [*directory.glob(f"{self.stem}.*.nbi"),
-                          *directory.glob(f"{self.stem}.*.nbc")]:
-                stale.unlink(missing_ok=True)
-            warnings.warn(f"numba's compiled cache of {self.stem} in {directory} could not "
-                          f"be loaded ({type(error).__name__}: {error}); it was deleted and "
-                          "the kernel is compiled again", KernelCacheWarning, stacklevel=2)
-            return None
-
-    def save_overload(self, sig: object, data: object) -> None:
-        self.inner.save_overload(sig, data)
-
-    def enable(self) -> None:
-        self.inner.enable()
-
-    def disable(self) -> None:
-        self.inner.disable()
-
-    def flush(self) -> None:
-        self.inner.flush()
-
-
 def _import(path: Path) -> ModuleType:
     """Import the kernel file ``path`` as ``ensemble_kernels.<its stem>``, its compiled
-    functions' disk caches wrapped in :class:`DiscardingCompiledCache`."""
+    functions' disk caches checked (:class:`.compiled_cache.CheckedCompiledCache`)."""
     spec = importlib.util.spec_from_file_location(f"ensemble_kernels.{path.stem}", path)
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module
@@ -225,5 +179,5 @@ def _import(path: Path) -> ModuleType:
     for value in vars(module).values():
         inner = getattr(value, "_cache", None)
         if isinstance(value, Dispatcher) and isinstance(inner, FunctionCache):
-            value._cache = DiscardingCompiledCache(inner, path.stem)
+            value._cache = CheckedCompiledCache(inner, path.stem)
     return module
