@@ -84,8 +84,10 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
     cluster : a batch-system profile whose worker jobs do the work instead of a local
         cluster (:mod:`ensemble.run.clusters`).
     resume : continue from ``<path>.partial`` (afresh if there is none; nothing to do if
-        the result is already complete with the same fingerprint).
-    force : replace an existing result.
+        the result is already complete with the same fingerprint); saved chunks that
+        fail their checksums are computed again, and the run says so.
+    force : replace an existing result, and discard the saved chunks of a
+        ``<path>.partial`` when not resuming.
     progress : where progress goes (default: :class:`Progress` deciding by terminal).
     member_range : ``(start, end)``: compute only those members of every variant (a
         shard, :mod:`ensemble.run.shards`); default all.
@@ -108,6 +110,9 @@ def run_scenario(scenario: Scenario, *, history: str, backend: str = DEFAULT_BAC
         matching ``resume`` was given (nothing is computed).
     ensemble.errors.FingerprintMismatch : ``resume`` of work from a different
         scenario, member count, seed, version or backend.
+    ensemble.errors.WorkInProgress : ``<path>.partial`` holds saved chunks and neither
+        ``resume`` nor ``force`` was given, or it was not made by this program.
+    ensemble.errors.WorkLocked : another run is working on the same ``<path>.partial``.
     ensemble.errors.RunFailed : a chunk failed; finished chunks are kept.
     ensemble.errors.StoreWriteError : the work in progress or the result could not be
         written; finished chunks are kept.

@@ -5,6 +5,8 @@ them.
 Work in progress lives in the directory ``<path>.partial``::
 
     <path>.partial/
+        made-by-ensemble           the program's mark (:mod:`.work_directory`)
+        run.lock                   locked by the run working in it, and naming it
         manifest.json              fingerprint and shape of the run (written first)
         driver-marker              token of the running driver (:meth:`WorkJournal.mark`)
         durable-chunks             names of the chunks known to be on stable storage
@@ -21,6 +23,14 @@ in the current boot or was later made durable (:meth:`WorkJournal.make_durable`,
 the run engine calls every minute through :class:`Checkpoints` and which lists the chunk
 in ``durable-chunks``); any other chunk is computed again.  Every other file of the
 directory and the result itself are written whole or not at all (:mod:`ensemble.durable`).
+
+Saved work is never lost or mixed.  A run that finds saved chunks continues them only
+when asked to resume, discards them only when forced, and refuses otherwise; it removes
+nothing from a directory without the program's mark; it holds the directory's lock from
+:meth:`WorkJournal.open` to the end, so a second run on the same result is refused.
+Each chunk lists the SHA-256 of its files (:mod:`.chunk_files`): a resume, and the check
+before the result is written, remove any chunk whose files do not match, to be computed
+again.
 """
 
 from __future__ import annotations
