@@ -19,6 +19,8 @@ import xarray as xr
 
 from ensemble import api
 from ensemble.errors import ScenarioError
+from ensemble.output import brackets as brackets_module
+from ensemble.output.finish import Finisher
 from support import GROUPED_TOML, load_text
 
 MEASURES = """
@@ -184,6 +186,46 @@ def test_without_kept_members_the_summaries_are_the_same_bits(kept, not_kept):
     for name in summaries:
         np.testing.assert_array_equal(not_kept[name].values, dataset[name].values,
                                       err_msg=name)
+
+
+def test_bands_past_the_pilot_are_those_of_every_member(tmp_path, monkeypatch):
+    """Without kept members, the chunks past a variant's pilot keep only each measure's
+    candidates for the quantiles (the pilot lowered to 6 members, refined brackets from
+    12): the bands equal ``numpy.quantile`` (Hyndman and Fan 1996, definition 7) over
+    every member of the same scenario run with its members kept, bit for bit."""
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBER_COUNT", 6)
+    monkeypatch.setattr(brackets_module, "REFINE_PILOTS", 2)
+    selected = []
+    select = Finisher._selected_quantiles
+
+    def recording(self, variable, *arguments):
+        selected.append(variable.name)
+        return select(self, variable, *arguments)
+
+    monkeypatch.setattr(Finisher, "_selected_quantiles", recording)
+    paths = {}
+    for keep in (True, False):
+        directory = tmp_path / f"kept-{keep}"
+        directory.mkdir()
+        scenario = directory / "measured.toml"
+        scenario.write_text(_scenario_text(40, keep), encoding="utf-8")
+        paths[keep] = api.run(scenario, output=directory / "measured.nc", workers=0,
+                              progress=False, backend="numpy", chunk=5)
+    # every measure of every variant went through the candidates, none with kept members
+    assert sorted(set(selected)) == ["flow_count", "measure_infected",
+                                     "measure_infections", "measure_young_ever", "state"]
+    assert selected.count("measure_infected") == 3
+    with xr.open_dataset(paths[True], decode_times=False) as kept, \
+            xr.open_dataset(paths[False], decode_times=False) as cut:
+        assert "measure_infected" not in cut
+        included = _included(kept)
+        assert included.all() and kept.sizes["member"] == 40
+        for name in ("infected", "young_ever", "infections"):
+            values = kept[f"measure_{name}"].values
+            expected = np.moveaxis(np.quantile(values, kept["quantile"].values, axis=1),
+                                   0, 1)
+            np.testing.assert_array_equal(cut[f"measure_{name}_quantile"].values, expected,
+                                          err_msg=name)
 
 
 @pytest.mark.parametrize("measure, key, message", [

@@ -32,7 +32,8 @@ from ensemble.output.layout import ResultLayout
 from ensemble.output.quantiles import in_summary
 from ensemble.output.selection import PILOT_MEMBER_COUNT, Brackets, merged_brackets
 from ensemble.output.sources import MemberSource
-from ensemble.output.variables import TRAJECTORIES, TRAJECTORY_NAMES, TrajectoryVariable
+from ensemble.output.measures import trajectory_variables
+from ensemble.output.variables import TrajectoryVariable
 from ensemble.records import ChunkKey
 
 PILOT_BYTES = 512 * 2**20
@@ -86,7 +87,7 @@ class BracketCache:
         the ensemble is too small to gain, or when the pilot's trajectories would take
         more than :data:`PILOT_BYTES`."""
         layout = self.layout
-        cells = sum(layout.cell_count(variable) for variable in TRAJECTORIES)
+        cells = sum(layout.cell_count(variable) for variable in trajectory_variables(layout))
         if (layout.keep_members or layout.member_count < 4 * PILOT_MEMBER_COUNT
                 or cells * PILOT_MEMBER_COUNT * 8 > PILOT_BYTES):
             return 0
@@ -113,7 +114,7 @@ class BracketCache:
             if self._read("pilot", variant) is None:
                 self._store("pilot", variant, {
                     variable.name: self._pilot_brackets(variable, variant, pilot)
-                    for variable in TRAJECTORIES})
+                    for variable in trajectory_variables(self.layout)})
         return self._read("pilot", variant)
 
     def refined(self, variant: int) -> dict[str, Brackets] | None:
@@ -181,7 +182,7 @@ class BracketCache:
         keys = [key for key in self.source.saved() if key[0] == variant and key[1] < refine]
         usable = {None, *(brackets.digest() for brackets in coarse.values())}
         if any(self.source.cut_with(key, name) not in usable
-               for key in keys for name in TRAJECTORY_NAMES):
+               for key in keys for name in self._names()):
             self._unrefined.add(variant)
             return
         included = np.zeros(self.layout.member_count, bool)
@@ -190,7 +191,7 @@ class BracketCache:
         count = int(included.sum())
         workspace = threading.local()
         refined = {}
-        for variable in TRAJECTORIES:
+        for variable in trajectory_variables(self.layout):
             brackets = coarse[variable.name]
             parts, read = candidate_parts(self.source, variable.name, keys, included,
                                           brackets, brackets,
@@ -204,6 +205,10 @@ class BracketCache:
 
     # ------------------------------------------------------------------ the directory
 
+    def _names(self) -> tuple[str, ...]:
+        """Names of the trajectory variables with brackets."""
+        return tuple(variable.name for variable in trajectory_variables(self.layout))
+
     def _path(self, kind: Kind, variant: int) -> Path:
         return self.directory / f"{FILE_PREFIX[kind]}v{variant}.npz"
 
@@ -214,7 +219,7 @@ class BracketCache:
                 with np.load(self._path(kind, variant)) as stored:
                     self._known[kind, variant] = {
                         name: Brackets(stored[f"{name}_lower"], stored[f"{name}_upper"])
-                        for name in TRAJECTORY_NAMES}
+                        for name in self._names()}
             except FileNotFoundError:
                 return None
         return self._known[kind, variant]

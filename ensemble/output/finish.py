@@ -25,11 +25,12 @@ from ensemble.output.candidates import (candidate_parts, cells_per_block, reusab
                                         summed_counts)
 from ensemble.output.layout import ResultLayout
 from ensemble.output.measure_results import finish_measures
+from ensemble.output.measures import (find_trajectory, measure_trajectories,
+                                      trajectory_variables)
 from ensemble.output.metrics import summary_quantiles
 from ensemble.output.quantiles import quantiles
 from ensemble.output.sources import MemberSource
-from ensemble.output.variables import (TRAJECTORIES, TRAJECTORY_NAMES, TrajectoryVariable,
-                                       trajectory)
+from ensemble.output.variables import TrajectoryVariable
 from ensemble.records import ChunkKey
 
 DEFAULT_BLOCK_BYTES = 128 * 2**20
@@ -83,8 +84,9 @@ class Finisher:
     def member_variables(self) -> dict[str, np.ndarray]:
         """Every per-member array of every chunk as (variant, member, ...) arrays, with
         ``members_in_summary`` and the quantiles of the metrics and of their
-        differences (:func:`.metrics.summary_quantiles`), and the measures' summaries
-        (:func:`.measure_results.finish_measures`)."""
+        differences (:func:`.metrics.summary_quantiles`), the measures' summaries
+        (:func:`.measure_results.finish_measures`) and, when the result keeps members,
+        every member's series of each measure."""
         layout = self.layout
         gathered: dict[str, np.ndarray] = {}
         for key in self.keys:
@@ -99,15 +101,18 @@ class Finisher:
                                           layout.scenario.output.quantiles,
                                           layout.compare_index))
         finish_measures(layout, gathered, layout.scenario.output.quantiles)
+        if layout.keep_members:
+            gathered.update((variable.name, self.trajectories(variable.name))
+                            for variable in measure_trajectories(layout))
         return gathered
 
     def trajectories(self, name: str) -> np.ndarray:
         """(variant, member, rows, time) every member's values of trajectory variable
         ``name``, in memory."""
         layout = self.layout
-        variable = trajectory(name)
+        variable = find_trajectory(layout, name)
         values = np.empty((len(layout.variants), layout.member_count,
-                           layout.row_count(variable), layout.n_reports))
+                           layout.row_count(variable), layout.time_count(variable)))
         for key in self.keys:
             values[key[0], key[1]:key[2]] = self.source.trajectory(key, name)
         return values
@@ -124,9 +129,11 @@ class Finisher:
         """
         layout = self.layout
         probabilities = layout.scenario.output.quantiles
+        variables = trajectory_variables(layout)
         results = {variable.name: np.empty((len(layout.variants), len(probabilities),
-                                            layout.row_count(variable), layout.n_reports))
-                   for variable in TRAJECTORIES}
+                                            layout.row_count(variable),
+                                            layout.time_count(variable)))
+                   for variable in variables}
         workspace = threading.local()
 
         def reduce_block(variable: TrajectoryVariable, variant: int, times: slice,
@@ -141,15 +148,16 @@ class Finisher:
         whole = [variant for variant in range(len(layout.variants))
                  if all(self._kept_whole(key) for key in self.keys if key[0] == variant)]
         blocks = [(variable, variant, times, rows)
-                  for variable in TRAJECTORIES
+                  for variable in variables
                   for variant in whole
                   for times, rows in block_plan(int(included[variant].sum()),
                                                 layout.row_count(variable),
-                                                layout.n_reports, self.block_bytes)]
+                                                layout.time_count(variable),
+                                                self.block_bytes)]
         with ThreadPoolExecutor(FINISH_THREADS) as pool:
             sizes = list(pool.map(lambda block: reduce_block(*block), blocks))
             for variant in set(range(len(layout.variants))) - set(whole):
-                for variable in TRAJECTORIES:
+                for variable in variables:
                     results[variable.name][variant] = self._selected_quantiles(
                         variable, [key for key in self.keys if key[0] == variant],
                         included[variant], pool)
@@ -179,7 +187,8 @@ class Finisher:
 
     def _kept_whole(self, key: ChunkKey) -> bool:
         """True when the chunk keeps every value of its trajectories (not candidates)."""
-        return all(self.source.cut_with(key, name) is None for name in TRAJECTORY_NAMES)
+        return all(self.source.cut_with(key, variable.name) is None
+                   for variable in trajectory_variables(self.layout))
 
     def _selected_quantiles(self, variable: TrajectoryVariable, keys: list[ChunkKey],
                             included: np.ndarray, pool: ThreadPoolExecutor) -> np.ndarray:
@@ -215,7 +224,7 @@ class Finisher:
         if missed.size:
             values[:, missed] = self._recomputed_quantiles(variable.name, keys, included,
                                                            missed)
-        return values.reshape(len(probabilities), layout.n_reports,
+        return values.reshape(len(probabilities), layout.time_count(variable),
                               layout.row_count(variable)).transpose(0, 2, 1)
 
     def _recomputed_quantiles(self, name: str, keys: list[ChunkKey], included: np.ndarray,

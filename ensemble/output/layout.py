@@ -101,12 +101,19 @@ class ResultLayout:
         return {"compartment": self.compartments, "flow": self.flows}[dim]
 
     def row_count(self, variable: TrajectoryVariable) -> int:
-        """Flat rows of ``variable`` in a chunk: its labels times the groups."""
+        """Flat rows of ``variable`` in a chunk: its labels times the groups (a
+        measure's own rows)."""
+        if variable.row_total is not None:
+            return variable.row_total
         return len(self.labels(variable.rows)) * self.n_groups
 
+    def time_count(self, variable: TrajectoryVariable) -> int:
+        """Times of ``variable``: the reported times (a measure's own windows)."""
+        return self.n_reports if variable.time_total is None else variable.time_total
+
     def cell_count(self, variable: TrajectoryVariable) -> int:
-        """Reported times times rows of ``variable``: the cells of one member."""
-        return self.row_count(variable) * self.n_reports
+        """Times times rows of ``variable``: the cells of one member."""
+        return self.row_count(variable) * self.time_count(variable)
 
     @property
     def compare_index(self) -> int | None:

@@ -3,9 +3,11 @@ attributes, the coordinates of their windows (CF time bounds), and their summari
 members (quantile bands in time, quantiles of each metric, the share of censored peaks,
 and each member's differences between pairs of variants).
 
-Quantiles use :func:`.quantiles.member_quantiles` over the members behind every other
-quantile of the result (:func:`.quantiles.in_summary`), so the bands are exact, as the
-trajectories' quantiles are.  The variables are documented in the project's reference
+The bands in time are the quantiles of each measure's trajectory variable
+(:class:`.measures.MeasureTrajectory`), which the finish computes as it computes those of
+``state``: exact, in memory that does not grow with the members.  The metrics' quantiles
+use :func:`.quantiles.member_quantiles` over the same members, those behind every other
+quantile of the result (:func:`.quantiles.in_summary`).  The variables are documented in the project's reference
 (``ensemble/scenario/reference.md``, result file); attributes follow CF conventions 1.10
 (Eaton et al. 2022, "NetCDF Climate and Forecast (CF) Metadata Conventions", sec. 7.1
 for ``bounds``, sec. 7.3 for ``cell_methods``).
@@ -194,12 +196,12 @@ def window_bounds(layout: ResultLayout) -> dict[str, np.ndarray]:
 
 def finish_measures(layout: ResultLayout, per_member: dict[str, np.ndarray],
                     probabilities: Sequence[float]) -> None:
-    """Add the measures' summaries to ``per_member`` (name -> (variant, member, ...)
-    arrays of every chunk), and drop each member's series when the result does not keep
-    members.
+    """Add the measures' summaries of their metrics to ``per_member`` (name ->
+    (variant, member, ...) arrays of every chunk; the bands in time are the finish's,
+    :class:`.measures.MeasureTrajectory`).
 
-    Adds ``measure_<name>_quantile`` (variant, quantile, rows, times), each metric's
-    ``_quantile`` (variant, quantile, rows), ``_censored_share`` (variant, rows), and for
+    Adds each metric's ``_quantile`` (variant, quantile, rows), ``_censored_share``
+    (variant, rows), and for
     each pair (:func:`pairs`) each metric's ``_difference`` (pair, member, rows) and
     ``_difference_quantile`` (pair, quantile, rows); a member counts in a pair's
     quantiles only when it is behind the quantiles of both variants.
@@ -210,11 +212,6 @@ def finish_measures(layout: ResultLayout, per_member: dict[str, np.ndarray],
     compared = pairs(layout)
     for shape in measure_shapes(layout):
         stem = PREFIX + shape.name
-        series = per_member[stem]
-        per_member[f"{stem}_quantile"] = np.stack(
-            [member_quantiles(series[v], probabilities, included[v]) for v in variants])
-        if not layout.keep_members:
-            del per_member[stem]
         censored = per_member[f"{stem}_peak_censored"].astype(np.float64)
         per_member[f"{stem}_censored_share"] = np.stack(
             [censored[v][included[v]].mean(axis=0) if included[v].any()

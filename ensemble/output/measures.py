@@ -11,6 +11,12 @@ counts over windows of whole report intervals: window ``k`` covers the days
 horizon cuts short is left out (the project's reference, ``ensemble/scenario/reference.md``,
 ``[[measures]]``).  Groups are added up in group order, so a member's values are the same
 bits whatever chunk it was computed in.
+
+Each measure's series is a trajectory variable of its own (:class:`MeasureTrajectory`):
+the work journal saves it with a chunk's trajectories (past the pilot only its
+candidates for the quantiles), and the finish reduces it to exact quantile bands as it
+reduces ``state``, so memory does not grow with the members when they are not kept.  Its
+metrics, one number per member and row, are computed when a chunk is saved.
 """
 
 from __future__ import annotations
@@ -24,6 +30,8 @@ from ensemble.model.ir import StateRef
 from ensemble.model.lowering import ExpressionLowering, Value, Vector
 from ensemble.model.numpy_program import NumpyProgram
 from ensemble.output.layout import ResultLayout
+from ensemble.output.variables import TRAJECTORIES, TrajectoryVariable
+from ensemble.records import ChunkResult
 from ensemble.scenario.schema import Measure
 
 PREFIX = "measure_"
@@ -179,6 +187,66 @@ def flow_totals(layout: ResultLayout, shape: MeasureShape,
     return _added_groups(total[:, :, np.newaxis], shape.group_rows)[:, :, 0]
 
 
+@dataclass(frozen=True)
+class MeasureTrajectory(TrajectoryVariable):
+    """A measure's series as a trajectory variable: (members, rows, times) of a chunk,
+    rows and times the measure's own (:class:`MeasureShape`).
+
+    Attributes
+    ----------
+    layout : the result's layout, which the series is computed in.
+    shape : the measure's :class:`MeasureShape`.
+    """
+
+    layout: ResultLayout | None = None
+    shape: MeasureShape | None = None
+
+    def values(self, result: ChunkResult) -> np.ndarray:
+        """The (members, rows, times) measure of a chunk of members."""
+        return measure_series(self.layout, self.shape, {
+            variable.name: variable.values(result) for variable in TRAJECTORIES})
+
+
+def measure_trajectories(layout: ResultLayout) -> tuple[MeasureTrajectory, ...]:
+    """One :class:`MeasureTrajectory` per measure of the layout's scenario, in file
+    order."""
+    return tuple(
+        MeasureTrajectory(name=PREFIX + shape.name, rows="measure", source="state"
+                          if shape.measure.flow is None else "flow_count",
+                          long_name=shape.measure.description or shape.name,
+                          units=shape.measure.units, row_total=len(shape.group_rows),
+                          time_total=len(shape.times), layout=layout, shape=shape)
+        for shape in measure_shapes(layout))
+
+
+def trajectory_variables(layout: ResultLayout) -> tuple[TrajectoryVariable, ...]:
+    """Every trajectory variable of the layout's result: those of
+    :data:`~.variables.TRAJECTORIES`, then one per measure."""
+    return (*TRAJECTORIES, *measure_trajectories(layout))
+
+
+def find_trajectory(layout: ResultLayout, name: str) -> TrajectoryVariable:
+    """The trajectory variable ``name`` of the layout's result.
+
+    Raises
+    ------
+    KeyError : no such trajectory variable.
+    """
+    for variable in trajectory_variables(layout):
+        if variable.name == name:
+            return variable
+    raise KeyError(f"{name!r} is not a trajectory variable")
+
+
+def chunk_trajectories(layout: ResultLayout, result: ChunkResult) -> dict[str, np.ndarray]:
+    """Every trajectory variable's (members, rows, times) values of a chunk, each
+    measure computed once from the chunk's ``state`` and ``flow_count``."""
+    values = {variable.name: variable.values(result) for variable in TRAJECTORIES}
+    for shape in measure_shapes(layout):
+        values[PREFIX + shape.name] = measure_series(layout, shape, values)
+    return values
+
+
 def series_metrics(shape: MeasureShape, series: np.ndarray) -> dict[str, np.ndarray]:
     """Per-member metrics of (members, rows, times) ``series``: ``peak_value``,
     ``peak_time`` (the first time of the peak), ``peak_censored`` (1 where the peak is at
@@ -207,14 +275,13 @@ def series_metrics(shape: MeasureShape, series: np.ndarray) -> dict[str, np.ndar
 
 def member_measures(layout: ResultLayout, trajectories: Mapping[str, np.ndarray]
                     ) -> dict[str, np.ndarray]:
-    """Every measure's per-member arrays of a chunk: ``measure_<name>`` (members, rows,
-    times) and each metric ``measure_<name>_<metric>`` (members, rows)."""
+    """Every measure's per-member metrics of a chunk, ``measure_<name>_<metric>``
+    (members, rows), from its ``trajectories`` (:func:`chunk_trajectories`, the
+    measures' series included)."""
     arrays: dict[str, np.ndarray] = {}
     for shape in measure_shapes(layout):
-        series = measure_series(layout, shape, trajectories)
         stem = PREFIX + shape.name
-        arrays[stem] = series
-        for metric, values in series_metrics(shape, series).items():
+        for metric, values in series_metrics(shape, trajectories[stem]).items():
             arrays[f"{stem}_{metric}"] = values
         if shape.is_flow:
             arrays[f"{stem}_total"] = flow_totals(layout, shape, trajectories)

@@ -19,7 +19,7 @@ from typing import Protocol
 import numpy as np
 
 from ensemble.output.layout import ResultLayout
-from ensemble.output.measures import member_measures
+from ensemble.output.measures import chunk_trajectories, member_measures
 from ensemble.output.metrics import member_metrics
 from ensemble.output.selection import Candidates
 from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
@@ -94,8 +94,9 @@ def chunk_member_arrays(layout: ResultLayout, key: ChunkKey, result: ChunkResult
                         trajectories: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The per-member arrays of a chunk: each of :data:`.variables.MEMBER_VALUES`,
     ``status``, ``param_<name>`` of every reported parameter ((members,) or (members,
-    groups)), the metrics of its ``trajectories`` (name -> (members, rows,
-    n_reports)) and every measure's series and metrics (:mod:`.measures`).
+    groups)), the metrics of its ``trajectories`` (name -> (members, rows, times):
+    :func:`.measures.chunk_trajectories`) and every measure's metrics
+    (:mod:`.measures`).
 
     Raises
     ------
@@ -141,8 +142,7 @@ class MembersInMemory:
         self._values: dict[tuple[ChunkKey, str], np.ndarray] = {}
         for key, result, reported in chunks:
             check_chunk(layout, key, result)
-            trajectories = {variable.name: variable.values(result)
-                            for variable in TRAJECTORIES}
+            trajectories = chunk_trajectories(layout, result)
             self._arrays[key] = chunk_member_arrays(layout, key, result, reported,
                                                     trajectories)
             for name, values in trajectories.items():

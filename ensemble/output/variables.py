@@ -66,6 +66,8 @@ class TrajectoryVariable:
         ends at a time has none at the first time); the metrics start there.
     metrics : the per-member metrics made from it.
     cell_methods : CF ``cell_methods``, or None.
+    row_total, time_total : its rows and times when they are not the labels of ``rows``
+        times the groups and the reported times (a measure's rows and windows), else None.
     """
 
     name: str
@@ -77,6 +79,8 @@ class TrajectoryVariable:
     first_report: int = 0
     metrics: tuple[Metric, ...] = ()
     cell_methods: str | None = None
+    row_total: int | None = None
+    time_total: int | None = None
 
     def values(self, result: ChunkResult) -> np.ndarray:
         """The (members, rows, times) values of a chunk of members."""
@@ -104,7 +108,8 @@ TRAJECTORIES: tuple[TrajectoryVariable, ...] = (
                  Metric("total_flow", "total",
                         f"{PERSONS} moved by the flow over the whole horizon"))),
 )
-"""Every trajectory variable of a result, in file order."""
+"""The trajectory variables of every result, in file order; a result with measures
+has one more per measure (:func:`ensemble.output.measures.trajectory_variables`)."""
 
 TRAJECTORY_NAMES = tuple(variable.name for variable in TRAJECTORIES)
 

@@ -48,7 +48,7 @@ from ensemble.output.candidates import reusable
 from ensemble.output.layout import ResultLayout
 from ensemble.output.selection import Brackets, Candidates
 from ensemble.output.sources import time_major
-from ensemble.output.variables import trajectory
+from ensemble.output.measures import find_trajectory
 from ensemble.records import ChunkKey, ChunkResult
 
 CHUNK_PREFIX = "chunk-"
@@ -296,7 +296,7 @@ class ChunkFiles:
                                  "again to finish; finish the run with the run engine")
         if self._recomputed is None or self._recomputed[0] != key:
             self._recomputed = (key, self.recompute(key))
-        values = trajectory(name).values(self._recomputed[1])
+        values = find_trajectory(self.layout, name).values(self._recomputed[1])
         return time_major(values).reshape(-1, count)
 
     def trajectory(self, key: ChunkKey, name: str) -> np.ndarray:

@@ -53,6 +53,7 @@ from ensemble.errors import (FingerprintMismatch, IncompleteWork, ResultExists, 
 from ensemble.output.brackets import FILE_PREFIX, BracketCache
 from ensemble.output.finish import DEFAULT_BLOCK_BYTES, Finisher
 from ensemble.output.layout import ResultLayout
+from ensemble.output.measures import chunk_trajectories
 from ensemble.output.quantiles import in_summary
 from ensemble.output.sources import check_chunk, chunk_member_arrays
 from ensemble.output.variables import MEMBER_VALUES, TRAJECTORIES
@@ -387,7 +388,7 @@ class WorkJournal:
         """
         self._check_key(key)
         check_chunk(self.layout, key, result)
-        trajectories = {variable.name: variable.values(result) for variable in TRAJECTORIES}
+        trajectories = chunk_trajectories(self.layout, result)
         arrays = chunk_member_arrays(self.layout, key, result, reported, trajectories)
         brackets = self.brackets.cutting(key) if candidates else None
         self._verified.discard(key)
