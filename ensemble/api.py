@@ -347,7 +347,7 @@ def score(result: str | os.PathLike[str], observed: str | os.PathLike[str], *,
 def fit(scenario: Scenario | str | os.PathLike[str], *,
         output: str | os.PathLike[str] | None = None, particles: int = 2000,
         seed: int | None = None, backend: str | None = None, chunk: int | None = None,
-        force: bool = False, report=None) -> Path:
+        force: bool = False, resume: bool = False, report=None) -> Path:
     """Condition the scenario's ensemble on its ``[[observations]]`` by tempered
     sequential Monte Carlo and write a result file whose members are the posterior
     (equally weighted, with their log-likelihoods), projected for every variant.
@@ -361,6 +361,8 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     backend : ``"numpy"`` or ``"compiled"`` (default as for :func:`run`).
     chunk : members integrated at once (default ``compute.chunk``, else 1000).
     force : replace an existing result file.
+    resume : go on from the state an interrupted fit kept after its last round (in
+        ``<output>.fit-partial``); the file is the same, bit for bit.
     report : called after each round with its number and its
         :class:`ensemble.fit.smc.Round` (temperature, effective size, acceptance).
 
@@ -386,7 +388,8 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     settings = SamplerSettings(particles=particles,
                                seed=scenario.seed if seed is None else seed)
     fit_and_write(scenario, target, settings, backend=backend or DEFAULT_BACKEND,
-                  chunk=chunk or scenario.compute.chunk or 1000, report=report)
+                  chunk=chunk or scenario.compute.chunk or 1000, resume=resume,
+                  report=report)
     return target
 
 

@@ -298,6 +298,8 @@ def fit(
     chunk: ChunkSize = None,
     backend: BackendChoice = None,
     force: Force = False,
+    resume: Annotated[bool, typer.Option(
+        "--resume", help="Go on from the last round an interrupted fit kept.")] = False,
 ) -> None:
     """Fit SCENARIO's drawn parameters to its [[observations]] by tempered sequential
     Monte Carlo and write the posterior members, projected for every variant."""
@@ -312,7 +314,7 @@ def fit(
         loaded = api.load_scenario(scenario, settings=settings or [])
         path = api.fit(loaded, output=output, particles=particles, seed=seed,
                        backend=backend.value if backend else None, chunk=chunk,
-                       force=force, report=report)
+                       force=force, resume=resume, report=report)
     typer.echo(f"result: {path} ({particles} posterior members per variant)")
 
 

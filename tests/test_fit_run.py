@@ -1,10 +1,16 @@
 """``ensemble fit`` end to end: the posterior members of an SIR scenario fitted to Poisson
 counts agree with the posterior computed on a fine grid from scipy's ``solve_ivp`` (at
 tight tolerance) by quadrature (``scipy.integrate.simpson``); the same seed gives the same
-file; rounds are printed and bad observations stop the command with exit status 2.
+file, and a fit killed after a round (at the barrier of its kept state) goes on with
+--resume to the same file; rounds are printed and bad observations stop the command with
+exit status 2.
 """
 
 from __future__ import annotations
+
+import signal
+import subprocess
+import time
 
 import numpy as np
 import pytest
@@ -12,7 +18,7 @@ import xarray as xr
 from scipy import integrate, stats
 
 from ensemble import api
-from support import run_cli
+from support import ensemble_command, run_cli
 
 SCENARIO = """\
 # Illustrative only: an invented town and invented counts.
@@ -135,3 +141,30 @@ def test_the_command_prints_rounds_and_refuses_bad_observations(fitted, tmp_path
     (tmp_path / "cases.csv").write_text(COUNTS + "2027-03-29,-2\n")
     refused = run_cli("fit", "fitted.toml", "--particles", "50", "--force", cwd=tmp_path)
     assert refused.returncode == 2 and "cases.csv: line 5, value" in refused.stderr
+
+
+@pytest.mark.slow
+def test_a_killed_fit_resumes_to_the_same_file(fitted, tmp_path):
+    directory, whole = fitted
+    (tmp_path / "cases.csv").write_text(COUNTS)
+    (tmp_path / "fitted.toml").write_text(SCENARIO)
+    arguments = ("fit", "fitted.toml", "--particles", "600", "--backend", "numpy",
+                 "-o", "fitted.nc")
+    state = tmp_path / "fitted.nc.fit-partial" / "state.npz"
+    process = subprocess.Popen(ensemble_command(*arguments), cwd=tmp_path,
+                               stdout=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300      # a bound on a hang, not a timed assertion
+    while not state.exists() and process.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.01)
+    process.send_signal(signal.SIGKILL)    # at the barrier: a round's state is kept
+    process.wait()
+    assert process.returncode == -signal.SIGKILL, "the fit ended before it was killed"
+    assert state.exists() and not (tmp_path / "fitted.nc").exists()
+    done = run_cli(*arguments, "--resume", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "round 1:" not in done.stdout and "round " in done.stdout
+    assert not state.parent.exists()
+    with xr.open_dataset(tmp_path / "fitted.nc", decode_times=False) as resumed:
+        for name in ("param_beta", "log_likelihood", "measure_cases_quantile",
+                     "fit_temperature"):
+            np.testing.assert_array_equal(resumed[name].values, whole[name].values)

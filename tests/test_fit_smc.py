@@ -216,3 +216,16 @@ def test_the_same_seed_gives_the_same_particles_bit_for_bit():
     other = tempered_smc(log_likelihood, 2, SamplerSettings(particles=500, seed=4))
     assert np.array_equal(first.z, second.z) and first.rounds == second.rounds
     assert not np.array_equal(first.z, other.z)
+
+
+def test_a_sampler_stopped_after_a_round_goes_on_to_the_same_bits():
+    def log_likelihood(z):
+        return -0.5 * np.sum((z - 1.0) ** 2, axis=0) / 0.01
+
+    settings = SamplerSettings(particles=400, seed=9)
+    kept = []
+    whole = tempered_smc(log_likelihood, 2, settings, checkpoint=kept.append)
+    assert len(kept) == len(whole.rounds) >= 3
+    resumed = tempered_smc(log_likelihood, 2, settings, resume_from=kept[1])
+    assert np.array_equal(resumed.z, whole.z) and resumed.rounds == whole.rounds
+    assert resumed.log_evidence == whole.log_evidence

@@ -17,6 +17,7 @@ import numpy as np
 import xarray as xr
 
 from ensemble.durable import replace_atomically
+from ensemble.fit.checkpoint import load_state, partial_directory, remove_state, save_state
 from ensemble.fit.engine import FitProblem, posterior_chunks
 from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
 from ensemble.output.dataset import encoding
@@ -28,12 +29,18 @@ from ensemble.scenario.schema import Scenario
 
 
 def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *,
-                  backend: str, chunk: int,
+                  backend: str, chunk: int, resume: bool = False,
                   report: Callable[[int, Round], None] | None = None) -> Posterior:
     """Fit ``scenario`` to its observations and write the posterior's result to
-    ``output`` (whole or not at all)."""
+    ``output`` (whole or not at all), keeping the sampler's state after every round in
+    ``<output>.fit-partial``; with ``resume``, go on from the state kept there."""
     problem = FitProblem(scenario, backend, chunk)
-    posterior = tempered_smc(problem.log_likelihood, problem.dimension, settings, report)
+    key = f"{problem.layout.fingerprint} {settings}"
+    directory = partial_directory(output)
+    kept = load_state(directory, key) if resume else None
+    posterior = tempered_smc(problem.log_likelihood, problem.dimension, settings, report,
+                             checkpoint=lambda state: save_state(directory, key, state),
+                             resume_from=kept)
     layout, chunks = posterior_chunks(problem, posterior.z)
     dataset = result_dataset(Finisher(layout, MembersInMemory(layout, chunks)))
     stored = encoding(layout, dataset)
@@ -41,6 +48,7 @@ def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *
     replace_atomically(output, lambda target: dataset.to_netcdf(
         target, format="NETCDF4", engine="netcdf4", encoding=stored),
         suffix=UNFINISHED_SUFFIX)
+    remove_state(directory)
     return posterior
 
 

@@ -164,8 +164,32 @@ def _move(z: np.ndarray, log_likelihood: np.ndarray, temperature: float,
     return z, log_likelihood, accepted / (steps * count)
 
 
+@dataclass(frozen=True)
+class SamplerState:
+    """Where the sampler stands after a round: enough to go on as if never stopped.
+
+    Attributes
+    ----------
+    z, log_likelihood : the equally weighted particles and their log-likelihoods.
+    temperature : the exponent reached.
+    log_evidence : the log evidence summed so far.
+    rounds : the rounds done.
+    random_state : the state of the sampler's random generator
+        (``numpy.random.PCG64().state``, a dict of numbers).
+    """
+
+    z: np.ndarray
+    log_likelihood: np.ndarray
+    temperature: float
+    log_evidence: float
+    rounds: tuple[Round, ...]
+    random_state: dict
+
+
 def tempered_smc(function: LogLikelihood, dimension: int, settings: SamplerSettings,
-                 report: Callable[[int, Round], None] | None = None) -> Posterior:
+                 report: Callable[[int, Round], None] | None = None,
+                 checkpoint: Callable[[SamplerState], None] | None = None,
+                 resume_from: SamplerState | None = None) -> Posterior:
     """Sample the posterior of ``dimension`` standard normal coordinates under the
     log-likelihood ``function``.
 
@@ -176,6 +200,9 @@ def tempered_smc(function: LogLikelihood, dimension: int, settings: SamplerSetti
     dimension : number of coordinates (uncertain parameters).
     settings : particles, seed, the effective size kept, move steps, round bound.
     report : called after each round with its number (from 1) and what it did.
+    checkpoint : called after each round with the sampler's state, to be kept.
+    resume_from : a state a checkpoint kept: the sampler goes on from it and gives the
+        same bits as a run never stopped.
 
     Raises
     ------
@@ -183,10 +210,16 @@ def tempered_smc(function: LogLikelihood, dimension: int, settings: SamplerSetti
         before the temperature reached 1.
     """
     rng = np.random.default_rng(settings.seed)
-    z = rng.standard_normal((dimension, settings.particles))
-    log_likelihood = _finite(function(z))
+    if resume_from is None:
+        z = rng.standard_normal((dimension, settings.particles))
+        log_likelihood = _finite(function(z))
+        temperature, log_evidence, rounds = 0.0, 0.0, []
+    else:
+        rng.bit_generator.state = resume_from.random_state
+        z, log_likelihood = resume_from.z, resume_from.log_likelihood
+        temperature, log_evidence = resume_from.temperature, resume_from.log_evidence
+        rounds = list(resume_from.rounds)
     kept = settings.kept_fraction * settings.particles
-    temperature, log_evidence, rounds = 0.0, 0.0, []
     while temperature < 1.0:
         if len(rounds) == settings.max_rounds:
             raise RuntimeError(f"the temperature reached only {temperature:.3g} in "
@@ -207,6 +240,9 @@ def tempered_smc(function: LogLikelihood, dimension: int, settings: SamplerSetti
         rounds.append(Round(temperature, size, acceptance))
         if report is not None:
             report(len(rounds), rounds[-1])
+        if checkpoint is not None:
+            checkpoint(SamplerState(z, log_likelihood, temperature, log_evidence,
+                                    tuple(rounds), rng.bit_generator.state))
     return Posterior(z, log_likelihood, log_evidence, tuple(rounds))
 
 
