@@ -48,14 +48,16 @@ def form_block_size(form: KernelForm) -> int:
     """Members per block, a power of two from 8 to 512: :data:`FUSED_BLOCK` for a fused
     explicit step; otherwise as many as keep the block's arrays near
     :data:`STAGED_BYTES` (explicit) or its Newton matrices near :data:`IMPLICIT_BYTES`."""
-    if form.fused:
+    if form.shape == "fused":
         return FUSED_BLOCK
     if form.method.implicit:
         per_member, limit = 8 * form.n_states * (form.n_states + 1), IMPLICIT_BYTES
     else:
-        rows = (2 * form.n_states + (len(form.method.b) + 2) * form.n_elements
+        stages = len(form.method.b)
+        rows = (form.n_states * (2 if form.shape == "staged" else 1)
+                + (stages + 1 + (form.shape == "staged")) * form.n_elements
                 + 2 * form.n_groups * len(form.structured)
-                + len(form.method.b) * len(form.model.schedule_slots))
+                + stages * len(form.model.schedule_slots))
         per_member, limit = 8 * rows, STAGED_BYTES
     size = 512
     while size > 8 and size * per_member > limit:

@@ -166,9 +166,12 @@ class KernelForm:
     moves : per flow element, its (source, target) state rows (None: outside).
     structured : the sums over groups the families read, in a fixed order.
     plans : per matrix product of ``structured``, its :class:`MatrixPlan`.
-    fused : whether one pass over (group, member) can take a whole step: an explicit
-        method, no single elements, no sums over groups, and every family and state it
-        reads in whole blocks of one row per group.
+    shape : how a step is laid out: ``"fused"``, one pass over (group, member) takes a
+        whole step in registers (an explicit method, no single elements, no sums over
+        groups, every family and state it reads in whole blocks of one row per group);
+        ``"banded"``, the same with a pass per stage and the stage's sums over groups
+        computed between passes; ``"staged"``, every stage through arrays (single
+        elements, or an implicit method).
     touch_start, touch_element, touch_sign : the flow elements into and out of each state
         row, elements ascending, as compressed rows: state s is touched by elements
         ``touch_element[touch_start[s]:touch_start[s + 1]]`` with signs +1.0 (into) or
@@ -194,8 +197,10 @@ class KernelForm:
         self.structured = tuple(found)
         self.plans = {node: MatrixPlan.of(node) for node in self.structured
                       if isinstance(node, Contract)}
-        self.fused = (not method.implicit and not self.singles and not self.structured
-                      and self._in_blocks())
+        if method.implicit or self.singles or not self._in_blocks():
+            self.shape = "staged"
+        else:
+            self.shape = "banded" if self.structured else "fused"
         self.touch_start, self.touch_element, self.touch_sign = self._touches()
 
     @property

@@ -12,10 +12,11 @@ loop over the groups.  Each distinct subtree of a loop's body is computed once
 (:class:`~.expressions.ExpressionWriter`); subtrees of the time alone are computed once
 per evaluation, outside the loops.
 
-All of it is one generated function, ``rates_at``, that the step calls at each stage
-(the code does not grow with the stages of the method); a fused step
-(:attr:`~.form.KernelForm.fused`) instead writes the rates of every stage inline, in
-registers (:meth:`RateCode.evaluate`).
+In a staged step (:attr:`~.form.KernelForm.shape`) all of it is one generated function,
+``rates_at``, that the step calls at each stage (the code does not grow with the stages
+of the method); a fused or banded step instead writes the rates inline, the states in
+registers (:meth:`RateCode.evaluate`), with the sums over groups between its passes
+(:meth:`RateCode.reductions`).
 
 Variables of the generated code: ``m0`` the block's first member, ``width`` its members,
 ``b`` a member's lane and ``m = m0 + b`` its column, ``g`` the group at hand, ``p`` the
@@ -173,9 +174,26 @@ class RateCode:
         lines += self._rates(reading, "    ")
         return lines + ["    return"]
 
+    def sums_call(self, indent: str, stage: str, time: str) -> str:
+        """A call of ``sums_at``: the sums over groups at ``stage`` (row of ``sv``) and
+        ``time``, from the operands at every group."""
+        return f"{indent}sums_at({stage}, {time}, {', '.join(self.arguments())})"
+
+    def sums_function(self) -> list[str]:
+        """The generated ``sums_at`` (:meth:`reductions`), for steps that compute the
+        operands themselves."""
+        roots = [self.form.plans[node].skeletons[k] for node in self.form.plans
+                 for k in range(len(self.form.plans[node].skeletons))]
+        time_lines, time_names = self.time_subtrees("time", "u_", "    ", roots)
+        reading = Reading("time", "stage", time_names, _no_state)
+        return ["", "", COMPILED,
+                f"def sums_at(stage, time, {', '.join(self.arguments())}):",
+                '    """The sums over groups at a stage."""',
+                "    n_groups = sizes[2]", *time_lines,
+                *self.reductions(reading, "    "), "    return"]
+
     def _structured_values(self, reading: Reading, indent: str) -> list[str]:
-        """Every operand at every group, then each matrix product row by row over its
-        entries (``value_<x>``) and each sum over groups (``total_<x>``)."""
+        """Every operand at every group, then the sums over groups."""
         if not self.form.structured:
             return []
         inner = indent + "        "
@@ -184,6 +202,12 @@ class RateCode:
         lines = [f"{indent}for g in range(n_groups):",
                  f"{indent}    for b in range(width):", *prelude, *body]
         lines += [f"{inner}operand_{x}[g, b] = {value}" for x, value in enumerate(values)]
+        return lines + self.reductions(reading, indent)
+
+    def reductions(self, reading: Reading, indent: str) -> list[str]:
+        """Each matrix product row by row over its entries (``value_<x>``) and each sum
+        over groups (``total_<x>``), from the operands at every group (``operand_<x>``)."""
+        lines: list[str] = []
         for x, node in enumerate(self.form.structured):
             if isinstance(node, Contract):
                 lines += self._contract(x, reading, indent)
@@ -321,6 +345,10 @@ class RateCode:
 
 def _row(leaf: ScalarNode) -> int:
     return leaf.first if isinstance(leaf, GroupParam) else leaf.index
+
+
+def _no_state(node: ScalarNode) -> str:
+    raise AssertionError(f"a matrix entry reads the state: {node!r}")
 
 
 def _unexpected(node: ScalarNode) -> str:

@@ -108,7 +108,7 @@ class KernelSource:
         ]
         lines += _copied([*OPERATION_HELPERS.values(), *STEP_HELPERS,
                           *self._step.support()])
-        if not form.fused:
+        if form.shape == "staged":
             lines += self._rates.function()
         lines += self._step.functions()
         lines += ["",
