@@ -393,6 +393,16 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     return target
 
 
+def fit_summary(scenario: Scenario, result: str | os.PathLike[str]) -> str:
+    """The prior and posterior 5%, 50% and 95% quantiles of every drawn parameter of
+    ``scenario`` (first variant), the posterior from the members of the fitted
+    ``result``: the table ``ensemble fit`` prints last."""
+    from ensemble.fit.parameters_text import prior_and_posterior
+
+    with open_result(result) as dataset:
+        return prior_and_posterior(scenario, dataset.load())
+
+
 def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
     """``scenario`` with only the variants ``names``, in that order (``compare_to``
     dropped when its variant is not among them).

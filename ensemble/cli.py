@@ -316,6 +316,7 @@ def fit(
                        backend=backend.value if backend else None, chunk=chunk,
                        force=force, resume=resume, report=report)
     typer.echo(f"result: {path} ({particles} posterior members per variant)")
+    typer.echo(api.fit_summary(loaded, path), nl=False)
 
 
 @app.command()

@@ -119,6 +119,20 @@ def test_posterior_members_match_the_grid_posterior(fitted):
     assert dataset["fit_temperature"].values[-1] == 1.0
 
 
+def test_the_parameter_table_gives_prior_and_posterior_quantiles(fitted):
+    directory, dataset = fitted
+    text = api.fit_summary(api.load_scenario(directory / "fitted.toml"),
+                           directory / "fitted.nc")
+    cells = text.splitlines()[1].split()
+    assert cells[0] == "beta"
+    # the prior uniform(0.2, 0.8)'s quantiles (scipy.stats.uniform.ppf), then the
+    # members' (numpy.quantile, Hyndman & Fan 1996 definition 7)
+    prior = stats.uniform.ppf([0.05, 0.5, 0.95], loc=0.2, scale=0.6)
+    posterior = np.quantile(dataset["param_beta"].isel(variant=0).values, [0.05, 0.5, 0.95])
+    np.testing.assert_allclose([float(c) for c in cells[1:]], [*prior, *posterior],
+                               rtol=5e-4)
+
+
 def test_the_same_seed_gives_the_same_file(fitted, tmp_path):
     directory, first = fitted
     again = api.fit(directory / "fitted.toml", output=tmp_path / "again.nc", particles=600,
