@@ -37,11 +37,13 @@ def check_report(scenario: Scenario) -> str:
     Raises
     ------
     ensemble.errors.InputError : the run could not finish or be written
-        (:func:`ensemble.run.feasibility.refuse_infeasible`), or a part of an expression
-        made of numbers alone is not finite.
+        (:func:`ensemble.run.feasibility.refuse_infeasible`), a part of an expression
+        made of numbers alone is not finite, or an ``[[observations]]`` table or its
+        counts file is wrong.
     """
     import numpy as np
 
+    from ensemble.fit.observations import scenario_observations
     from ensemble.model.reproduction import infected_compartments
     from ensemble.run.feasibility import (advice, estimate, machine_cores,
                                           refuse_infeasible, section)
@@ -51,6 +53,7 @@ def check_report(scenario: Scenario) -> str:
 
     figures = estimate(scenario)
     refuse_infeasible(scenario, figures, Path(scenario.output.path))
+    scenario_observations(scenario)     # [[observations]] and their counts files
     first_members = np.arange(min(scenario.member_count, QUICK_DRAW))
     rows = []
     for variant, model in zip(scenario.variants, lowered_models(scenario)):

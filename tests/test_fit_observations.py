@@ -15,7 +15,7 @@ from ensemble.errors import ScenarioError
 from ensemble.fit.likelihood import (negative_binomial_log_pmf, poisson_log_pmf,
                                      series_log_likelihood)
 from ensemble.fit.observations import scenario_observations
-from support import load_text
+from support import load_text, run_cli
 
 COUNTS = np.array([0.0, 1.0, 7.0, 40.0, 250.0, 3000.0])
 MEANS = np.array([0.3, 2.5, 7.0, 55.5, 180.0, 2999.0])
@@ -150,3 +150,10 @@ def test_a_stock_measure_is_observed_at_reported_times(tmp_path):
     scenario = _load(tmp_path, table, "date,value\n2027-03-02,12\n2027-03-05,30\n")
     [series] = scenario_observations(scenario)
     np.testing.assert_array_equal(series.times, [1.0, 4.0])
+
+
+def test_check_refuses_bad_observations_with_exit_status_2(tmp_path):
+    _load(tmp_path, GOOD, "date,value\n2027-03-11,4\n")
+    done = run_cli("check", "observed.toml", cwd=tmp_path)
+    assert done.returncode == 2
+    assert "cases.csv: line 2, date" in done.stderr
