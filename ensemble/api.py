@@ -325,7 +325,7 @@ def score(result: str | os.PathLike[str], observed: str | os.PathLike[str], *,
     """The text of ``ensemble score``: the quantiles of a flow measure (or of a flow's
     counts) in a complete result file scored against the counts of ``observed`` (a CSV
     file date,value), per variant and horizon (days after the ISO date ``after``,
-    by default the start), by the weighted interval score and the coverage of the central intervals.
+    by default the last day a fit saw, else the start), by the weighted interval score and the coverage of the central intervals.
 
     Raises
     ------

@@ -333,7 +333,8 @@ def score(
     ] = None,
     after: Annotated[Optional[str], typer.Option(
         "--after", metavar="DATE",
-        help="Count horizons in days from this ISO date (default: the projection's start).")
+        help="Count horizons in days from this ISO date (default: the last day a fit saw, "
+             "else the projection's start).")
     ] = None,
 ) -> None:
     """Score RESULT's projections against OBSERVED counts, per variant and horizon: the

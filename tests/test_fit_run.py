@@ -133,6 +133,16 @@ def test_the_parameter_table_gives_prior_and_posterior_quantiles(fitted):
                                rtol=5e-4)
 
 
+def test_scores_of_a_fit_count_horizons_from_its_last_observation(fitted, tmp_path):
+    directory, _ = fitted
+    later = tmp_path / "later.csv"
+    later.write_text("date,value\n2027-03-29,400\n2027-04-05,700\n")
+    text = api.score(directory / "fitted.nc", later)
+    rows = text.split("variant usual\n")[1].splitlines()[1:3]
+    # the last count the fit saw ends day 21 (2027-03-22): days 28 and 35 are 7 and 14
+    assert [float(row.split()[0]) for row in rows] == [7.0, 14.0]
+
+
 def test_the_same_seed_gives_the_same_file(fitted, tmp_path):
     directory, first = fitted
     again = api.fit(directory / "fitted.toml", output=tmp_path / "again.nc", particles=600,

@@ -6,7 +6,8 @@ The projection scored is a flow measure's quantiles (``measure_<name>_quantile``
 value per window, the window's end as its time) or, for a result without measures, a
 flow's counts per report interval (``flow_count_quantile``). Each observed date must be
 one of those times; the horizon of a date is its number of days after ``after`` (by
-default the projection's start).
+default the last day a fit saw, for the result of ``ensemble fit``, else the projection's
+start).
 """
 
 from __future__ import annotations
@@ -107,16 +108,16 @@ def score_result(dataset: xr.Dataset, observed: ObservedCounts, file: str, *,
     chosen = quantiles[:, where, :]
     nominal, inside = interval_coverage(chosen, levels, observed.values)
     median = chosen[..., int(np.argmin(np.abs(levels - 0.5)))]
+    origin = _day_of(after, start) if after is not None else float(
+        np.nan_to_num(dataset.attrs.get("fit_last_observed_day", 0.0)))
     return ScoreTable(series, tuple(str(v) for v in dataset["variant_name"].values),
-                      days - _day_of(after, start), observed.values, median,
+                      days - origin, observed.values, median,
                       weighted_interval_score(chosen, levels, observed.values), nominal,
                       inside)
 
 
-def _day_of(after: str | None, start: datetime.date | None) -> float:
+def _day_of(after: str, start: datetime.date | None) -> float:
     """The day the horizons count from: ``after`` (an ISO date) as days since ``start``."""
-    if after is None:
-        return 0.0
     if start is None:
         raise UsageError("--after", "", after,
                          "the result has no start date; its horizons count from day 0")
