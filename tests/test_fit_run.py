@@ -192,3 +192,25 @@ def test_a_killed_fit_resumes_to_the_same_file(fitted, tmp_path):
         for name in ("param_beta", "log_likelihood", "measure_cases_quantile",
                      "fit_temperature"):
             np.testing.assert_array_equal(resumed[name].values, whole[name].values)
+
+
+def test_dispersion_and_reporting_drawn_as_parameters_are_each_members_own(tmp_path):
+    (tmp_path / "cases.csv").write_text(COUNTS)
+    text = SCENARIO.replace(
+        "contact = 1.0\n", 'contact = 1.0\nk_cases = { dist = "uniform", low = 2, high = 50 }\n'
+        'ascertained = { dist = "beta", mean = 0.5, sd = 0.1 }\n') + (
+        'distribution = "negative-binomial"\ndispersion = "k_cases"\n'
+        'reporting = "ascertained"\n')
+    (tmp_path / "drawn.toml").write_text(text)
+    path = api.fit(tmp_path / "drawn.toml", output=tmp_path / "drawn.nc", particles=100,
+                   backend="numpy")
+    with xr.open_dataset(path, decode_times=False) as dataset:
+        k = dataset["param_k_cases"].isel(variant=0).values[:, None]
+        share = dataset["param_ascertained"].isel(variant=0).values[:, None]
+        weeks = dataset["measure_cases"].isel(variant=0).values[:, :3]
+        stored = dataset["log_likelihood"].values
+    counts = np.array([35.0, 80.0, 190.0])
+    # scipy.stats.nbinom with n = k, p = k / (k + mean), mean = reporting x measure
+    expected = stats.nbinom.logpmf(counts, k, k / (k + share * weeks)).sum(axis=1)
+    np.testing.assert_allclose(stored, expected, rtol=1e-10)
+    assert np.std(k) > 0 and np.std(share) > 0
