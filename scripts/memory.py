@@ -12,7 +12,11 @@ figure is an upper bound.
 Usage::
 
     python scripts/memory.py [--members 200000] [--days 365] [--workers N]
-                             [--backend numpy|compiled] [--keep DIR]
+                             [--backend numpy|compiled] [--keep DIR] [--measures]
+
+``--measures`` adds three briefing measures to the scenario (infectious persons, exposed
+or infectious persons, new infections per week), whose bands are computed as those of
+``state``.
 """
 
 from __future__ import annotations
@@ -28,6 +32,23 @@ from pathlib import Path
 import psutil
 
 from ensemble.examples import seir_text
+
+MEASURES = """
+[[measures]]
+name = "infectious"
+of = "I"
+threshold = 1000
+
+[[measures]]
+name = "infected"
+of = "E + I"
+
+[[measures]]
+name = "infections"
+of = "infection"
+window = 7
+"""
+"""Illustrative measures of the SEIR scenario (``--measures``)."""
 
 GOAL_BYTES = 2 * 10**9
 """The project's goal: a 200,000-member SEIR over 365 days runs in under 2 GB resident
@@ -67,6 +88,8 @@ def main() -> int:
     parser.add_argument("--backend", default=None)
     parser.add_argument("--keep", type=Path, default=None,
                         help="directory to run in and keep (default: a temporary one)")
+    parser.add_argument("--measures", action="store_true",
+                        help="add three measures to the scenario")
     options = parser.parse_args()
 
     with tempfile.TemporaryDirectory(prefix="ensemble-memory-") as temporary:
@@ -75,7 +98,8 @@ def main() -> int:
         scenario = directory / "memory-check.toml"
         scenario.write_text(seir_text(members=options.members, days=options.days,
                                       population=250000, seed=2027, keep_members=False,
-                                      output="memory-check.nc", name="memory-check"))
+                                      output="memory-check.nc", name="memory-check")
+                            + (MEASURES if options.measures else ""))
         command = [sys.executable, "-c", "from ensemble.cli import main; main()", "run",
                    str(scenario), "--force"]
         if options.workers is not None:
@@ -97,7 +121,8 @@ def main() -> int:
         echo.join()
 
     total, driver, worker = peaks
-    print(f"members {options.members}, days {options.days}, exit status {process.returncode}")
+    print(f"members {options.members}, days {options.days}, measures "
+          f"{'3' if options.measures else 'none'}, exit status {process.returncode}")
     print(f"peak resident memory of the process tree: {total / 1e9:.2f} GB "
           f"(driver {driver / 1e9:.2f} GB, largest worker {worker / 1e9:.2f} GB)")
     print(f"ratio to the 2 GB goal: {total / GOAL_BYTES:.2f} (must be below 1)")
