@@ -25,6 +25,7 @@ from types import ModuleType
 import numba
 import numpy as np
 
+from ensemble.integrate.interrupts import stop_if_requested
 from ensemble.integrate.kernels.blocks import padding_unit
 from ensemble.integrate.kernels.cache import KernelCache
 from ensemble.integrate.kernels.schedules import schedule_arrays
@@ -205,6 +206,16 @@ def _padding_columns(valid: np.ndarray, padded: int) -> np.ndarray | None:
     return member_index
 
 
+def block_batches(padded: int, block: int, threads: int) -> list[tuple[int, int]]:
+    """The member ranges ``(first, end)`` of ``padded`` members integrated between two
+    looks for a request to stop (:mod:`ensemble.integrate.interrupts`): one block per
+    thread, starting on block boundaries, so that every block is the one a single pass
+    over all members would run (the same bits).  An interrupted run waits at most for
+    one block to cross the whole horizon."""
+    batch = block * max(1, threads)
+    return [(first, min(first + batch, padded)) for first in range(0, padded, batch)]
+
+
 def _run_blocks(kernel: Callable[..., None], first: int, end: int, block: int,
                 threads: int, arguments: tuple) -> None:
     """Integrate members ``first .. end - 1`` block by block: in this thread, or with
@@ -252,6 +263,9 @@ def _launch(module: ModuleType, source: KernelSource, design: Design, step: floa
                      float(atol), float(newton.tol), int(newton.max_iter), state,
                      flow_count, status, compare is not None, reference, float(rtol),
                      float(gain), error)
-        _run_blocks(module.integrate_block, 0, padded, source.block, threads, arguments)
+        for first, end in block_batches(padded, source.block, threads):
+            _run_blocks(module.integrate_block, first, end, source.block, threads,
+                        arguments)
+            stop_if_requested()
     status[:design.member_index.shape[0]][invalid] = INVALID_START
     return invalid
