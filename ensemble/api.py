@@ -99,7 +99,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
     address : a running dask scheduler to use instead of a local cluster.
     resume : continue from ``<output>.partial`` (afresh if there is none; nothing to do
         if the result is complete with the same fingerprint).
-    force : replace an existing result.
+    force : replace an existing result, and discard the saved chunks of an unfinished
+        run in ``<output>.partial`` (without it, and without ``resume``, they are kept and
+        the run refuses).
     progress : draw a progress bar on standard error (default: when it is a terminal).
     backend : ``"numpy"`` or ``"compiled"`` integration (default
         :data:`ensemble.run.tasks.DEFAULT_BACKEND`).
@@ -124,8 +126,9 @@ def run(scenario: Scenario | str | os.PathLike[str], *,
 
     Raises
     ------
-    ensemble.errors.ResultExists, ensemble.errors.FingerprintMismatch : nothing was
-        computed (the command line exits with 2).
+    ensemble.errors.ResultExists, ensemble.errors.FingerprintMismatch,
+    ensemble.errors.WorkInProgress, ensemble.errors.WorkLocked : nothing was computed
+        (the command line exits with 2).
     ensemble.errors.RunFailed, ensemble.errors.StoreWriteError : the run failed;
         finished chunks are kept for ``resume`` (exit 1).
     """

@@ -108,7 +108,9 @@ def run(
         "--address", help="A running dask scheduler to use, e.g. tcp://host:8786.")] = None,
     resume: Annotated[bool, typer.Option(
         "--resume", help="Continue an interrupted run from <output>.partial.")] = False,
-    force: Force = False,
+    force: Annotated[bool, typer.Option(
+        "--force", help="Replace an existing result file, and discard the saved chunks of "
+                        "an unfinished run in <output>.partial (kept otherwise).")] = False,
     backend: BackendChoice = None,
     cluster: Annotated[Optional[str], typer.Option(
         "--cluster",
