@@ -23,6 +23,11 @@ section).  The seasonal files hold such members (their step check fails), so the
 variables and ``members_in_summary`` are compared only for the variants whose members
 carry none of those bits (for the differences from ``compare_to``, when that variant's
 do not either); every other number, the status bits included, is compared everywhere.
+
+One change of form: a parameter given as a number (or a number per group) in every
+variant is now stored once per variant, without the member dimension.  Such a variable
+of the old files is compared with the new values broadcast over the members, so every
+member's old value must equal its variant's one stored value.
 """
 
 from __future__ import annotations
@@ -56,6 +61,10 @@ def unchanged_variants(before: xr.Dataset, variable: str, compare_to: int | None
         clean &= clean[compare_to]
     return clean
 
+STORED_ONCE = {"age": ["param_seed_share", "param_susceptibility"],
+               "seasonal": ["param_birth_rate", "param_death_rate"]}
+"""The parameters each frozen scenario gives as numbers (its [parameters] table)."""
+
 
 @pytest.mark.parametrize("backend",
                          [pytest.param("numpy", marks=pytest.mark.slow), "compiled"])
@@ -72,9 +81,15 @@ def test_numbers_are_those_written_before(tmp_path: Path, name: str, backend: st
         numeric = [name for name, variable in before.variables.items()
                    if variable.dtype.kind in "iufb"]
         assert numeric, "the frozen file holds no numbers"
+        stored_once = []
         for variable in numeric:
             assert variable in now.variables, f"{variable} is missing"
-            old, new = before[variable].values, now[variable].values
+            new_values = now[variable]
+            if "member" in before[variable].dims and "member" not in new_values.dims:
+                stored_once.append(variable)        # a constant, now once per variant
+                new_values = new_values.expand_dims(
+                    member=before.sizes["member"]).transpose(*before[variable].dims)
+            old, new = before[variable].values, new_values.values
             assert old.shape == new.shape, variable
             if "variant" in before[variable].dims:
                 assert before[variable].dims[0] == "variant", variable
@@ -84,3 +99,4 @@ def test_numbers_are_those_written_before(tmp_path: Path, name: str, backend: st
                 np.testing.assert_allclose(new, old, rtol=1e-12, atol=0, err_msg=variable)
             else:
                 assert np.array_equal(old, new, equal_nan=old.dtype.kind == "f"), variable
+        assert sorted(stored_once) == STORED_ONCE[name]

@@ -161,8 +161,8 @@ def variable_spec(layout: ResultLayout, name: str) -> VariableSpec:
     if name.startswith("param_") and name.removeprefix("param_") in layout.parameters:
         parameter = name.removeprefix("param_")
         info = layout.parameters[parameter]
-        dims = ("variant", "member", "group") if info.shape == "vector" and layout.groups \
-            else ("variant", "member")
+        dims = ("variant", *(() if info.constant else ("member",)),
+                *(("group",) if info.shape == "vector" and layout.groups else ()))
         attrs: dict[str, object] = {"long_name": info.description or f"parameter {parameter}"}
         if info.units:
             attrs["units"] = info.units
@@ -266,7 +266,8 @@ def build_dataset(layout: ResultLayout, variables: Mapping[str, np.ndarray]) -> 
         quantile), or (variant,) for ``members_in_summary`` and (variant, status bit)
         for ``members_left_out``; then model rows
         (``c * n_groups + g``) and/or time as in :func:`variable_spec`.  ``param_<name>``
-        of a vector parameter is (variant, member, group).
+        of a vector parameter is (variant, member, group), of a constant one (variant,
+        [group]).
 
     Returns
     -------

@@ -86,7 +86,8 @@ class Finisher:
         ``members_in_summary`` and the quantiles of the metrics and of their
         differences (:func:`.metrics.summary_quantiles`), the measures' summaries
         (:func:`.measure_results.finish_measures`) and, when the result keeps members,
-        every member's series of each measure."""
+        every member's series of each measure; a constant parameter's values once per
+        variant ((variant, [group]))."""
         layout = self.layout
         gathered: dict[str, np.ndarray] = {}
         for key in self.keys:
@@ -97,6 +98,9 @@ class Finisher:
                         (len(layout.variants), layout.member_count, *values.shape[1:]),
                         dtype=values.dtype)
                 gathered[name][variant, first:end] = values
+        for name, info in layout.parameters.items():
+            if info.constant:       # the same for every member: stored once per variant
+                gathered[f"param_{name}"] = gathered[f"param_{name}"][:, 0].copy()
         gathered.update(summary_quantiles(gathered, gathered["status"],
                                           layout.scenario.output.quantiles,
                                           layout.compare_index))

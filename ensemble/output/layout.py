@@ -16,22 +16,26 @@ import numpy as np
 
 from ensemble.about import PROGRAM, VERSION
 from ensemble.output.variables import TrajectoryVariable
-from ensemble.scenario.schema import Scenario
+from ensemble.scenario.schema import Fixed, GroupDraws, ParameterForm, Scenario, is_drawn
 
 
 @dataclass(frozen=True)
 class ParameterInfo:
-    """A parameter reported per member as ``param_<name>``.
+    """A parameter reported as ``param_<name>``.
 
     Attributes
     ----------
     shape : ``"scalar"`` -> (variant, member); ``"vector"`` -> (variant, member, group).
     units, description : as given in the scenario file (None where absent).
+    constant : the same for every member of a variant (given as a number or a number
+        per group in every variant), so stored once per variant, without the member
+        dimension.
     """
 
     shape: Literal["scalar", "vector"]
     units: str | None = None
     description: str | None = None
+    constant: bool = False
 
 
 @dataclass(frozen=True)
@@ -151,7 +155,8 @@ class ResultLayout:
                 continue
             units = next((p.units for p in defined if p.units), None)
             description = next((p.description for p in defined if p.description), None)
-            parameters[name] = ParameterInfo(shapes.pop(), units, description)
+            constant = all(_given(p.form) for p in defined)
+            parameters[name] = ParameterInfo(shapes.pop(), units, description, constant)
         times = np.array([float(t) for t in scenario.report_times()], dtype=np.float64)
         return cls(scenario=scenario,
                    variants=tuple(v.name for v in scenario.variants),
@@ -160,3 +165,9 @@ class ResultLayout:
                    parameters=MappingProxyType(parameters),
                    time_varying_parameters=time_varying,
                    fingerprint=fingerprint, history=history)
+
+
+def _given(form: ParameterForm) -> bool:
+    """Whether a parameter of form ``form`` is given as numbers, the same for every
+    member: a number, or a number per group."""
+    return isinstance(form, Fixed) or (isinstance(form, GroupDraws) and not is_drawn(form))
