@@ -435,22 +435,32 @@ def _with_variants(scenario: Scenario, names: Sequence[str]) -> Scenario:
 
 
 def plot(path: str | os.PathLike[str], directory: str | os.PathLike[str] | None = None,
-         measures: Sequence[str] = (), bands: Sequence[int] = (50, 90)) -> list[Path]:
+         measures: Sequence[str] = (), bands: Sequence[int] = (50, 90),
+         observed: str | os.PathLike[str] | None = None) -> list[Path]:
     """Draw the fan chart (median and central bands over time, a panel per variant) and
     the distribution of the peak and total of each measure of a result file as PNG and
-    SVG files in ``directory`` (default: beside the result); the files written.
+    SVG files in ``directory`` (default: beside the result); the files written.  The
+    counts a fit saw are drawn on their measure's chart, and so are the counts of
+    ``observed`` (a CSV file date,value), on the one measure chosen in ``measures`` or
+    else the one a fit saw.
 
     Raises
     ------
     ensemble.errors.NotAResult : ``path`` is not a complete result file.
-    ensemble.errors.UsageError : no measures, an unknown measure, or a band whose
-        quantiles the result does not hold.
+    ensemble.errors.UsageError : no measures, an unknown measure, a band whose
+        quantiles the result does not hold, or a bad counts file (naming its line).
     """
-    from ensemble.present.plot import plot_measures
+    from ensemble.present.plot import LaterCounts, plot_measures
 
+    later = None
+    if observed is not None:
+        from ensemble.fit.counts_file import read_counts
+
+        counts = read_counts(observed)
+        later = LaterCounts(counts.file, counts.dates, counts.values, counts.lines)
     target = Path(directory) if directory is not None else Path(path).parent
     with open_result(path) as dataset:
-        return plot_measures(dataset, target, measures, bands)
+        return plot_measures(dataset, target, measures, bands, later)
 
 
 def export(path: str | os.PathLike[str], directory: str | os.PathLike[str] | None = None,
@@ -490,11 +500,13 @@ def summarize(path: str | os.PathLike[str], only: Sequence[str] = (),
         or edited so that it cannot be read as one.
     """
     from ensemble.errors import NotAResult
+    from ensemble.fit.parameters_text import stored_prior_and_posterior
     from ensemble.present.summary import summary_text
 
     try:
         with open_result(path) as dataset:
-            return summary_text(dataset, only=only, show_all=show_all)
+            fitted = "" if only else stored_prior_and_posterior(dataset)
+            return summary_text(dataset, only=only, show_all=show_all, fitted=fitted)
     except (KeyError, ValueError, TypeError, IndexError, RuntimeError, OSError) as error:
         # the netCDF library's RuntimeError, or a variable missing or reshaped
         reason = (str(error).splitlines() or [""])[0][:200]

@@ -386,14 +386,19 @@ def plot(
     output: Annotated[Optional[Path], typer.Option(
         "--output", "-o", help="Directory for the figures (default: beside RESULT).")
     ] = None,
+    observed: Annotated[Optional[Path], typer.Option(
+        "--observed", help="Counts (CSV date,value) to draw as points on the fan chart "
+                           "of the single --measure, else of the measure a fit saw.")
+    ] = None,
 ) -> None:
     """Draw each measure's fan chart (a panel per variant) and the distribution of its
-    peak and total, as PNG and SVG."""
+    peak and total, as PNG and SVG; the counts a fit saw, and --observed ones, as
+    points."""
     from ensemble import api
 
     widths = _bands(bands)
     with _reported():
-        written = api.plot(result, output, measure or [], widths)
+        written = api.plot(result, output, measure or [], widths, observed)
     for path in written:
         typer.echo(f"wrote {path}")
 

@@ -19,8 +19,9 @@ import xarray as xr
 from ensemble.durable import replace_atomically
 from ensemble.fit.checkpoint import load_state, partial_directory, remove_state, save_state
 from ensemble.fit.engine import FitProblem, posterior_chunks
+from ensemble.fit.parameters_text import prior_variables
 from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
-from ensemble.output.dataset import encoding
+from ensemble.output.dataset import encoding, time_attrs
 from ensemble.output.finish import Finisher
 from ensemble.output.result_file import UNFINISHED_SUFFIX
 from ensemble.output.sources import MembersInMemory
@@ -54,11 +55,12 @@ def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *
 
 def with_fit_variables(dataset: xr.Dataset, posterior: Posterior,
                        problem: FitProblem) -> xr.Dataset:
-    """``dataset`` with each member's log-likelihood, the rounds of the fit and the
-    observations it saw."""
+    """``dataset`` with each member's log-likelihood, the rounds of the fit, the
+    observations it saw and the prior quantiles of the parameters it drew."""
     rounds = posterior.rounds
     last = max((series.last_time for series in problem.series), default=np.nan)
     return dataset.assign(
+        **observation_variables(problem), **prior_variables(problem.scenario),
         log_likelihood=xr.DataArray(
             posterior.log_likelihood, dims=("member",),
             attrs={"long_name": "log-likelihood of the observations for the member "
@@ -77,3 +79,24 @@ def with_fit_variables(dataset: xr.Dataset, posterior: Posterior,
                    fit_last_observed_day=last,
                    fit_observations=", ".join(f"{s.measure} from {Path(s.file).name}"
                                               for s in problem.series))
+
+
+def observation_variables(problem: FitProblem) -> dict[str, xr.DataArray]:
+    """The counts the fit saw, one row per count of every series over ``observation``:
+    ``observation_measure`` (the measure it counts), ``observation_time`` (the end of its
+    window, less the delay, in the result's time units) and ``observation_count`` (NaN
+    where missing); what ``ensemble plot`` draws on the measures' fan charts."""
+    units = {key: value for key, value in time_attrs(problem.layout).items()
+             if key in ("units", "calendar")}
+    dims = ("observation",)
+    return {
+        "observation_measure": xr.DataArray(
+            np.array([s.measure for s in problem.series for _ in s.times], dtype=str),
+            dims=dims, attrs={"long_name": "measure the observed count is a value of"}),
+        "observation_time": xr.DataArray(
+            np.concatenate([s.times for s in problem.series]).astype(float), dims=dims,
+            attrs={"long_name": "end of the observed count's window", **units}),
+        "observation_count": xr.DataArray(
+            np.concatenate([s.counts for s in problem.series]).astype(float), dims=dims,
+            attrs={"long_name": "observed count the fit saw", "units": "1"}),
+    }

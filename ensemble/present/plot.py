@@ -7,11 +7,17 @@ measure over members as a line and each central band (50 % between the 0.25 and 
 quantiles, 90 % between 0.05 and 0.95, ...) as a shaded area, from the quantiles the
 result stores; a band needs both of its quantiles in the file.  Every figure carries the
 result's caution in its footer.
+
+Observed counts are drawn as points on the panels of the measure they count: those a
+fit saw (the ``observation_*`` variables of a fit's result) as filled dots, and counts
+given later (``ensemble plot --observed``) as open circles, at the end of their window.
 """
 
 from __future__ import annotations
 
+import datetime
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import matplotlib
@@ -32,6 +38,39 @@ BAND_ALPHA = 0.22
 """Opacity of one band; nested bands add up, darkest in the middle."""
 
 FORMATS = ("png", "svg")
+
+OBSERVED = "#a23b1f"
+"""Colour of observed counts."""
+
+
+@dataclass(frozen=True)
+class ObservedPoints:
+    """Observed counts of one measure drawn on its fan chart.
+
+    Attributes
+    ----------
+    label : the legend's text.
+    kind : ``"fitted"`` (counts a fit saw) or ``"later"`` (counts given to plot); the
+        SVG identifies each panel's points as ``observed-<kind>-<panel>``.
+    times : the counts' times on the chart's axis (dates, or days without a start).
+    values : the counts (NaN ones are not drawn).
+    """
+
+    label: str
+    kind: str
+    times: np.ndarray
+    values: np.ndarray
+
+
+@dataclass(frozen=True)
+class LaterCounts:
+    """Counts given to ``ensemble plot`` (``--observed``): the file and, row by row,
+    its dates (or days since the start), values and line numbers."""
+
+    file: str
+    dates: tuple[datetime.date | float, ...]
+    values: np.ndarray
+    lines: tuple[int, ...]
 
 
 def band_quantiles(dataset: xr.Dataset, widths: Sequence[int]) -> list[tuple[int, float,
@@ -81,9 +120,10 @@ def _title(dataset: xr.Dataset, variant: object) -> str:
     return str(variant)
 
 
-def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, float]]):
+def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, float]],
+              observed: Sequence[ObservedPoints] = ()):
     """The figure of measure ``name``: one panel per variant (one row per group for a
-    measure by group)."""
+    measure by group), with the ``observed`` counts as points on every panel."""
     array = dataset[f"measure_{name}_quantile"]
     time_dim = array.dims[-1]
     groups = list(array["group"].values) if "group" in array.dims else [None]
@@ -104,6 +144,8 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
             axis.plot(times, _quantile(part, 0.5), color=LINE, linewidth=1.6,
                       drawstyle="steps-pre" if time_dim != "time" else "default",
                       label="median")
+            for points in observed:
+                _draw_points(axis, points, f"{row}-{column}")
             axis.grid(color="#dddddd", linewidth=0.6)
             heading = _title(dataset, variant) + (f" ({group})" if group else "")
             axis.set_title(heading, fontsize=9)
@@ -116,6 +158,79 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
     figure.tight_layout(rect=(0, 0.05, 1, 1))
     _footer(figure, dataset)
     return figure
+
+
+def _draw_points(axis, points: ObservedPoints, panel: str) -> None:
+    """``points`` on ``axis``: filled dots for counts a fit saw, open circles for later
+    ones."""
+    seen = np.isfinite(points.values)
+    filled = points.kind == "fitted"
+    axis.plot(points.times[seen], points.values[seen], linestyle="none", marker="o",
+              markersize=4, color=OBSERVED, markerfacecolor=OBSERVED if filled else "none",
+              label=points.label, gid=f"observed-{points.kind}-{panel}", zorder=3)
+
+
+def fitted_observations(dataset: xr.Dataset) -> dict[str, list[ObservedPoints]]:
+    """The counts a fit saw, by measure (none for a result not made by a fit)."""
+    if "observation_count" not in dataset:
+        return {}
+    measures = dataset["observation_measure"].values.astype(str)
+    found: dict[str, list[ObservedPoints]] = {}
+    for name in map(str, dict.fromkeys(measures)):
+        chosen = measures == name
+        found[name] = [ObservedPoints("counts the fit saw", "fitted",
+                                      dataset["observation_time"].values[chosen],
+                                      dataset["observation_count"].values[chosen])]
+    return found
+
+
+def later_observations(dataset: xr.Dataset, counts: LaterCounts,
+                       names: Sequence[str]) -> tuple[str, ObservedPoints]:
+    """(measure, points) of counts given to plot: the measure is the one chosen with
+    ``--measure`` when a single one is, else the one measure a fit saw; each date must
+    end one of its windows (a reported time for a stock).
+
+    Raises
+    ------
+    UsageError : no single measure to draw them on, a measure by group, or a date that
+        is not one of the measure's times (naming the file's line).
+    """
+    fitted = list(fitted_observations(dataset))
+    if len(names) == 1:
+        name = names[0]
+    elif len(fitted) == 1:
+        name = fitted[0]
+    else:
+        raise UsageError("--observed", "", counts.file, "name the measure the counts are "
+                         "of with a single --measure", "its measures are: "
+                         + ", ".join(measure_names(dataset)))
+    array = dataset[f"measure_{name}_quantile"]
+    if "group" in array.dims:
+        raise UsageError("--observed", "", counts.file, f"measure {name!r} is per group; "
+                         "counts are drawn on a measure that is one series")
+    axis = dataset[array.dims[-1]].values
+    times = []
+    for date, line in zip(counts.dates, counts.lines):
+        time = _axis_time(date, axis)
+        if time is None or not np.any(axis == time):
+            shown = np.datetime_as_string(axis[:3], unit="D") \
+                if np.issubdtype(axis.dtype, np.datetime64) else axis[:3]
+            raise UsageError(f"{counts.file}: line {line}", "date", str(date),
+                             f"not one of the times of measure {name!r} (the ends of its "
+                             "windows)", f"its first times: {', '.join(map(str, shown))}")
+        times.append(time)
+    return name, ObservedPoints(f"later counts ({Path(counts.file).name})", "later",
+                                np.array(times, dtype=axis.dtype), counts.values)
+
+
+def _axis_time(date: datetime.date | float, axis: np.ndarray):
+    """``date`` in the units of the chart's time axis, or None when they do not mix
+    (a date on an axis of days, a number of days on an axis of dates)."""
+    if np.issubdtype(axis.dtype, np.datetime64):
+        if isinstance(date, datetime.date):
+            return np.datetime64(date.isoformat()).astype(axis.dtype)
+        return None
+    return None if isinstance(date, datetime.date) else float(date)
 
 
 def distribution_chart(dataset: xr.Dataset, name: str):
@@ -154,15 +269,17 @@ def distribution_chart(dataset: xr.Dataset, name: str):
 
 
 def plot_measures(dataset: xr.Dataset, directory: Path, names: Sequence[str] = (),
-                  bands: Sequence[int] = (50, 90)) -> list[Path]:
+                  bands: Sequence[int] = (50, 90),
+                  later: LaterCounts | None = None) -> list[Path]:
     """Write the fan chart and the distribution chart of each measure (``names``, or
     every one) as ``<measure>-fan.png``/``.svg`` and ``<measure>-peaks.png``/``.svg``
-    in ``directory``; the files written.
+    in ``directory``; the files written.  The counts a fit saw, and the ``later`` ones,
+    are drawn on their measure's fan chart.
 
     Raises
     ------
-    UsageError : the result has no measures, an unknown name, or a band its quantiles
-        cannot draw.
+    UsageError : the result has no measures, an unknown name, a band its quantiles
+        cannot draw, or later counts that cannot be drawn (:func:`later_observations`).
     """
     known = measure_names(dataset)
     if not known:
@@ -173,10 +290,15 @@ def plot_measures(dataset: xr.Dataset, directory: Path, names: Sequence[str] = (
             raise UsageError("--measure", "", name, f"the result has no measure {name!r}",
                              "its measures are: " + ", ".join(known))
     chosen = band_quantiles(dataset, bands)
+    observed = fitted_observations(dataset)
+    if later is not None:
+        name, points = later_observations(dataset, later, names)
+        observed[name] = [*observed.get(name, []), points]
     directory.mkdir(parents=True, exist_ok=True)
     written = []
     for name in names or known:
-        for suffix, figure in (("fan", fan_chart(dataset, name, chosen)),
+        for suffix, figure in (("fan", fan_chart(dataset, name, chosen,
+                                                 observed.get(name, ()))),
                                ("peaks", distribution_chart(dataset, name))):
             for extension in FORMATS:
                 path = directory / f"{name}-{suffix}.{extension}"

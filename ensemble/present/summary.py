@@ -197,13 +197,15 @@ def _behind_quantiles(part: xr.Dataset) -> str:
 
 
 def summary_text(dataset: xr.Dataset, only: Sequence[str] = (),
-                 show_all: bool = False) -> str:
+                 show_all: bool = False, fitted: str = "") -> str:
     """The summary of a result opened by :func:`ensemble.open_result`.
 
     Parameters
     ----------
     only : names of measures, compartments or flows: only their rows.
     show_all : also the compartments' and flows' own rows when the result has measures.
+    fitted : for a fit's result, the table of the prior and posterior quantiles of the
+        parameters it drew, printed after the tables.
     """
     probabilities = dataset["quantile"].values
     whole = whole_days(dataset["time"].values)
@@ -240,5 +242,9 @@ def summary_text(dataset: xr.Dataset, only: Sequence[str] = (),
         lines.extend(["", "differences, member by member (the variant minus its "
                           "reference)"])
         lines.extend(_table(["pair", "", "", "units", "", *quantile_header], differences))
+    if fitted:
+        lines.extend(["", "parameters fitted to the observations (first variant): "
+                          "quantiles of the prior and of the posterior members", ""])
+        lines.extend("  " + line for line in fitted.splitlines())
     lines.extend(["", str(dataset.attrs.get("caution", ""))])
     return "\n".join(lines) + "\n"
