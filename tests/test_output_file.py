@@ -227,8 +227,8 @@ def test_summary_command_prints_quantiles_and_status_counts(dated):
     done = _summary(str(dated))
     assert done.returncode == 0, done.stderr
     text = done.stdout
-    assert ("variant usual: 4 members in the quantiles; left out, by status bit: "
-            "step_check_failed 1, non_finite_value 1, impossible_drawn_start 1") in text
+    assert ("variant usual (4 members in the quantiles; left out, by status bit: "
+            "step_check_failed 1, non_finite_value 1, impossible_drawn_start 1)") in text
     assert "variant fewer-contacts" in text
     assert "q0.05" in text and "q0.95" in text
     assert "peak size" in text and "I[old]" in text and "flow total" in text
