@@ -20,12 +20,14 @@ from scipy.integrate import solve_ivp
 
 from ensemble.integrate.kernels.blocks import block_size
 from ensemble.integrate.kernels.cache import KernelCache, cache_directory
+from ensemble.integrate.kernels.form import KernelForm, structured_nodes
 from ensemble.integrate.kernels.launch import (integrate_fixed_compiled, kernel_threads,
                                                set_kernel_threads, step_error_compiled)
 from ensemble.integrate.kernels.source import KernelSource
 from ensemble.integrate.reference import integrate_fixed
 from ensemble.integrate.refine import step_error
 from ensemble.methods import METHODS
+from ensemble.model.grouped import Contract, GroupTotal, expand, grouped_rates
 from ensemble.model.lower import lower_model
 from ensemble.records import INVALID_START, NON_FINITE
 from ensemble.sampling import make_design
@@ -380,3 +382,232 @@ def test_implicit_member_gets_same_bits_in_any_chunk(two_group, method):
     assert np.array_equal(alone.state, whole.state[rows], equal_nan=True)
     assert np.array_equal(alone.flow_count, whole.flow_count[rows], equal_nan=True)
     assert np.array_equal(alone.status, whole.status[rows])
+
+
+# Illustrative model, invented numbers: five groups; a home matrix, a work matrix with
+# empty rows (nobody of groups a and e works) scaled by a step schedule, the work matrix
+# also alone (so a sum loses a term where its row is empty), a sum over groups, a
+# susceptibility per group, a vaccination schedule per group (linear) and waning immunity.
+FIVE_GROUPS = """
+[scenario]
+name = "five-groups"
+days = 30
+members = 20
+seed = 5
+
+[model]
+compartments = ["S", "E", "I", "R"]
+groups = ["a", "b", "c", "d", "e"]
+population = [3000, 5000, 4000, 2000, 1000]
+initial = { S = "rest", E = [2, 0, 1, 0, 0], I = [1, 2, 0, 1, 1] }
+
+[model.matrices]
+home = [[2.0, 1.0, 0.5, 0.2, 0.1], [1.0, 2.5, 0.8, 0.3, 0.0], [0.5, 0.8, 2.0, 0.6, 0.2],
+        [0.2, 0.3, 0.6, 1.5, 0.5], [0.1, 0.0, 0.2, 0.5, 1.0]]
+work = [[0, 0, 0, 0, 0], [0, 3.0, 1.0, 0, 0], [0, 1.0, 2.5, 0.5, 0], [0, 0, 0.5, 1.0, 0],
+        [0, 0, 0, 0, 0]]
+
+[[model.flows]]
+name = "infection"
+from = "S"
+to = "E"
+rate = "beta * susceptibility * S * ((home + open * work) @ (I / N) + work @ (E / N)) + spill * S * sum(I) / sum(N)"
+
+[[model.flows]]
+name = "onset"
+from = "E"
+to = "I"
+rate = "E / latent_days"
+
+[[model.flows]]
+name = "recovery"
+from = "I"
+to = "R"
+rate = "I / infectious_days"
+
+[[model.flows]]
+name = "vaccination"
+from = "S"
+to = "R"
+rate = "vaccination * S"
+
+[[model.flows]]
+name = "waning"
+from = "R"
+to = "S"
+rate = "R / 60"
+
+[parameters]
+beta = { dist = "uniform", low = 0.02, high = 0.05 }
+susceptibility = [0.6, 1.0, 1.0, 1.1, 1.3]
+latent_days = { dist = "gamma", mean = 3.0, sd = 0.5 }
+infectious_days = { dist = "uniform", low = 3.0, high = 6.0 }
+spill = 0.01
+open = { schedule = [[0, 1.0], [10, 0.3], [20, 1.0]], between = "step" }
+vaccination = { schedule = [[5, [0.0, 0.0, 0.0, 0.0, 0.0]], [15, [0.001, 0.002, 0.003, 0.004, 0.01]]], between = "linear" }
+
+[[variants]]
+name = "usual"
+
+[[variants]]
+name = "other-contacts"
+matrices = { home = [[1.5, 0.5, 0.5, 0.2, 0.1], [0.5, 2.0, 0.8, 0.3, 0.0], [0.5, 0.8, 1.0, 0.6, 0.2], [0.2, 0.3, 0.6, 1.5, 0.5], [0.1, 0.0, 0.2, 0.5, 2.0]], work = [[0, 0, 0, 0, 0], [0, 2.0, 0, 0, 0], [0, 0, 2.5, 0.5, 0], [0, 0, 0.5, 1.0, 0.5], [0, 0, 0, 0, 0]] }
+parameters = { open = { schedule = [[0, 1.0], [15, 0.5]], between = "step" } }
+
+[solver]
+method = "rk4"
+step = 0.25
+report_every = 1
+"""
+
+
+@pytest.fixture(scope="module")
+def five_groups(tmp_path_factory, cache):
+    path = tmp_path_factory.mktemp("five") / "five.toml"
+    path.write_text(textwrap.dedent(FIVE_GROUPS))
+    scenario = load_scenario(str(path))
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
+    designs = [make_design(scenario, variant, model, np.arange(scenario.member_count))
+               for variant, model in zip(scenario.variants, models)]
+    return scenario, models, designs
+
+
+def test_grouped_rates_are_one_tree_per_flow(five_groups):
+    """Every flow's five elements are one family whose tree, read at each group, is the
+    group's own rate (checked by expansion when the family is found); the matrix products
+    and the sums over groups are kept whole, so the kernel loops over groups and entries
+    and its text depends neither on the groups' rows nor on the matrices' values: the
+    variant with other matrices (another pattern of zeros in ``work``) and another
+    schedule has the same kernel text, and a chunk's size does not enter it."""
+    scenario, models, _ = five_groups
+    grouped = grouped_rates(models[0])
+    assert grouped.singles == () and len(grouped.families) == 5
+    infection = grouped.families[0].template
+    nodes = structured_nodes(infection)
+    assert {type(node) for node in nodes} == {Contract, GroupTotal}
+    assert sum(isinstance(node, Contract) for node in nodes) == 2
+    for model in models:
+        g = model.n_groups
+        for family in grouped_rates(model).families:
+            for group in range(g):
+                assert expand(family.template, group, g) == model.rates[family.first + group]
+    for method in METHODS.values():
+        texts = {KernelSource(model, method).text for model in models}
+        assert len(texts) == 1, method.name
+    form = KernelForm(models[0], METHODS["rk4"])
+    assert form.shape == "banded" and form.singles == ()
+    assert KernelForm(models[0], METHODS["backward-euler"]).shape == "staged"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("method", list(METHODS))
+def test_grouped_kernels_match_numpy_reference(five_groups, method):
+    """Both variants of the five-group model, every method: the kernels that loop over
+    groups and over the matrices' entries give the numpy stepper's numbers to 1e-12
+    relative, and the same status bits."""
+    scenario, models, designs = five_groups
+    for model, design in zip(models, designs):
+        reference = _run(integrate_fixed, scenario, model, design, method)
+        compiled = _run(integrate_fixed_compiled, scenario, model, design, method)
+        np.testing.assert_allclose(compiled.state, reference.state, rtol=1e-12, atol=0)
+        np.testing.assert_allclose(compiled.flow_count, reference.flow_count, rtol=1e-12,
+                                   atol=0)
+        np.testing.assert_array_equal(compiled.status, reference.status)
+        assert np.isfinite(compiled.state).all()
+        assert (compiled.state[:, 4 * 5 - 5:, -1] > 0).any()
+
+
+@pytest.mark.parametrize("method", ["rk4", "trapezoid"])
+def test_grouped_member_gets_same_bits_in_any_chunk_and_thread_count(five_groups, method):
+    """Determinism (the project's reference): a member of the five-group model gets the
+    same bits whatever its chunk, its lane in the block and the padding, and whatever the
+    number of kernel threads."""
+    scenario, models, designs = five_groups
+    model, design = models[1], designs[1]
+    threads = kernel_threads()
+    set_kernel_threads(2)
+    whole = _run(integrate_fixed_compiled, scenario, model, design, method)
+    set_kernel_threads(1)
+    try:
+        for start, stop in [(0, 1), (3, 11), (7, 20)]:
+            rows = np.arange(start, stop)
+            part = dataclasses.replace(
+                design, member_index=design.member_index[rows],
+                parameters=design.parameters[:, rows], initial=design.initial[:, rows],
+                invalid_start=design.invalid_start[rows],
+                schedule_values=tuple(v[:, rows] for v in design.schedule_values))
+            alone = _run(integrate_fixed_compiled, scenario, model, part, method)
+            assert np.array_equal(alone.state, whole.state[rows])
+            assert np.array_equal(alone.flow_count[:, :, 1:], whole.flow_count[rows, :, 1:])
+    finally:
+        set_kernel_threads(threads)
+
+
+# Illustrative model, invented numbers: three age groups with ageing between them (a flow
+# whose rate is a matrix) and an Erlang latent period (stages).
+AGEING = """
+[scenario]
+name = "ageing"
+days = 20
+members = 12
+seed = 8
+
+[model]
+compartments = ["S", "E", "I", "R"]
+groups = ["young", "middle", "old"]
+population = [3000, 4000, 2000]
+stages = { E = 2 }
+initial = { S = "rest", I = [2, 1, 1] }
+
+[model.matrices]
+contacts = [[3.0, 1.0, 0.5], [1.0, 2.0, 0.8], [0.5, 0.8, 1.5]]
+ageing = [[0, 0.02, 0], [0, 0, 0.01], [0, 0, 0]]
+
+[[model.flows]]
+name = "infection"
+from = "S"
+to = "E"
+rate = "beta * S * (contacts @ (I / N))"
+
+[[model.flows]]
+name = "onset"
+from = "E"
+to = "I"
+rate = "E / latent_days"
+
+[[model.flows]]
+name = "recovery"
+from = "I"
+to = "R"
+rate = "I / 5"
+
+[[model.flows]]
+name = "ageing"
+from = "S"
+to = "S"
+rate = "diag(S) @ ageing"
+
+[parameters]
+beta = { dist = "uniform", low = 0.03, high = 0.06 }
+latent_days = { dist = "uniform", low = 2.0, high = 4.0 }
+
+[solver]
+method = "rk4"
+step = 0.25
+"""
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("method", ["rk4", "backward-euler"])
+def test_single_elements_match_numpy_reference(tmp_path, cache, method):
+    """Flow elements that belong to no family (ageing, a flow between groups) are written
+    out one by one next to the families (the step through arrays): the numbers of the
+    numpy stepper to 1e-12 relative, with stages in the latent period."""
+    scenario, model, design = _load(tmp_path, AGEING, "ageing")
+    form = KernelForm(model, METHODS[method])
+    assert form.singles and form.families and form.shape == "staged"
+    reference = _run(integrate_fixed, scenario, model, design, method)
+    compiled = _run(integrate_fixed_compiled, scenario, model, design, method)
+    np.testing.assert_allclose(compiled.state, reference.state, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(compiled.flow_count, reference.flow_count, rtol=1e-12, atol=0)
+    np.testing.assert_array_equal(compiled.status, reference.status)

@@ -101,21 +101,25 @@ class MatrixPlan:
 
     @classmethod
     def of(cls, node: Contract) -> MatrixPlan:
-        skeletons: dict[ScalarNode, int] = {}
-        row_start, column, entry_class, cuts = [0], [], [], []
+        """The plan of ``node``'s matrix; the skeletons are in a fixed order (of their
+        text), so matrices with the same kinds of entries have the same plan but for its
+        data, whichever entry comes first."""
+        row_start, column, shapes, cuts = [0], [], [], []
         for row in node.matrix.rows:
             for h, entry in enumerate(row):
                 if entry is None:
                     continue
                 shape, numbers, params, schedules = skeleton(entry)
-                entry_class.append(skeletons.setdefault(shape, len(skeletons)))
+                shapes.append(shape)
                 column.append(h)
                 cuts.append((numbers, params, schedules))
             row_start.append(len(column))
+        skeletons = sorted(set(shapes), key=repr)
+        number = {shape: k for k, shape in enumerate(skeletons)}
         tables = [_table([cut[kind] for cut in cuts], dtype)
                   for kind, dtype in enumerate((np.float64, np.int64, np.int64))]
         return cls(tuple(skeletons), np.array(row_start, np.int64), np.array(column, np.int64),
-                   np.array(entry_class, np.int64), *tables)
+                   np.array([number[shape] for shape in shapes], np.int64), *tables)
 
     @property
     def arrays(self) -> tuple[np.ndarray, ...]:

@@ -83,15 +83,16 @@ class ThetaStep(StepCode):
                  f"{indent}time = (step + 1) * h"]
         if self.form.model.schedule_slots:
             lines += [f"{indent}for index in range(2):",
-                      f"{inner}schedule_values(sv, index, step, t if index == 0 else time, "
-                      "knot_steps, knot_days, slot_knots, slot_linear, knot_values, m0, "
-                      "width)"]
+                      f"{inner}at = t if index == 0 else time",
+                      f"{inner}schedule_values(sv, index, step, at, knot_steps, knot_days, "
+                      "slot_knots, slot_linear, knot_values, m0, width)"]
         lines += [f"{indent}iteration = 0",
                   f"{indent}finishing = newton_max_iter == 0",
                   f"{indent}for phase in range(newton_max_iter + 2):",
                   f"{inner}row = 0 if phase == 0 else 1",
                   f"{inner}source = y if phase == 0 else y1",
-                  rates.call(inner, "source", "row", "t if phase == 0 else time", "row"),
+                  f"{inner}at = t if phase == 0 else time",
+                  rates.call(inner, "source", "row", "at", "row"),
                   f"{inner}if phase == 0:",
                   f"{deep}for e in range(n_elements):",
                   f"{deep}    for b in range(width):",
