@@ -10,14 +10,15 @@ or a full disk give the estimate a stand-in for psutil's and shutil's answers.
 
 from __future__ import annotations
 
-import shutil
 from collections import namedtuple
 from pathlib import Path
 
 import pytest
 
+import xarray as xr
+
 from ensemble import api
-from ensemble.errors import InputError
+from ensemble.errors import InputError, ScenarioError
 from ensemble.run import feasibility
 from ensemble.run.feasibility import estimate
 from support import run_cli, write_scenario
@@ -102,3 +103,15 @@ def test_a_large_feasible_run_gets_advice(tmp_path: Path, monkeypatch: pytest.Mo
     assert "--cluster NAME" in text and "keep_members = false" in text
     small = api.check_report(api.load_scenario(write_scenario(tmp_path, members=4)))
     assert "--cluster NAME" not in small and "keep_members = false" not in small
+
+
+def test_the_largest_seed_is_written_and_a_larger_one_refused(tmp_path: Path) -> None:
+    """The file stores the seed as a 64-bit signed integer: 2^63 - 1 runs end to end
+    and is stored; 2^63 is refused when the scenario is read, before any work."""
+    scenario = api.load_scenario(write_scenario(tmp_path, members=2), seed=2 ** 63 - 1)
+    result = api.run(scenario, output=tmp_path / "result.nc", workers=0, backend="numpy",
+                     progress=False)
+    with xr.open_dataset(result) as written:
+        assert int(written.attrs["seed"]) == 2 ** 63 - 1
+    with pytest.raises(ScenarioError, match="scenario.seed"):
+        api.load_scenario(write_scenario(tmp_path, members=2), seed=2 ** 63)
