@@ -353,7 +353,8 @@ def score(result: str | os.PathLike[str], observed: str | os.PathLike[str], *,
 def fit(scenario: Scenario | str | os.PathLike[str], *,
         output: str | os.PathLike[str] | None = None, particles: int = 2000,
         seed: int | None = None, backend: str | None = None, chunk: int | None = None,
-        force: bool = False, resume: bool = False, report=None) -> Path:
+        force: bool = False, resume: bool = False, workers: int | None = None,
+        report=None) -> Path:
     """Condition the scenario's ensemble on its ``[[observations]]`` by tempered
     sequential Monte Carlo and write a result file whose members are the posterior
     (equally weighted, with their log-likelihoods), projected for every variant.
@@ -369,6 +370,8 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     force : replace an existing result file.
     resume : go on from the state an interrupted fit kept after its last round (in
         ``<output>.fit-partial``); the file is the same, bit for bit.
+    workers : threads integrating the chunks of each round's likelihood at once
+        (default ``compute.workers``, else 1); the file is the same, bit for bit.
     report : called after each round with its number and its
         :class:`ensemble.fit.smc.Round` (temperature, effective size, acceptance).
 
@@ -395,7 +398,7 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
                                seed=scenario.seed if seed is None else seed)
     fit_and_write(scenario, target, settings, backend=backend or DEFAULT_BACKEND,
                   chunk=chunk or scenario.compute.chunk or 1000, resume=resume,
-                  report=report)
+                  workers=workers or scenario.compute.workers or 1, report=report)
     return target
 
 

@@ -302,6 +302,9 @@ def fit(
     force: Force = False,
     resume: Annotated[bool, typer.Option(
         "--resume", help="Go on from the last round an interrupted fit kept.")] = False,
+    workers: Annotated[Optional[int], typer.Option(
+        "--workers", min=1, help="Threads integrating the chunks of each round at once "
+                                 "(default: compute.workers, else 1).")] = None,
 ) -> None:
     """Fit SCENARIO's drawn parameters to its [[observations]] by tempered sequential
     Monte Carlo and write the posterior members, projected for every variant."""
@@ -316,7 +319,7 @@ def fit(
         loaded = api.load_scenario(scenario, settings=settings or [])
         path = api.fit(loaded, output=output, particles=particles, seed=seed,
                        backend=backend.value if backend else None, chunk=chunk,
-                       force=force, resume=resume, report=report)
+                       force=force, resume=resume, workers=workers, report=report)
     typer.echo(f"result: {path} ({particles} posterior members per variant)")
     typer.echo(api.fit_summary(loaded, path), nl=False)
 

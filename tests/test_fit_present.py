@@ -118,3 +118,42 @@ def test_summary_of_a_fit_gives_prior_and_posterior_quantiles(fitted):
     assert lines[-1].startswith("Model projections")      # the caution stays last
     # with --only the table is left out, as every row not asked for
     assert "parameters fitted" not in api.summarize(fitted / "fitted.nc", only=["cases"])
+
+
+def test_threads_and_a_resumed_projection_give_the_same_file(fitted, tmp_path,
+                                                              monkeypatch):
+    import xarray as xr
+
+    import ensemble.fit.result as fit_result
+
+    arguments = dict(particles=60, backend="numpy", chunk=20)
+    threaded = api.fit(fitted / "fitted.toml", output=tmp_path / "threaded.nc", workers=2,
+                       **arguments)
+    projected = fit_result.posterior_chunk
+    calls: list[tuple[int, int, int]] = []
+
+    def stopping_after_two(problem, z, key):
+        if len(calls) == 2 and not resumed:
+            raise KeyboardInterrupt     # stands for a kill while the projection runs
+        calls.append(key)
+        return projected(problem, z, key)
+
+    monkeypatch.setattr(fit_result, "posterior_chunk", stopping_after_two)
+    resumed = False
+    target = tmp_path / "resumed.nc"
+    with pytest.raises(KeyboardInterrupt):
+        api.fit(fitted / "fitted.toml", output=target, **arguments)
+    assert not target.exists()
+    saved, calls[:] = list(calls), []
+    resumed = True
+    api.fit(fitted / "fitted.toml", output=target, resume=True, **arguments)
+    # two variants of three chunks each: the two saved before the stop are not redone
+    assert len(saved) == 2 and set(saved).isdisjoint(calls[:4]) and len(calls) >= 4
+    assert not (tmp_path / "resumed.nc.fit-partial").exists()
+    with xr.open_dataset(fitted / "fitted.nc", decode_times=False) as whole, \
+            xr.open_dataset(threaded, decode_times=False) as by_threads, \
+            xr.open_dataset(target, decode_times=False) as again:
+        for name in whole.variables:
+            for other in (by_threads, again):
+                np.testing.assert_array_equal(other[name].values, whole[name].values,
+                                              err_msg=name)

@@ -4,13 +4,18 @@ chunks, and their measures are compared with the ``[[observations]]``.
 
 The fit uses the first variant (observations describe what already happened, before
 the variants part); the posterior members are then projected for every variant
-(``ensemble fit`` in the README).
+(``ensemble fit`` in the README), a chunk at a time (:func:`posterior_chunk`), so that
+the caller can save each chunk into a run's work journal instead of holding them all.
+With ``workers``, the chunks of a round's likelihood are integrated by that many threads;
+each chunk's numbers are those of one thread, so the log-likelihoods keep their bits.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from scipy import special
@@ -38,16 +43,18 @@ class FitProblem:
         drawn parameter.
     backend : the integration backend (``"numpy"`` or ``"compiled"``).
     chunk : members integrated at once (bounds memory; changes no number).
+    workers : threads integrating the chunks of a round at once (1: this thread).
 
     Raises
     ------
     ScenarioError : no observations, nothing drawn, or an observed measure per group.
     """
 
-    def __init__(self, scenario: Scenario, backend: str, chunk: int):
+    def __init__(self, scenario: Scenario, backend: str, chunk: int, workers: int = 1):
         self.scenario = scenario
         self.backend = backend
         self.chunk = chunk
+        self.workers = max(1, int(workers))
         self.series = scenario_observations(scenario)
         file = scenario.source.path
         if not self.series:
@@ -96,17 +103,35 @@ class FitProblem:
         """(particles,) the log-likelihood of every observed series for each particle of
         the first variant; minus infinity for a member with any status bit."""
         total = np.zeros(z.shape[1])
-        for part, design in self.designs(z, 0):
-            result = self.integrate(design, 0)
-            trajectories = {"state": result.state, "flow_count": result.flow_count}
-            for series, shape, where in zip(self.series, self._shapes, self._where):
-                values = measure_series(self.layout, shape, trajectories)[:, 0, where]
-                total[part] += series_log_likelihood(
-                    series.counts, values.T, series.distribution,
-                    _per_member(series.reporting, design),
-                    _per_member(series.dispersion, design))
-            total[part] = np.where(result.status != 0, -np.inf, total[part])
+        parts = self.designs(z, 0)
+        if self.workers == 1:
+            for part, design in parts:
+                total[part] = self._chunk_log_likelihood(design)
+            return total
+        with ThreadPoolExecutor(self.workers, "ensemble-fit") as pool:
+            running = [(part, pool.submit(self._chunk_log_likelihood, design, True))
+                       for part, design in parts]
+            for part, future in running:
+                total[part] = future.result()
         return total
+
+    def _chunk_log_likelihood(self, design: Design, one_thread: bool = False) -> np.ndarray:
+        """The log-likelihood of ``design``'s members (first variant); with
+        ``one_thread`` the compiled kernels stay in the calling thread (a worker)."""
+        if one_thread and self.backend == "compiled":
+            from ensemble.integrate.kernels.launch import set_kernel_threads
+
+            set_kernel_threads(1)
+        result = self.integrate(design, 0)
+        trajectories = {"state": result.state, "flow_count": result.flow_count}
+        total = np.zeros(result.status.shape[0])
+        for series, shape, where in zip(self.series, self._shapes, self._where):
+            values = measure_series(self.layout, shape, trajectories)[:, 0, where]
+            total += series_log_likelihood(
+                series.counts, values.T, series.distribution,
+                _per_member(series.reporting, design),
+                _per_member(series.dispersion, design))
+        return np.where(result.status != 0, -np.inf, total)
 
 
 def _per_member(value: float | str | None, design: Design) -> np.ndarray | float | None:
@@ -114,19 +139,34 @@ def _per_member(value: float | str | None, design: Design) -> np.ndarray | float
     return design.reported[value] if isinstance(value, str) else value
 
 
-def posterior_chunks(problem: FitProblem, z: np.ndarray
-                     ) -> tuple[ResultLayout, list[tuple[ChunkKey, ChunkResult, dict]]]:
-    """The posterior members ``z`` projected for every variant: the result's layout (the
-    scenario with as many members as particles) and every chunk, as a run's."""
+def posterior_layout(problem: FitProblem, z: np.ndarray) -> ResultLayout:
+    """The layout of the result of the posterior members ``z``: the scenario with as many
+    members as particles; its fingerprint follows from the run's and the particles' bits
+    (so that a journal of another posterior is never taken for this one's)."""
     scenario = dataclasses.replace(problem.scenario, member_count=z.shape[1])
-    layout = result_layout(scenario, problem.models, fingerprint(scenario, problem.backend),
-                           history="ensemble fit")
-    chunks = []
-    for variant in range(len(scenario.variants)):
-        for part, design in problem.designs(z, variant):
-            result = problem.integrate(design, variant)
-            members = np.arange(part.start, part.stop, dtype=np.int64)
-            result = dataclasses.replace(result, members=members)
-            chunks.append(((variant, part.start, part.stop), result, dict(design.reported)))
-    return layout, chunks
+    digest = hashlib.sha256(fingerprint(scenario, problem.backend).encode())
+    digest.update(np.ascontiguousarray(z, dtype=np.float64).tobytes())
+    return result_layout(scenario, problem.models, digest.hexdigest(),
+                         history="ensemble fit")
+
+
+def posterior_keys(problem: FitProblem, particles: int) -> list[ChunkKey]:
+    """The chunks of the projection of ``particles`` members, for every variant."""
+    return [(variant, begin, min(begin + problem.chunk, particles))
+            for variant in range(len(problem.scenario.variants))
+            for begin in range(0, particles, problem.chunk)]
+
+
+def posterior_chunk(problem: FitProblem, z: np.ndarray, key: ChunkKey
+                    ) -> tuple[ChunkResult, dict[str, np.ndarray]]:
+    """The chunk ``key`` (variant, first, end) of the posterior members ``z`` projected:
+    its result (members numbered as particles) and its members' reported values."""
+    variant, first, end = key
+    uniform = special.ndtr(z[:, first:end])
+    draws = {column: uniform[j] for j, column in enumerate(problem.columns)}
+    design = design_from_uniforms(problem.scenario, problem.scenario.variants[variant],
+                                  problem.models[variant], draws)
+    result = problem.integrate(design, variant)
+    members = np.arange(first, end, dtype=np.int64)
+    return dataclasses.replace(result, members=members), dict(design.reported)
 

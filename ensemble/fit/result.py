@@ -6,60 +6,86 @@ The file is a result file as ``ensemble run`` writes it (the same variables, rea
 ``summary``, ``score`` and ``open_result``), with ``member`` the equally weighted
 posterior particles, plus each member's log-likelihood and the rounds of the fit
 (``ensemble/scenario/reference.md``, the result of a fit).
+
+The posterior members are projected as a run's chunks are: each chunk is saved into a
+work journal (:class:`ensemble.run.journal.WorkJournal`, in
+``<output>.fit-partial/projection.nc.partial``) as soon as it is integrated, and the
+file is written from the saved chunks by the run's finish, block by block, so that
+memory does not grow with members times reported times; a resumed fit keeps the chunks
+already saved.  The fit's own variables are then added to that file, which is moved to
+``output`` last.
 """
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
-from ensemble.durable import replace_atomically
+from ensemble.durable import fsync_directory
 from ensemble.fit.checkpoint import load_state, partial_directory, remove_state, save_state
-from ensemble.fit.engine import FitProblem, posterior_chunks
+from ensemble.fit.engine import FitProblem, posterior_chunk, posterior_keys, posterior_layout
 from ensemble.fit.parameters_text import prior_variables
 from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
-from ensemble.output.dataset import encoding, time_attrs
-from ensemble.output.finish import Finisher
-from ensemble.output.result_file import UNFINISHED_SUFFIX
-from ensemble.output.sources import MembersInMemory
-from ensemble.output.writer import result_dataset
+from ensemble.output.dataset import time_attrs
+from ensemble.run.journal import Checkpoints, WorkJournal
 from ensemble.scenario.schema import Scenario
+
+PROJECTION = "projection.nc"
+"""The projection's file in the fit's directory until the fit's variables are added."""
 
 
 def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *,
-                  backend: str, chunk: int, resume: bool = False,
+                  backend: str, chunk: int, resume: bool = False, workers: int = 1,
                   report: Callable[[int, Round], None] | None = None) -> Posterior:
     """Fit ``scenario`` to its observations and write the posterior's result to
     ``output`` (whole or not at all), keeping the sampler's state after every round in
-    ``<output>.fit-partial``; with ``resume``, go on from the state kept there."""
-    problem = FitProblem(scenario, backend, chunk)
+    ``<output>.fit-partial``; with ``resume``, go on from the state kept there (and from
+    the projection's chunks saved there).  ``workers`` threads integrate the chunks of
+    each round's likelihood."""
+    problem = FitProblem(scenario, backend, chunk, workers)
     key = f"{problem.layout.fingerprint} {settings}"
     directory = partial_directory(output)
     kept = load_state(directory, key) if resume else None
     posterior = tempered_smc(problem.log_likelihood, problem.dimension, settings, report,
                              checkpoint=lambda state: save_state(directory, key, state),
                              resume_from=kept)
-    layout, chunks = posterior_chunks(problem, posterior.z)
-    dataset = result_dataset(Finisher(layout, MembersInMemory(layout, chunks)))
-    stored = encoding(layout, dataset)
-    dataset = with_fit_variables(dataset, posterior, problem)
-    replace_atomically(output, lambda target: dataset.to_netcdf(
-        target, format="NETCDF4", engine="netcdf4", encoding=stored),
-        suffix=UNFINISHED_SUFFIX)
+    projection = project_posterior(problem, posterior.z, directory / PROJECTION, resume)
+    fit_variables(posterior, problem).to_netcdf(projection, mode="a", engine="netcdf4")
+    os.replace(projection, output)
+    fsync_directory(output.parent)
     remove_state(directory)
     return posterior
 
 
-def with_fit_variables(dataset: xr.Dataset, posterior: Posterior,
-                       problem: FitProblem) -> xr.Dataset:
-    """``dataset`` with each member's log-likelihood, the rounds of the fit, the
-    observations it saw and the prior quantiles of the parameters it drew."""
+def project_posterior(problem: FitProblem, z: np.ndarray, path: Path,
+                      resume: bool) -> Path:
+    """Write the result of the posterior members ``z`` projected for every variant to
+    ``path``, through a run's work journal (its chunks kept for a resume)."""
+    journal = WorkJournal.open(path, posterior_layout(problem, z), resume=resume,
+                               force=True)
+    try:
+        planned = posterior_keys(problem, z.shape[1])
+        with Checkpoints(journal) as checkpoints:
+            for key in journal.pending(planned):
+                result, reported = posterior_chunk(problem, z, key)
+                journal.save(key, result, reported, candidates=True)
+                checkpoints.add(key)
+    except BaseException:
+        journal.close()
+        raise
+    return journal.finish(lambda key: posterior_chunk(problem, z, key)[0])
+
+
+def fit_variables(posterior: Posterior, problem: FitProblem) -> xr.Dataset:
+    """Each member's log-likelihood, the rounds of the fit, the observations it saw and
+    the prior quantiles of the parameters it drew, as variables added to its result."""
     rounds = posterior.rounds
     last = max((series.last_time for series in problem.series), default=np.nan)
-    return dataset.assign(
+    return xr.Dataset(dict(
         **observation_variables(problem), **prior_variables(problem.scenario),
         log_likelihood=xr.DataArray(
             posterior.log_likelihood, dims=("member",),
@@ -75,7 +101,7 @@ def with_fit_variables(dataset: xr.Dataset, posterior: Posterior,
         fit_acceptance=xr.DataArray(
             np.array([r.acceptance for r in rounds]), dims=("fit_round",),
             attrs={"long_name": "share of moves accepted in each round", "units": "1"}),
-    ).assign_attrs(fit_log_evidence=posterior.log_evidence,
+    )).assign_attrs(fit_log_evidence=posterior.log_evidence,
                    fit_last_observed_day=last,
                    fit_observations=", ".join(f"{s.measure} from {Path(s.file).name}"
                                               for s in problem.series))
