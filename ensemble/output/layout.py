@@ -16,7 +16,8 @@ import numpy as np
 
 from ensemble.about import PROGRAM, VERSION
 from ensemble.output.variables import TrajectoryVariable
-from ensemble.scenario.schema import Fixed, GroupDraws, ParameterForm, Scenario, is_drawn
+from ensemble.scenario.schema import (Derived, Fixed, GroupDraws, Parameter, Scenario,
+                                      is_drawn)
 
 
 @dataclass(frozen=True)
@@ -27,9 +28,9 @@ class ParameterInfo:
     ----------
     shape : ``"scalar"`` -> (variant, member); ``"vector"`` -> (variant, member, group).
     units, description : as given in the scenario file (None where absent).
-    constant : the same for every member of a variant (given as a number or a number
-        per group in every variant), so stored once per variant, without the member
-        dimension.
+    constant : the same for every member of a variant (in every variant given as a
+        number or a number per group, or derived from such parameters and the model's
+        matrices alone), so stored once per variant, without the member dimension.
     """
 
     shape: Literal["scalar", "vector"]
@@ -155,7 +156,8 @@ class ResultLayout:
                 continue
             units = next((p.units for p in defined if p.units), None)
             description = next((p.description for p in defined if p.description), None)
-            constant = all(_given(p.form) for p in defined)
+            constant = all(_given(name, merged, set(scenario.variant_matrices(variant)))
+                           for merged, variant in zip(per_variant, scenario.variants))
             parameters[name] = ParameterInfo(shapes.pop(), units, description, constant)
         times = np.array([float(t) for t in scenario.report_times()], dtype=np.float64)
         return cls(scenario=scenario,
@@ -167,7 +169,17 @@ class ResultLayout:
                    fingerprint=fingerprint, history=history)
 
 
-def _given(form: ParameterForm) -> bool:
-    """Whether a parameter of form ``form`` is given as numbers, the same for every
-    member: a number, or a number per group."""
-    return isinstance(form, Fixed) or (isinstance(form, GroupDraws) and not is_drawn(form))
+def _given(name: str, parameters: Mapping[str, Parameter], matrices: Collection[str],
+           seen: frozenset[str] = frozenset()) -> bool:
+    """Whether parameter ``name`` of a variant (its ``parameters``, with the model's
+    ``matrices``) is the same for every member: a number, a number per group, or derived
+    from such parameters and the matrices alone."""
+    form = parameters[name].form
+    if isinstance(form, Fixed):
+        return True
+    if isinstance(form, GroupDraws):
+        return not is_drawn(form)
+    if not isinstance(form, Derived) or name in seen:
+        return False
+    return all(used in matrices or (used in parameters and _given(
+        used, parameters, matrices, seen | {name})) for used in form.expression.names)
