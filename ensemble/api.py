@@ -370,8 +370,8 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     force : replace an existing result file.
     resume : go on from the state an interrupted fit kept after its last round (in
         ``<output>.fit-partial``); the file is the same, bit for bit.
-    workers : threads integrating the chunks of each round's likelihood at once
-        (default ``compute.workers``, else 1); the file is the same, bit for bit.
+    workers : threads integrating the chunks of each round's likelihood, and of the
+        projection, at once (default ``compute.workers``, else 1); the file is the same, bit for bit.
     report : called after each round with its number and its
         :class:`ensemble.fit.smc.Round` (temperature, effective size, acceptance).
 

@@ -303,7 +303,8 @@ def fit(
     resume: Annotated[bool, typer.Option(
         "--resume", help="Go on from the last round an interrupted fit kept.")] = False,
     workers: Annotated[Optional[int], typer.Option(
-        "--workers", min=1, help="Threads integrating the chunks of each round at once "
+        "--workers", min=1, help="Threads integrating the chunks of each round (and of "
+                                 "the projection) at once "
                                  "(default: compute.workers, else 1).")] = None,
 ) -> None:
     """Fit SCENARIO's drawn parameters to its [[observations]] by tempered sequential

@@ -94,6 +94,14 @@ class FitProblem:
             yield part, design_from_uniforms(self.scenario, self.scenario.variants[variant],
                                              self.models[variant], draws)
 
+    def keep_kernels_in_this_thread(self) -> None:
+        """Run the compiled kernels of this thread in it alone (a worker thread, whose
+        siblings use the other cores)."""
+        if self.backend == "compiled":
+            from ensemble.integrate.kernels.launch import set_kernel_threads
+
+            set_kernel_threads(1)
+
     def integrate(self, design: Design, variant: int) -> ChunkResult:
         """The chunk of ``design``'s members, as a run integrates it."""
         return integrate_chunk(self.models[variant], design, self.scenario.solver,
@@ -118,10 +126,8 @@ class FitProblem:
     def _chunk_log_likelihood(self, design: Design, one_thread: bool = False) -> np.ndarray:
         """The log-likelihood of ``design``'s members (first variant); with
         ``one_thread`` the compiled kernels stay in the calling thread (a worker)."""
-        if one_thread and self.backend == "compiled":
-            from ensemble.integrate.kernels.launch import set_kernel_threads
-
-            set_kernel_threads(1)
+        if one_thread:
+            self.keep_kernels_in_this_thread()
         result = self.integrate(design, 0)
         trajectories = {"state": result.state, "flow_count": result.flow_count}
         total = np.zeros(result.status.shape[0])

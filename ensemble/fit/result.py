@@ -19,7 +19,8 @@ already saved.  The fit's own variables are then added to that file, which is mo
 from __future__ import annotations
 
 import os
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -31,6 +32,7 @@ from ensemble.fit.engine import FitProblem, posterior_chunk, posterior_keys, pos
 from ensemble.fit.parameters_text import prior_variables
 from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
 from ensemble.output.dataset import time_attrs
+from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.journal import Checkpoints, WorkJournal
 from ensemble.scenario.schema import Scenario
 
@@ -45,7 +47,7 @@ def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *
     ``output`` (whole or not at all), keeping the sampler's state after every round in
     ``<output>.fit-partial``; with ``resume``, go on from the state kept there (and from
     the projection's chunks saved there).  ``workers`` threads integrate the chunks of
-    each round's likelihood."""
+    each round's likelihood and of the projection."""
     problem = FitProblem(scenario, backend, chunk, workers)
     key = f"{problem.layout.fingerprint} {settings}"
     directory = partial_directory(output)
@@ -68,16 +70,35 @@ def project_posterior(problem: FitProblem, z: np.ndarray, path: Path,
     journal = WorkJournal.open(path, posterior_layout(problem, z), resume=resume,
                                force=True)
     try:
-        planned = posterior_keys(problem, z.shape[1])
+        pending = journal.pending(posterior_keys(problem, z.shape[1]))
         with Checkpoints(journal) as checkpoints:
-            for key in journal.pending(planned):
-                result, reported = posterior_chunk(problem, z, key)
+            for key, (result, reported) in _projected(problem, z, pending):
                 journal.save(key, result, reported, candidates=True)
                 checkpoints.add(key)
     except BaseException:
         journal.close()
         raise
     return journal.finish(lambda key: posterior_chunk(problem, z, key)[0])
+
+
+def _projected(problem: FitProblem, z: np.ndarray, keys: list[ChunkKey]
+               ) -> Iterator[tuple[ChunkKey, tuple[ChunkResult, dict[str, np.ndarray]]]]:
+    """Each chunk of ``keys`` projected, in order: in this thread, or by the problem's
+    worker threads ``workers`` chunks at a time (so that at most that many wait to be
+    saved)."""
+    if problem.workers == 1:
+        for key in keys:
+            yield key, posterior_chunk(problem, z, key)
+        return
+
+    def in_worker(key: ChunkKey) -> tuple[ChunkResult, dict[str, np.ndarray]]:
+        problem.keep_kernels_in_this_thread()
+        return posterior_chunk(problem, z, key)
+
+    with ThreadPoolExecutor(problem.workers, "ensemble-fit") as pool:
+        for begin in range(0, len(keys), problem.workers):
+            batch = keys[begin:begin + problem.workers]
+            yield from zip(batch, pool.map(in_worker, batch))
 
 
 def fit_variables(posterior: Posterior, problem: FitProblem) -> xr.Dataset:
