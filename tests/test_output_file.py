@@ -231,7 +231,7 @@ def test_summary_command_prints_quantiles_and_status_counts(dated):
             "step_check_failed 1, non_finite_value 1, impossible_drawn_start 1)") in text
     assert "variant fewer-contacts" in text
     assert "q0.05" in text and "q0.95" in text
-    assert "peak size" in text and "I[old]" in text and "flow total" in text
+    assert "compartment peak" in text and "I[old]" in text and "flow total" in text
     assert "non_finite_value 1" in text and "impossible_drawn_start 1" in text
     assert text.rstrip().endswith(ensemble.CAUTION)
 
