@@ -15,14 +15,14 @@ The modules, from the model to running a kernel:
   factors' pattern): one step of a block of members;
 - :mod:`.reports`: what is kept at each reported time (trajectories, or the step check's
   comparison);
-- :mod:`.scalars` and :mod:`.block_lu`: plain functions whose source is copied into the
-  kernels;
+- :mod:`.scalars`, :mod:`.reports` and :mod:`.block_lu`: plain functions the kernels
+  run, the model-independent ones compiled once for all kernels by :mod:`.shared`;
 - :mod:`.source`: the whole module text (:class:`~.source.KernelSource`);
 - :mod:`.cache`: kernel files on disk and the modules loaded from them
   (:class:`~.cache.KernelCache`);
 - :mod:`.launch`: buffers, padding, threads, and the backend's entry points
-  (``integrate_fixed_compiled``, ``step_error_compiled``), the only module that loads
-  numba.
+  (``integrate_fixed_compiled``, ``step_error_compiled``); with :mod:`.shared`, the only
+  modules that load numba.
 
 The methods come from :data:`ensemble.methods.METHODS` as data (a tableau or a theta), so a
 new method needs no code here.  The kernels must give the numbers of the numpy reference,

@@ -6,8 +6,8 @@ elimination with partial pivoting (Golub & Van Loan 2013, *Matrix Computations*,
 ed., sec. 3.4; section cited from memory), touching only the static pattern of its
 non-zeros and their fill-in (:mod:`.sparsity`) while no member needs a row interchange.
 
-These are plain Python functions: the tests run them as they are, and :mod:`.source`
-copies their text into the implicit methods' kernels under numba's ``njit``.
+These are plain Python functions: the tests run them as they are, and :mod:`.shared`
+compiles them once for the implicit methods' kernels.
 """
 
 from __future__ import annotations

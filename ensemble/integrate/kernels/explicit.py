@@ -62,9 +62,6 @@ def combine(rates, weight_start, weight_column, weight_value, row, h, out, width
 class ExplicitStep(StepCode):
     """Kernel code of one step of an explicit method (a Butcher tableau)."""
 
-    def support(self):
-        return [combine] if self.form.shape == "staged" else []
-
     def functions(self) -> list[str]:
         """The sums over groups of a banded step."""
         return self.rates.sums_function() if self.form.shape == "banded" else []

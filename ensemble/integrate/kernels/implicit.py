@@ -15,11 +15,9 @@ rates is a few loops over arrays (:mod:`.rates`).  Any theta of
 
 from __future__ import annotations
 
-from collections.abc import Callable
 
 import numpy as np
 
-from ensemble.integrate.kernels.block_lu import factor_block, factor_pivoting, solve_factored
 from ensemble.integrate.kernels.explicit import MOVES, finish
 from ensemble.integrate.kernels.expressions import literal
 from ensemble.integrate.kernels.newton_matrix import NewtonMatrixPlan
@@ -37,10 +35,6 @@ class ThetaStep(StepCode):
     def __init__(self, rates: RateCode):
         super().__init__(rates)
         self.plan = NewtonMatrixPlan(rates)
-
-    def support(self) -> list[Callable]:
-        """The block LU."""
-        return [factor_pivoting, factor_block, solve_factored]
 
     def data_arguments(self) -> list[str]:
         return ["place", *PATTERN.split(", ")]

@@ -1,13 +1,12 @@
-"""Plain functions whose source is copied into every kernel.
+"""Plain functions the kernels run; the tests can run them as they are.
 
-They are plain Python, so the tests can run them as they are; :mod:`.source` copies their
-text into the kernel module under numba's ``njit``.  The first three give the operations
-``min``, ``max`` and ``sign`` of :mod:`ensemble.model.ir` numpy's NaN rules
-(:data:`ensemble.model.ir.OPERATION_MEANINGS`) and are inlined where they are called; the
-others work between a kernel's loops over members, on data rather than on the model's
-trees: the schedule values in force (the rules of the numpy reference,
-:mod:`ensemble.integrate.reference`, "Schedules"), the state update ``y (+) S inc``, and
-the members that stopped being finite.
+The first three give the operations ``min``, ``max`` and ``sign`` of
+:mod:`ensemble.model.ir` numpy's NaN rules (:data:`ensemble.model.ir.OPERATION_MEANINGS`);
+:mod:`.source` copies their text into every kernel, where they are inlined.  The others
+work between a kernel's loops over members, on data rather than on the model's trees, and
+are compiled once for all kernels (:mod:`.shared`): the schedule values in force (the
+rules of the numpy reference, :mod:`ensemble.integrate.reference`, "Schedules"), the
+state update ``y (+) S inc``, and the members that stopped being finite.
 """
 
 from __future__ import annotations
@@ -18,8 +17,8 @@ INLINED = "@njit(inline='always', error_model='numpy')"
 """The decorator of the scalar operations: inlined where they are called."""
 
 COMPILED = "@njit(error_model='numpy', boundscheck=False)"
-"""The decorator of every other function of a kernel: compiled on its own (numba's
-inlining of large functions costs more compile time than it saves, measured)."""
+"""The decorator of a kernel's generated functions: compiled on its own (numba's inlining
+of large functions costs more compile time than it saves, measured)."""
 
 
 def _min(a, b):
@@ -134,6 +133,3 @@ def mark_bad(state, flow_count, bad, check, width):
             if bad[b]:
                 flow_count[e, b] = math.nan
 
-
-STEP_HELPERS = (schedule_values, apply_moves, mark_bad)
-"""Functions every kernel calls between its loops over members."""

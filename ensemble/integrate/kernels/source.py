@@ -32,8 +32,8 @@ from ensemble.integrate.kernels.explicit import ExplicitStep
 from ensemble.integrate.kernels.form import KernelForm
 from ensemble.integrate.kernels.implicit import ThetaStep
 from ensemble.integrate.kernels.rates import RateCode
-from ensemble.integrate.kernels.reports import first_report, report
-from ensemble.integrate.kernels.scalars import COMPILED, INLINED, OPERATION_HELPERS, STEP_HELPERS
+from ensemble.integrate.kernels import shared
+from ensemble.integrate.kernels.scalars import INLINED, OPERATION_HELPERS
 from ensemble.integrate.kernels.schedules import ARGUMENTS as SCHEDULE_ARGUMENTS
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
@@ -42,6 +42,10 @@ from ensemble.records import BELOW_NEGATIVE_ATOL, NEWTON_NOT_CONVERGED, NON_FINI
 GENERATOR_VERSION = 5
 """Bumped whenever the shape of the generated text changes meaning (part of the cache key
 through the text itself)."""
+
+REPORT_ARGUMENTS = ("compare, reference, atol, rtol, gain, state_out, flow_out, error_out, "
+                    "status, low")
+"""The trailing arguments of the calls of :mod:`.reports`."""
 
 TOUCH_ARGUMENTS = ("touch_start", "touch_element", "touch_sign")
 """The kernel's arguments saying which flow elements touch each state
@@ -87,7 +91,8 @@ class KernelSource:
                           "reference", "rtol", "gain", "error_out"])
 
     def _head(self) -> list[str]:
-        """Imports, constants, the copied functions the block calls, and the start of the
+        """Imports (the shared functions, :mod:`.shared`), constants, the scalar operations
+        and the generated functions the block calls, and the start of the
         block function."""
         form, method = self.form, self.method
         lines = [
@@ -96,9 +101,12 @@ class KernelSource:
             f"# Model: {form.n_states} states, {form.n_groups} groups, {form.n_elements} "
             f"flow elements ({len(form.families)} families, {len(form.singles)} single); "
             f"method: {method.name}.",
+            f"# Shared functions: {shared.DIGEST}.",
             "import math",
             "import numpy as np",
             "from numba import njit",
+            "",
+            f"from ensemble.integrate.kernels.shared import {', '.join(shared.NAMES)}",
             "",
             f"BLOCK = {self.block}",
             f"NON_FINITE = {NON_FINITE}",
@@ -106,8 +114,7 @@ class KernelSource:
             f"NEWTON_NOT_CONVERGED = {NEWTON_NOT_CONVERGED}",
             "",
         ]
-        lines += _copied([*OPERATION_HELPERS.values(), *STEP_HELPERS,
-                          *self._step.support()])
+        lines += _copied(list(OPERATION_HELPERS.values()))
         if form.shape == "staged":
             lines += self._rates.function()
         lines += self._step.functions()
@@ -127,7 +134,7 @@ class KernelSource:
                  "    low = np.empty(BLOCK, np.bool_)"]
         lines += self._rates.buffers()
         lines += self._step.buffers()
-        lines += first_report()
+        lines += [f"    first_report(y0, y, m0, width, {REPORT_ARGUMENTS})"]
         lines += ["    for k in range(1, n_reports):",
                   "        for e in range(n_elements):",
                   "            for b in range(width):",
@@ -135,14 +142,13 @@ class KernelSource:
                   "        for j in range(steps_per_report):",
                   "            step = (k - 1) * steps_per_report + j"]
         lines += self._step.lines(" " * 12)
-        lines += report(" " * 8)
+        lines += [f"        report(k, y, fc, bad, m0, width, {REPORT_ARGUMENTS})"]
         return lines
 
 
 def _copied(functions: list[Callable]) -> list[str]:
-    """The source of plain functions, under their numba decorator."""
+    """The source of the scalar operations, inlined where the rates call them."""
     lines: list[str] = []
     for function in functions:
-        decorator = INLINED if function in OPERATION_HELPERS.values() else COMPILED
-        lines += ["", decorator, inspect.getsource(function).rstrip(), ""]
+        lines += ["", INLINED, inspect.getsource(function).rstrip(), ""]
     return lines

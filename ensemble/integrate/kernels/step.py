@@ -2,14 +2,13 @@
 :mod:`.implicit`.
 
 :class:`~.source.KernelSource` assembles the module around one :class:`StepCode`: its
-copied functions go into the module's head, its work arrays at the start of each block,
+generated functions go into the module's head, its work arrays at the start of each block,
 its data among the kernel's arguments, and its lines inside the loop over the steps of a
 report interval.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
 
 import numpy as np
 
@@ -24,10 +23,6 @@ class StepCode:
         self.rates = rates
         self.form = rates.form
         self.method = rates.form.method
-
-    def support(self) -> list[Callable]:
-        """Plain functions (beyond :mod:`.scalars`) whose source the kernel must hold."""
-        return []
 
     def buffers(self) -> list[str]:
         """Allocations of the per-block work arrays the step needs beyond the state."""
