@@ -4,7 +4,7 @@ chunk.
 A kernel integrates a chunk block after block, each block's members side by side in the
 SIMD lanes.  The block size depends on the model and the method only, never on the
 chunk; the last block of a chunk is only as wide as the members left, padded to a whole
-number of :data:`LANES`.
+number of :data:`LANES` (:func:`padding_unit`).
 """
 
 from __future__ import annotations
@@ -13,14 +13,18 @@ from ensemble.integrate.kernels.form import KernelForm
 from ensemble.methods import Method
 from ensemble.model.lower import LoweredModel
 
-LANES = 64
-"""A chunk is padded to a multiple of this many members (or of the block, if smaller).
-Without a vector math library (numba uses Intel's SVML when it is installed) a member
-gets the same bits in a vector lane as in the scalar loop that ends a loop over members;
-with one, a vectorised ``exp`` may differ from the scalar one in the last bit.  Widths
-that are whole multiples of any vector width times unrolling the compiler picks (64 at
-most: 8 lanes of AVX-512 unrolled 8 times) keep every member in the vector body.  Common
-practice, no source."""
+LANES = 8
+"""A chunk is padded to a multiple of this many members (or of the block, if smaller): the
+doubles of one AVX-512 vector.  Without a vector math library a member gets the same bits
+in a vector lane as in the scalar loop that ends a loop over members (the arithmetic is
+IEEE 754 in both, without fast-math, and ``exp`` and the like are the same scalar calls),
+so the width of the last block changes no number."""
+
+VECTOR_MATH_LANES = 64
+"""The padding when numba uses Intel's SVML (installed with it, and not disabled): a
+vectorised ``exp`` may differ from the scalar one in the last bit, so every member must go
+through the vector body of every loop, whatever vector width times unrolling the compiler
+picks (64 at most: 8 lanes of AVX-512 unrolled 8 times).  Common practice, no source."""
 
 FUSED_BLOCK = 512
 """Members per block when one pass takes the whole step (every stage in registers)."""
@@ -65,6 +69,7 @@ def form_block_size(form: KernelForm) -> int:
     return size
 
 
-def padding_unit(block: int) -> int:
-    """Members a chunk is padded to a multiple of, for blocks of ``block`` members."""
-    return min(LANES, block)
+def padding_unit(block: int, vector_math: bool) -> int:
+    """Members a chunk is padded to a multiple of, for blocks of ``block`` members, with or
+    without a vector math library."""
+    return min(VECTOR_MATH_LANES if vector_math else LANES, block)

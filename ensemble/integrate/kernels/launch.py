@@ -109,7 +109,7 @@ def integrate_fixed_compiled(model: LoweredModel, design: Design, method: Method
     """Integrate every member of ``design`` with ``method`` at a fixed ``step``, as
     :func:`ensemble.integrate.reference.integrate_fixed` does, in a generated kernel.
 
-    Members are padded to whole vectors (:data:`.blocks.LANES`) with copies of a valid
+    Members are padded to whole vectors (:func:`.blocks.padding_unit`) with copies of a valid
     member (members with an impossible drawn start are replaced the same way and reported
     as NaN with ``INVALID_START``), so every member runs through the same vectorised
     code.
@@ -183,7 +183,7 @@ def _kernel_and_padding(model: LoweredModel, method: Method, design: Design
     """The kernel module and its source, and the members of ``design`` padded to whole
     vectors (:func:`.blocks.padding_unit`)."""
     module, source = KernelCache.for_environment().load(model, method)
-    unit = padding_unit(source.block)
+    unit = padding_unit(source.block, numba.config.USING_SVML)
     return module, source, max(1, -(-design.member_index.shape[0] // unit)) * unit
 
 

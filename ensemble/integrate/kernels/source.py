@@ -11,8 +11,8 @@ practice, no source):
   over groups, states, flow elements or a matrix's entries around it (:mod:`.rates`), so
   that LLVM vectorises across members and the code does not grow with the groups;
 - a member goes through the same arithmetic whatever its position in the chunk (no
-  fast-math, widths padded to whole vectors, :data:`.blocks.LANES`), so it gets the same
-  bits in any chunk.
+  fast-math, widths padded to whole vectors, :func:`.blocks.padding_unit`), so it gets
+  the same bits in any chunk.
 
 The step itself comes from :mod:`.explicit` or :mod:`.implicit`, by the kind of method;
 the reports from :mod:`.reports`.  The text depends on the model's structure only; its
