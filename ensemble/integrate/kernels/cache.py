@@ -1,10 +1,10 @@
 """Generated kernels on disk, and the modules loaded from them in this process.
 
 The kernel text of a (model, method) is written to ``kernel_<sha256 of the text>.py`` in
-the cache's directory and imported from there (the text depends on the model's structure
-only, so the variants of a scenario that differ in their values share one file), so numba's own ``cache=True`` keeps the
+the cache's directory and imported from there, so numba's own ``cache=True`` keeps the
 machine code next to it: a second process running the same model loads it without
-compiling.  Files are written whole or not at all (:func:`ensemble.durable.replace_atomically`),
+compiling.  The text depends on the model's structure only, so the variants of a scenario
+that differ in their values share one file.  Files are written whole or not at all (:func:`ensemble.durable.replace_atomically`),
 so processes compiling at once never see half a file, and an existing file is never
 rewritten (numba keys its cache on the file's modification time).
 
