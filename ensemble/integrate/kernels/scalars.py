@@ -120,10 +120,14 @@ def apply_moves(state, increment, out, touch_start, touch_element, touch_sign, w
 def mark_bad(state, flow_count, bad, check, width):
     """After a step: a member whose ``check`` (the sum of ``x - x`` over its new state,
     NaN once a value is not finite) is not 0 is bad from then on, and a bad member's state
-    and flow counts are NaN."""
+    and flow counts are NaN (nothing to do while every member is finite)."""
+    found = 0
     for b in range(width):
         if check[b] != 0.0:
             bad[b] = 1
+        found += bad[b]
+    if found == 0:
+        return
     for s in range(state.shape[0]):
         for b in range(width):
             if bad[b]:
@@ -132,4 +136,3 @@ def mark_bad(state, flow_count, bad, check, width):
         for b in range(width):
             if bad[b]:
                 flow_count[e, b] = math.nan
-
