@@ -69,8 +69,7 @@ def test_a_killed_worker_does_not_lose_the_run(tmp_path: Path) -> None:
             start_new_session=True)
         try:
             wait_for_saved_chunks(process, work, 1)
-            victim, held = next((worker, chunks) for worker, chunks
-                                in client.processing().items() if chunks)
+            victim, held = worker_holding_work(client, process)
             os.kill(client.run(os.getpid, workers=[victim])[victim], signal.SIGKILL)
             saved_at_kill = len(saved_chunks(work))
             _, err = process.communicate(timeout=300)
@@ -83,20 +82,34 @@ def test_a_killed_worker_does_not_lose_the_run(tmp_path: Path) -> None:
     assert process.returncode == 0, err
     assert saved_at_kill < 2 * SLOW["members"] // 2, "no work was in flight at the kill"
     assert any(rerun_after_worker_loss(history, chunk) for chunk in held), (
-        f"none of the killed worker's chunks {held} was given to a worker again")
+        f"none of the killed worker's chunks {held} was given to a worker again: {history}")
     reference = run_into(tmp_path / "reference", "result.nc", workers=0, **SLOW)
     assert_same_numbers(tmp_path / "result.nc", reference)
+
+
+def worker_holding_work(client: Client, process: subprocess.Popen) -> tuple[str, tuple]:
+    """A worker and the chunks it is computing, asked of the scheduler until one holds
+    some (between a chunk's end and the next submission no worker may hold any); the
+    run ending first fails the test."""
+    while process.poll() is None:
+        busy = [(worker, tuple(chunks)) for worker, chunks in client.processing().items()
+                if chunks]
+        if busy:
+            return busy[0]
+    raise AssertionError("the run ended before a worker was seen holding a chunk")
 
 
 def rerun_after_worker_loss(history: list[tuple], chunk: str) -> bool:
     """Whether the scheduler's transitions of task ``chunk`` (``Client.story``: entries
     ``("scheduler", key, start, finish, recommendations, stimulus, time)``) show it taken
-    from a worker at that worker's removal and finished later."""
+    from a worker at that worker's removal (while computing it, or holding its result not
+    yet handed to the run) and finished later."""
     transitions = [(start, finish, stimulus) for source, key, start, finish, _, stimulus, _
                    in (entry for entry in history if entry[0] == "scheduler"
                        and len(entry) == 7) if key == chunk]
     lost = next((index for index, (start, _, stimulus) in enumerate(transitions)
-                 if start == "processing" and stimulus.startswith("handle-worker-cleanup")),
+                 if start in ("processing", "memory")
+                 and stimulus.startswith("handle-worker-cleanup")),
                 None)
     return lost is not None and any(finish == "memory" for _, finish, _
                                     in transitions[lost:])
