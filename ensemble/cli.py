@@ -20,6 +20,8 @@ from typing import Annotated, Optional
 import psutil
 import typer
 
+from ensemble.about import CAUTION
+
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Run sampled ensembles of epidemic compartment models.")
 
@@ -196,7 +198,6 @@ def _report_run(path: Path, loaded, seconds: float) -> bool:
     each status bit, the step check in plain words when members are flagged, and the
     caution; whether any member is flagged."""
     from ensemble import api
-    from ensemble.about import CAUTION
 
     counts = api.status_counts(path)
     typer.echo(f"result: {path}")
@@ -323,6 +324,7 @@ def fit(
                        force=force, resume=resume, workers=workers, report=report)
     typer.echo(f"result: {path} ({particles} posterior members per variant)")
     typer.echo(api.fit_summary(loaded, path), nl=False)
+    typer.echo(CAUTION)
 
 
 @app.command()
@@ -350,6 +352,7 @@ def score(
     with _reported():
         text = api.score(result, observed, measure=measure, flow=flow, after=after)
     typer.echo(text, nl=False)
+    typer.echo(CAUTION)
 
 
 @app.command()

@@ -18,6 +18,7 @@ import xarray as xr
 from scipy import integrate, stats
 
 from ensemble import api
+from ensemble.about import CAUTION
 from support import ensemble_command, run_cli
 
 SCENARIO = """\
@@ -162,6 +163,7 @@ def test_the_command_prints_rounds_and_refuses_bad_observations(fitted, tmp_path
     assert done.returncode == 0, done.stderr
     assert "round 1: temperature" in done.stdout and "acceptance" in done.stdout
     assert "result:" in done.stdout
+    assert done.stdout.rstrip().endswith(CAUTION)
     (tmp_path / "cases.csv").write_text(COUNTS + "2027-03-29,-2\n")
     refused = run_cli("fit", "fitted.toml", "--particles", "50", "--force", cwd=tmp_path)
     assert refused.returncode == 2 and "cases.csv: line 5, value" in refused.stderr

@@ -14,6 +14,7 @@ import pytest
 import xarray as xr
 
 from ensemble import api
+from ensemble.about import CAUTION
 from ensemble.errors import UsageError
 from ensemble.fit.score import central_intervals, interval_coverage, weighted_interval_score
 from support import load_text, run_cli
@@ -169,6 +170,15 @@ def test_bad_counts_are_refused_naming_the_line(result, tmp_path, text, where):
     assert str(observed) in str(caught.value) and where in str(caught.value)
     finished = run_cli("score", result, observed, cwd=tmp_path)
     assert finished.returncode == 2 and where in finished.stderr
+
+
+def test_the_score_command_prints_the_table_and_ends_with_the_caution(result, tmp_path):
+    observed = tmp_path / "observed.csv"
+    observed.write_text("date,value\n2027-03-15,90\n2027-03-29,40\n")
+    done = run_cli("score", result, observed, "--after", "2027-03-08", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.startswith(api.score(result, observed, after="2027-03-08"))
+    assert done.stdout.rstrip().endswith(CAUTION)
 
 
 def test_comment_lines_are_skipped_and_lines_keep_their_numbers(result, tmp_path):
