@@ -91,3 +91,16 @@ def test_developers_layout_lists_every_module() -> None:
     listed = layout_modules()
     assert modules - listed == set(), "modules missing from DEVELOPERS.md's layout"
     assert listed - modules == set(), "DEVELOPERS.md's layout lists modules that do not exist"
+
+
+def test_every_test_the_readme_names_exists() -> None:
+    """The README's promises name the tests that prove them: each named file exists and
+    each named test is defined in it."""
+    named = re.findall(r"`(tests/test_\w+\.py)(?:::(\w+))?`", README)
+    assert len(named) >= 10, "the README names the tests behind its promises"
+    for file, test in named:
+        path = REPO / file
+        assert path.is_file(), f"README names {file}, which does not exist"
+        if test:
+            assert re.search(rf"^def {test}\(", path.read_text(encoding="utf-8"), re.M), (
+                f"README names {file}::{test}, which is not defined there")
