@@ -19,7 +19,9 @@ from pathlib import Path
 
 import numpy as np
 import xarray as xr
+from typer.testing import CliRunner
 
+from ensemble.cli import app
 from ensemble.examples import seir_text
 from ensemble.integrate.chunk import integrate_chunk
 from ensemble.methods import METHODS
@@ -507,6 +509,27 @@ def run_cli(*arguments: str | os.PathLike[str], cwd: Path,
     """Run ``ensemble`` with ``arguments`` in ``cwd`` and wait for it."""
     return subprocess.run(ensemble_command(*arguments), cwd=cwd, capture_output=True,
                           text=True, timeout=timeout)
+
+
+@dataclasses.dataclass(frozen=True)
+class CompletedCommand:
+    """Exit status and output of a command line run in this process."""
+
+    returncode: int
+    stdout: str
+    stderr: str
+
+
+def invoke_cli(*arguments: str | os.PathLike[str], cwd: Path) -> CompletedCommand:
+    """Run the ``ensemble`` command line in this process (faster than a new interpreter
+    for checks of exit status and messages), in directory ``cwd``."""
+    previous = Path.cwd()
+    os.chdir(cwd)
+    try:
+        outcome = CliRunner().invoke(app, [os.fspath(a) for a in arguments])
+    finally:
+        os.chdir(previous)
+    return CompletedCommand(outcome.exit_code, outcome.stdout, outcome.stderr)
 
 
 NUMERIC_VARIABLES = ("state", "flow_count", "state_quantile", "flow_count_quantile",

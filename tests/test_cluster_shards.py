@@ -12,38 +12,16 @@ import os
 import shlex
 import stat
 import subprocess
-from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
-from typer.testing import CliRunner
 from hypothesis import given, strategies as st
 
 from ensemble import api
-from ensemble.cli import app
 from ensemble.run.clusters import load_profile
 from ensemble.errors import PartError
 from ensemble.run.shards import Shard
-from support import REPO, assert_identical_numbers, write_scenario
-
-
-def run_cli(*arguments: str | os.PathLike[str], cwd: Path) -> CompletedCommand:
-    """Run the ``ensemble`` command line in this process (faster than a new interpreter
-    for checks of exit status and messages), in directory ``cwd``."""
-    previous = Path.cwd()
-    os.chdir(cwd)
-    try:
-        outcome = CliRunner().invoke(app, [os.fspath(a) for a in arguments])
-    finally:
-        os.chdir(previous)
-    return CompletedCommand(outcome.exit_code, outcome.stdout, outcome.stderr)
-
-
-@dataclass(frozen=True)
-class CompletedCommand:
-    returncode: int
-    stdout: str
-    stderr: str
+from support import REPO, assert_identical_numbers, invoke_cli, write_scenario
 
 
 # ----------------------------------------------------------------------------- the split
@@ -71,7 +49,7 @@ def test_bad_shard_text(text: str) -> None:
 
 def test_bad_shard_option_exits_2(tmp_path: Path) -> None:
     write_scenario(tmp_path, members=4, days=5)
-    done = run_cli("run", "testtown.toml", "--shard", "4/4", cwd=tmp_path)
+    done = invoke_cli("run", "testtown.toml", "--shard", "4/4", cwd=tmp_path)
     assert done.returncode == 2
     assert "--shard" in done.stderr
     assert sorted(p.name for p in tmp_path.iterdir()) == ["testtown.toml"]
@@ -114,7 +92,7 @@ def test_merge_names_missing_shards(sharded) -> None:
     directory = sharded["directory"]
     with pytest.raises(PartError, match=r"missing shards 0, 2 of 3"):
         api.merge(sharded["parts"][1:2], directory / "never.nc")
-    done = run_cli("merge", sharded["parts"][0], "--output", "never.nc", cwd=directory)
+    done = invoke_cli("merge", sharded["parts"][0], "--output", "never.nc", cwd=directory)
     assert done.returncode == 2
     assert "missing shards 1, 2 of 3" in done.stderr
     assert not (directory / "never.nc").exists()
@@ -130,8 +108,8 @@ def test_merge_refuses_parts_of_different_runs(sharded) -> None:
     scenario = api.load_scenario(sharded["scenario"], seed=12)
     other = api.run(scenario, output=directory / "other-seed.nc", shard="1/3", workers=0,
                     progress=False)
-    done = run_cli("merge", sharded["parts"][0], other, sharded["parts"][2],
-                   "--output", "mixed.nc", cwd=directory)
+    done = invoke_cli("merge", sharded["parts"][0], other, sharded["parts"][2],
+                      "--output", "mixed.nc", cwd=directory)
     assert done.returncode == 2
     assert "different runs" in done.stderr
     assert "other-seed.nc" in done.stderr and "part0.nc" in done.stderr
@@ -139,24 +117,24 @@ def test_merge_refuses_parts_of_different_runs(sharded) -> None:
 
 
 def test_merge_refuses_a_result_file(sharded) -> None:
-    done = run_cli("merge", sharded["single"], "--output", "x.nc", cwd=sharded["directory"])
+    done = invoke_cli("merge", sharded["single"], "--output", "x.nc", cwd=sharded["directory"])
     assert done.returncode == 2
     assert "not a shard part file" in done.stderr
 
 
 def test_cli_shard_and_merge(tmp_path: Path) -> None:
     scenario = write_scenario(tmp_path, members=6, days=10)
-    done = run_cli("run", "testtown.toml", "--shard", "0/2", "--workers", "0", cwd=tmp_path)
+    done = invoke_cli("run", "testtown.toml", "--shard", "0/2", "--workers", "0", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     api.run(scenario, shard="1/2", workers=0, progress=False,
             output=tmp_path / "result.shard-1-of-2.nc")
     parts = sorted(tmp_path.glob("result.shard-*-of-2.nc"))
     assert len(parts) == 2  # the command line's default part name is the API's
-    done = run_cli("merge", *parts, "--output", "merged.nc", cwd=tmp_path)
+    done = invoke_cli("merge", *parts, "--output", "merged.nc", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     single = api.run(scenario, output=tmp_path / "single.nc", workers=0, progress=False)
     assert_identical_numbers(single, tmp_path / "merged.nc")
-    done = run_cli("merge", *parts, "--output", "merged.nc", cwd=tmp_path)
+    done = invoke_cli("merge", *parts, "--output", "merged.nc", cwd=tmp_path)
     assert done.returncode == 2 and "--force" in done.stderr
 
 
@@ -183,8 +161,8 @@ def fake_batch_system(directory: Path) -> Path:
 
 def driver_text(tmp_path: Path, profile: str, *options: str) -> str:
     write_scenario(tmp_path, members=40, days=10)
-    done = run_cli("array-script", "testtown.toml", "--cluster", REPO / "configs" / profile,
-                   "--shards", "4", *options, cwd=tmp_path)
+    done = invoke_cli("array-script", "testtown.toml", "--cluster", REPO / "configs" / profile,
+                      "--shards", "4", *options, cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     return done.stdout
 
@@ -254,9 +232,9 @@ def test_pbs_array_script(tmp_path: Path) -> None:
 
 def test_array_script_refuses_local_and_too_many_shards(tmp_path: Path) -> None:
     write_scenario(tmp_path, members=3, days=10)
-    done = run_cli("array-script", "testtown.toml", "--cluster", "local", "--shards", "2",
-                   cwd=tmp_path)
+    done = invoke_cli("array-script", "testtown.toml", "--cluster", "local", "--shards", "2",
+                      cwd=tmp_path)
     assert done.returncode == 2 and "batch-system profile" in done.stderr
-    done = run_cli("array-script", "testtown.toml", "--cluster",
-                   REPO / "configs" / "example-slurm.toml", "--shards", "4", cwd=tmp_path)
+    done = invoke_cli("array-script", "testtown.toml", "--cluster",
+                      REPO / "configs" / "example-slurm.toml", "--shards", "4", cwd=tmp_path)
     assert done.returncode == 2 and "expected 1 .. 3" in done.stderr

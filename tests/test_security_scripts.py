@@ -23,36 +23,16 @@ import re
 import shlex
 import stat
 import subprocess
-from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
-from typer.testing import CliRunner
 
-from ensemble.cli import app
 from ensemble.examples import seir_text
+from support import invoke_cli
 
 CONTROL_CHARACTERS = ["\n", "\r", "\x00", "\t", "\x1b", "\x7f", "\x85", "\x9b"]
 """C0 controls (newline, carriage return, NUL, tab, escape), DEL and C1 controls (next
 line, control sequence introducer): Unicode's category Cc."""
-
-
-@dataclass(frozen=True)
-class Outcome:
-    returncode: int
-    stdout: str
-    stderr: str
-
-
-def ensemble(*arguments: str | os.PathLike[str], cwd: Path) -> Outcome:
-    """The ``ensemble`` command line, run in this process in directory ``cwd``."""
-    previous = Path.cwd()
-    os.chdir(cwd)
-    try:
-        outcome = CliRunner().invoke(app, [os.fspath(a) for a in arguments])
-    finally:
-        os.chdir(previous)
-    return Outcome(outcome.exit_code, outcome.stdout, outcome.stderr)
 
 
 def scenario_file(directory: Path, *, name: str = "testtown", output: str = "result.nc",
@@ -92,7 +72,7 @@ def test_check_refuses_control_characters_naming_the_key(tmp_path: Path, charact
              "name": f"town{character}x", "variant": f"distancing{character}x"}[field]
     path = scenario_file(tmp_path, **{field: value})
     before = sorted(tmp_path.iterdir())
-    done = ensemble("check", path, cwd=tmp_path)
+    done = invoke_cli("check", path, cwd=tmp_path)
     assert done.returncode == 2, done.stdout
     assert f"{path.name}: {key}:" in done.stderr
     assert repr(value) in done.stderr          # the value is shown, escaped
@@ -101,7 +81,7 @@ def test_check_refuses_control_characters_naming_the_key(tmp_path: Path, charact
 
 def test_paths_with_spaces_and_quotes_are_accepted(tmp_path: Path) -> None:
     path = scenario_file(tmp_path, output="my results/it's $(touch pwned).nc")
-    done = ensemble("check", path, cwd=tmp_path)
+    done = invoke_cli("check", path, cwd=tmp_path)
     assert done.returncode == 0, done.stderr
 
 
@@ -171,8 +151,8 @@ def test_array_script_with_hostile_values_runs_only_what_it_should(tmp_path: Pat
     scenario = scenario_file(work, output=HOSTILE_OUTPUT)
     profile = work / "site.toml"
     profile.write_text(PROFILE.format(system=system))
-    done = ensemble("array-script", scenario.name, "--cluster", profile.name, "--shards",
-                    "4", "--set", f"scenario.title={HOSTILE_TITLE}", cwd=work)
+    done = invoke_cli("array-script", scenario.name, "--cluster", profile.name, "--shards",
+                      "4", "--set", f"scenario.title={HOSTILE_TITLE}", cwd=work)
     assert done.returncode == 0, done.stderr
     driver = tmp_path / "submit.sh"
     driver.write_text(done.stdout)
@@ -233,8 +213,8 @@ def test_array_script_refuses_control_characters_from_the_command_line(tmp_path:
     scenario = scenario_file(tmp_path)
     profile = tmp_path / "site.toml"
     profile.write_text(PROFILE.format(system="slurm"))
-    done = ensemble("array-script", scenario.name, "--cluster", profile.name, "--shards",
-                    "2", "--output", "a\ntouch pwned.nc", cwd=tmp_path)
+    done = invoke_cli("array-script", scenario.name, "--cluster", profile.name, "--shards",
+                      "2", "--output", "a\ntouch pwned.nc", cwd=tmp_path)
     assert done.returncode == 2
     assert "--output" in done.stderr and "control characters" in done.stderr
     assert done.stdout == ""
@@ -246,7 +226,7 @@ def test_array_script_refuses_a_working_directory_with_a_newline(tmp_path: Path)
     scenario = scenario_file(work)
     profile = work / "site.toml"
     profile.write_text(PROFILE.format(system="pbs"))
-    done = ensemble("array-script", scenario.name, "--cluster", profile.name, "--shards",
-                    "2", cwd=work)
+    done = invoke_cli("array-script", scenario.name, "--cluster", profile.name, "--shards",
+                      "2", cwd=work)
     assert done.returncode == 2
     assert "working directory" in done.stderr and done.stdout == ""
