@@ -323,13 +323,26 @@ report_every = {report_every}
 """
 
 
+def model_and_design(scenario: Scenario, variant: int = 0) -> tuple[LoweredModel, Design]:
+    """The compiled model of ``scenario``'s ``variant``-th variant and the design of all
+    its members."""
+    chosen = scenario.variants[variant]
+    model = lower_model(scenario, chosen)
+    return model, make_design(scenario, chosen, model, np.arange(scenario.member_count))
+
+
+def integrate_members(scenario: Scenario, backend: str = "numpy"
+                      ) -> tuple[LoweredModel, ChunkResult]:
+    """The compiled first variant of ``scenario`` and every member integrated in one chunk
+    with the scenario's solver."""
+    model, design = model_and_design(scenario)
+    return model, integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
+
+
 def load_case(tmp_path: Path, toml: str, name: str = "case") -> Case:
     """Write ``toml`` to ``tmp_path`` and load, compile and design all its members."""
     scenario = load_text(tmp_path, toml, name)
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
-    return Case(scenario, model, design)
+    return Case(scenario, *model_and_design(scenario))
 
 
 def subset(design: Design, members: np.ndarray) -> Design:

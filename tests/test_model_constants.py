@@ -11,9 +11,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from ensemble.model import RateFunctions, lower_model
-from ensemble.sampling import make_design
-from support import load_text
+from ensemble.model import RateFunctions
+from support import load_text, model_and_design
 
 STRUCTURAL_ZERO = """
 [scenario]
@@ -50,9 +49,7 @@ def scenario_with(tmp_path, rate: str = "S * (contacts @ (1 / (q - 1)))",
 
 
 def design_and_rates(scenario):
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
+    model, design = model_and_design(scenario)
     s = np.empty((0, scenario.member_count))
     rates = RateFunctions(model).rates(0.0, design.initial, design.parameters, s)
     return model, design, rates

@@ -15,7 +15,7 @@ from ensemble.errors import ScenarioError
 from ensemble.model import lower_model
 from ensemble.model.spectra import spectral_radii
 from ensemble.sampling import make_design
-from support import load_text
+from support import load_text, model_and_design
 
 CONTACTS = [[3.0, 1.0, 0.0], [1.0, 2.0, 0.5], [0.2, 0.5, 1.5]]
 SUSCEPTIBILITY = [0.5, 1.0, 1.2]
@@ -59,10 +59,7 @@ def scenario_text(parameters: str, rate: str = "beta * S * (contacts @ (I / N))"
 
 
 def designed(tmp_path, text: str, variant: int = 0):
-    scenario = load_text(tmp_path, text)
-    chosen = scenario.variants[variant]
-    model = lower_model(scenario, chosen)
-    return make_design(scenario, chosen, model, np.arange(scenario.member_count))
+    return model_and_design(load_text(tmp_path, text), variant)[1]
 
 
 def numpy_radius(matrix: np.ndarray) -> float:

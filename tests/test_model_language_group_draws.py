@@ -15,10 +15,8 @@ import pytest
 from scipy import stats
 
 from ensemble.errors import ScenarioError
-from ensemble.model import lower_model
-from ensemble.sampling import make_design
 from ensemble.sampling.uniform import uncertain_columns
-from support import load_text
+from support import load_text, model_and_design
 
 MEMBERS = 2000
 
@@ -79,9 +77,7 @@ def gamma_of(mean: float, sd: float):
 
 
 def drawn(scenario, variant: int = 0) -> np.ndarray:
-    chosen = scenario.variants[variant]
-    model = lower_model(scenario, chosen)
-    design = make_design(scenario, chosen, model, np.arange(scenario.member_count))
+    _, design = model_and_design(scenario, variant)
     assert np.array_equal(design.reported["doubled"], 2 * design.reported["admitted"])
     return design.reported["admitted"]
 

@@ -15,10 +15,8 @@ import pytest
 import scipy.linalg
 
 from ensemble.errors import ScenarioError
-from ensemble.integrate.chunk import integrate_chunk
 from ensemble.model import lower_model
-from ensemble.sampling import make_design
-from support import load_text
+from support import integrate_members, load_text
 
 MOVES = [[0.0, 0.03, 0.01], [0.02, 0.0, 0.04], [0.05, 0.01, 0.0]]
 """Per-capita rates of moving from the row's place to the column's place (per day)."""
@@ -77,13 +75,6 @@ def movement_text(days: int = 400, extra: str = "") -> str:
     """
 
 
-def run(scenario):
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
-    return model, integrate_chunk(model, design, scenario.solver, scenario.n_reports)
-
-
 def stationary(rates: np.ndarray) -> np.ndarray:
     """The invariant distribution of the chain with these jump rates: the left null
     vector of the generator Q (off-diagonal the rates, rows summing to zero)."""
@@ -97,7 +88,7 @@ def test_moving_between_places_conserves_everyone_and_reaches_the_stationary_cha
     """The total of every compartment and place stays 10,000 (each flow element takes
     from one state what it gives another); each place's share of the population tends to
     the chain's invariant distribution (scipy.linalg.null_space of the generator)."""
-    model, result = run(load_text(tmp_path, movement_text()))
+    model, result = integrate_members(load_text(tmp_path, movement_text()))
     assert model.closed
     by_place = result.state[0].reshape(3, 3, -1).sum(axis=0)    # (place, time)
     np.testing.assert_allclose(by_place.sum(axis=0), 10000.0, rtol=1e-12)
@@ -125,7 +116,7 @@ def test_the_flow_count_of_a_group_is_what_left_it(tmp_path) -> None:
     place g over [0, T] are (sum_h moves[g][h]) times the integral of S_g, which is the
     top-right block of expm([[Q^T, I], [0, 0]] T) times S(0) (Van Loan 1978, IEEE Trans.
     Autom. Control 23:395-404; scipy.linalg.expm), to the accuracy of RK4 at h = 0.25."""
-    model, result = run(load_text(tmp_path, movement_text(days=20).replace(
+    model, result = integrate_members(load_text(tmp_path, movement_text(days=20).replace(
         "I = [20, 0, 0]", "I = [0, 0, 0]")))
     rates = np.array(MOVES)
     generator = (rates - np.diag(rates.sum(axis=1))).T
@@ -156,7 +147,7 @@ def test_ageing_into_another_compartment(tmp_path) -> None:
         "    moves = ").replace('rate = "diag(S) @ moves"', 'rate = "0 * diag(S) @ moves"'
                                 ).replace('rate = "diag(R) @ moves"',
                                           'rate = "0 * diag(R) @ moves"')
-    model, result = run(load_text(tmp_path, text))
+    model, result = integrate_members(load_text(tmp_path, text))
     times = np.arange(11.0)
     r_north = model.compartments.index("R") * 3
     s_hills = model.compartments.index("S") * 3 + 2
@@ -176,7 +167,7 @@ def test_births_into_a_named_group(tmp_path) -> None:
     rate = "5"
     """).replace('I = [20, 0, 0]', 'I = [0, 0, 0]').replace(
         'rate = "diag(S) @ moves"', 'rate = "0 * diag(S) @ moves"')
-    model, result = run(load_text(tmp_path, text))
+    model, result = integrate_members(load_text(tmp_path, text))
     assert not model.closed
     times = np.arange(11.0)
     np.testing.assert_allclose(result.state[0, 0:3], [[5000] * 11, 3000 + 5 * times,

@@ -11,18 +11,14 @@ import numpy as np
 import pytest
 
 from ensemble import api
-from ensemble.model import lower_model
 from ensemble.model.reproduction import infected_compartments
-from ensemble.sampling import make_design
-from support import load_text
+from support import load_text, model_and_design
 
 MEMBERS = 6
 
 
 def members_r0(scenario, variant: int = 0):
-    chosen = scenario.variants[variant]
-    model = lower_model(scenario, chosen)
-    design = make_design(scenario, chosen, model, np.arange(scenario.member_count))
+    _, design = model_and_design(scenario, variant)
     return design.basic_reproduction_number, design.reported
 
 

@@ -13,18 +13,8 @@ from scipy import integrate, stats
 from scipy.optimize import brentq
 
 from ensemble.errors import ScenarioError
-from ensemble.integrate.chunk import integrate_chunk
 from ensemble.integrate.reference import integrate_fixed
-from ensemble.model import lower_model
-from ensemble.sampling import make_design
-from support import load_text
-
-
-def run(scenario, backend: str = "numpy"):
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
-    return model, integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend)
+from support import integrate_members, load_text, model_and_design
 
 
 def dwell_text(stages: int, initial: str, extra_flow: str = "", step: float = 0.01) -> str:
@@ -64,7 +54,7 @@ def test_time_spent_by_those_present_at_the_start(tmp_path, stages) -> None:
     with shape j and scale d / k (Hurtado & Kirosingh 2019, J. Math. Biol.
     79:1831-1883, the linear chain trick)."""
     scenario = load_text(tmp_path, dwell_text(stages, '{ X = 1000 }'))
-    model, result = run(scenario)
+    model, result = integrate_members(scenario)
     times = np.array([float(t) for t in scenario.report_times()])
     expected = np.mean([stats.gamma(j, scale=4.0 / stages).sf(times)
                         for j in range(1, stages + 1)], axis=0) * 1000
@@ -84,7 +74,7 @@ def test_flows_in_enter_the_first_stage_and_leave_after_an_erlang_time(tmp_path,
     to = "X"
     rate = "0.7 * A"
     """))
-    model, result = run(scenario)
+    model, result = integrate_members(scenario)
     erlang = stats.gamma(stages, scale=4.0 / stages)
     for k, t in enumerate(scenario.report_times()):
         t = float(t)
@@ -106,7 +96,7 @@ def test_two_ways_out_share_those_who_leave(tmp_path) -> None:
     rate = "3 * X / mean_days"
     """)
     scenario = load_text(tmp_path, text)
-    model, result = run(scenario)
+    model, result = integrate_members(scenario)
     times = np.array([float(t) for t in scenario.report_times()])
     left = 1000 - 1000 * np.mean([stats.gamma(j, scale=1 / 3).sf(times) for j in (1, 2, 3)],
                                  axis=0)
@@ -162,7 +152,7 @@ def test_staged_seir_grows_at_the_rate_of_wearing_rohani_keeling(tmp_path, laten
     check = {{ enabled = false }}
     """
     scenario = load_text(tmp_path, text)
-    model, result = run(scenario)
+    model, result = integrate_members(scenario)
     infected = sum(result.state[0, model.compartments.index(c)] for c in ("E", "I"))
     slope = (np.log(infected[60]) - np.log(infected[45])) / 15
     expected = brentq(lambda r: wearing_r0(r, 1 / 3, latent, 1 / 5, infectious) - 2.5,
@@ -175,7 +165,7 @@ def test_show_stages_reports_each_stage_and_their_sum(tmp_path) -> None:
     their sum (the definition of a staged compartment's count)."""
     text = dwell_text(3, '{ X = 1000 }') + "\n    [output]\n    show_stages = true\n"
     scenario = load_text(tmp_path, text)
-    model, result = run(scenario)
+    model, result = integrate_members(scenario)
     assert model.compartments == ("A", "X", "Y", "X:1", "X:2", "X:3")
     assert model.flows == ("X_to_Y", "X:1_to_X:2", "X:2_to_X:3")
     stages = result.state[0, 3:6]
@@ -192,9 +182,7 @@ def test_both_backends_agree_on_a_staged_model_with_flows_between_groups(tmp_pat
     from ensemble.methods import METHODS
 
     scenario = load_text(tmp_path, GROUPED_STAGED)
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
+    model, design = model_and_design(scenario)
     for method in ("rk4", "trapezoid"):
         arguments = (model, design, METHODS[method], 0.25, 4, scenario.n_reports,
                      scenario.solver.newton, 0.01)
