@@ -32,7 +32,7 @@ from ensemble.model.lower import lower_model
 from ensemble.records import INVALID_START, NON_FINITE
 from ensemble.sampling import make_design
 from ensemble.scenario.load import load_scenario
-from support import IMPLICIT
+from support import IMPLICIT, load_text, model_and_design
 
 # Illustrative model, invented numbers: two groups, a contact matrix, waning immunity, a
 # step schedule (school terms), a linear schedule (vaccination ramp), a seasonal derived
@@ -141,13 +141,8 @@ step = 0.25
 
 
 def _load(tmp_path, text: str, name: str):
-    path = tmp_path / f"{name}.toml"
-    path.write_text(textwrap.dedent(text))
-    scenario = load_scenario(str(path))
-    variant = scenario.variants[0]
-    model = lower_model(scenario, variant)
-    design = make_design(scenario, variant, model, np.arange(scenario.member_count))
-    return scenario, model, design
+    scenario = load_text(tmp_path, text, name)
+    return (scenario, *model_and_design(scenario))
 
 
 @pytest.fixture(scope="module")
