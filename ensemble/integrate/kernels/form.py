@@ -24,7 +24,7 @@ import numpy as np
 
 from ensemble.methods import Method
 from ensemble.model.grouped import (GROUP_LEAVES, STRUCTURED, Contract, ElementFamily,
-                                    GroupedRates, GroupState, GroupTotal, grouped_rates)
+                                    GroupedRates, GroupState, grouped_rates)
 from ensemble.model.ir import Apply, Const, ParamRef, ScalarNode, ScheduleRef, StateRef, walk
 from ensemble.model.lower import LoweredModel
 
@@ -49,8 +49,6 @@ class EntrySchedule:
 
     number: int
 
-
-ENTRY_HOLES = (EntryConst, EntryParam, EntrySchedule)
 
 
 def skeleton(tree: ScalarNode) -> tuple[ScalarNode, list[float], list[int], list[int]]:
@@ -259,6 +257,3 @@ class KernelForm:
     def index_of(self, node: ScalarNode) -> int:
         """The number of a sum over groups in :attr:`structured`."""
         return self.structured.index(node)
-
-    def is_total(self, node: ScalarNode) -> bool:
-        return isinstance(node, GroupTotal)
