@@ -12,6 +12,7 @@ why, where ``sinfo`` is missing or no node is idle.
 
 from __future__ import annotations
 
+import os
 import re
 import shutil
 import subprocess
@@ -121,11 +122,14 @@ def test_cancelled_worker_job_is_replaced_and_loses_nothing(tmp_path: Path) -> N
     replacement is submitted."""
     (tmp_path / "configs").mkdir()
     shutil.copy(REPO / "configs" / "testbed-slurm.toml", tmp_path / "configs")
-    scenario = write_scenario(tmp_path, members=120, days=60, step=1 / 256)
+    scenario = write_scenario(tmp_path, members=120, days=300, step=1 / 256)
     run = subprocess.Popen(
         ensemble_command("run", "testtown.toml", "--cluster", "testbed-slurm", "--chunk", "3",
                          "--output", "killed.nc"),
-        cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        # dask forgets a lost worker's job after this delay (15 s by default), and only
+        # then does the adaptive loop submit its replacement
+        env={**os.environ, "DASK_DISTRIBUTED__DEPLOY__LOST_WORKER_TIMEOUT": "2s"})
     try:
         work = tmp_path / "killed.nc.partial"
         deadline = time.monotonic() + WAIT_SECONDS

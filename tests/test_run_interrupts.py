@@ -19,6 +19,7 @@ import subprocess
 import threading
 from pathlib import Path
 
+import numba
 import numpy as np
 import psutil
 import pytest
@@ -103,7 +104,7 @@ def test_compiled_kernel_stops_after_its_first_batch(tmp_path: Path,
     _, source = KernelCache.for_environment().load(model, METHODS[probe.solver.method])
     members = 2 * source.block + 10
     scenario, model, design = seir_case(tmp_path, members=members)
-    unit = padding_unit(source.block)
+    unit = padding_unit(source.block, numba.config.USING_SVML)
     padded = -(-members // unit) * unit
     buffers = ReportBuffers()
     state, _, _ = buffers.arrays("run", scenario.n_reports, model.n_states,
