@@ -344,3 +344,19 @@ def test_task_copies_read_the_brackets_the_first_derivation_stored(tmp_path, mon
     assert {name: b.digest() for name, b in refined.items()} == {
         name: b.digest() for name, b in journal.brackets.refined(0).items()}
     assert (journal.work / "refined-brackets-v0.npz").is_file()
+
+
+def test_a_large_model_gets_a_smaller_pilot_not_none(tmp_path, monkeypatch):
+    """The pilot shrinks so that its trajectories fit PILOT_BYTES (worked example: the
+    bytes of one member's cells times the pilot's members), down to SMALLEST_PILOT;
+    below that every member is kept whole."""
+    layout = layout_of(grouped_scenario(tmp_path, members=200_000, keep_members=False))
+    journal = _open(tmp_path / "r.nc", layout)
+    cells = sum(layout.cell_count(variable)
+                for variable in brackets_module.trajectory_variables(layout))
+    assert journal.brackets.pilot_member_count() == brackets_module.PILOT_MEMBER_COUNT
+    monkeypatch.setattr(brackets_module, "PILOT_BYTES", 8 * cells * 3000 + 7)
+    assert journal.brackets.pilot_member_count() == 3000
+    assert journal.brackets.refining_member_count() == 4 * 3000
+    monkeypatch.setattr(brackets_module, "PILOT_BYTES", 8 * cells * 1000)
+    assert journal.brackets.pilot_member_count() == 0

@@ -39,6 +39,10 @@ from ensemble.records import ChunkKey
 PILOT_BYTES = 512 * 2**20
 """Largest size of a pilot's trajectories (:meth:`BracketCache.pilot_member_count`)."""
 
+SMALLEST_PILOT = 1024
+"""Fewest pilot members worth deriving brackets from; below it every member is kept whole
+(with fewer, the brackets would be too wide to save much; common practice, no source)."""
+
 REFINE_PILOTS = 4
 """The refined brackets come from the first ``REFINE_PILOTS`` pilots' worth of members
 (:meth:`BracketCache.refining_member_count`): half as wide as the pilot's."""
@@ -82,16 +86,21 @@ class BracketCache:
 
     def pilot_member_count(self) -> int:
         """Members at the start of each variant whose trajectories are kept whole and
-        give the brackets; the members after them may be saved as candidates only.  0
-        (every member kept whole) when the result holds the members' trajectories, when
-        the ensemble is too small to gain, or when the pilot's trajectories would take
-        more than :data:`PILOT_BYTES`."""
+        give the brackets; the members after them may be saved as candidates only.
+
+        :data:`PILOT_MEMBER_COUNT`, or fewer for a large model, so that the pilot's
+        trajectories take at most :data:`PILOT_BYTES` (a smaller pilot gives wider
+        brackets, so more candidates, never other quantiles).  0 (every member kept
+        whole) when the result holds the members' trajectories, when such a pilot would
+        hold fewer than :data:`SMALLEST_PILOT` members, or when the ensemble is too small
+        to gain."""
         layout = self.layout
         cells = sum(layout.cell_count(variable) for variable in trajectory_variables(layout))
-        if (layout.keep_members or layout.member_count < 4 * PILOT_MEMBER_COUNT
-                or cells * PILOT_MEMBER_COUNT * 8 > PILOT_BYTES):
+        pilot = min(PILOT_MEMBER_COUNT, PILOT_BYTES // max(8 * cells, 1))
+        if (layout.keep_members or pilot < min(SMALLEST_PILOT, PILOT_MEMBER_COUNT)
+                or layout.member_count < 4 * pilot):
             return 0
-        return PILOT_MEMBER_COUNT
+        return pilot
 
     def refining_member_count(self) -> int:
         """Members at the start of each variant whose candidates give refined brackets
