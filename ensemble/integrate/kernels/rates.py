@@ -303,21 +303,26 @@ class RateCode:
                   f"{entry} * operand_{x}[col, b]"]
         return lines
 
+    def _work_arrays(self) -> list[tuple[str, str]]:
+        """(name, shape) of each per-block array the sums over groups are computed in."""
+        arrays = []
+        for x, node in enumerate(self.form.structured):
+            arrays.append((f"operand_{x}", "(n_groups, BLOCK)"))
+            if isinstance(node, Contract):
+                arrays.append((f"value_{x}", "(n_groups, BLOCK)"))
+                if len(self.form.plans[node].skeletons) > 1:
+                    arrays.append((f"matrix_{x}", f"(column_{x}.shape[0], BLOCK)"))
+            else:
+                arrays.append((f"total_{x}", "BLOCK"))
+        return arrays
+
     def buffers(self) -> list[str]:
         """Allocations, per block, of the schedule values and of the arrays the sums over
         groups are computed in."""
         slots = len(self.model.schedule_slots)
-        lines = [f"    sv = np.empty(({len(stage_times(self.form.method))}, {max(slots, 1)}, "
-                 "BLOCK))"]
-        for x, node in enumerate(self.form.structured):
-            lines.append(f"    operand_{x} = np.empty((n_groups, BLOCK))")
-            if isinstance(node, Contract):
-                lines.append(f"    value_{x} = np.empty((n_groups, BLOCK))")
-                if len(self.form.plans[node].skeletons) > 1:
-                    lines.append(f"    matrix_{x} = np.empty((column_{x}.shape[0], BLOCK))")
-            else:
-                lines.append(f"    total_{x} = np.empty(BLOCK)")
-        return lines
+        return [f"    sv = np.empty(({len(stage_times(self.form.method))}, {max(slots, 1)}, "
+                "BLOCK))",
+                *(f"    {name} = np.empty({shape})" for name, shape in self._work_arrays())]
 
     def data_arguments(self) -> list[str]:
         """The kernel's arguments holding the matrices' data, in the order of
@@ -331,17 +336,7 @@ class RateCode:
 
     def work_arguments(self) -> list[str]:
         """The per-block arrays of the sums over groups (:meth:`buffers`)."""
-        names = []
-        for x, node in enumerate(self.form.structured):
-            names.append(f"operand_{x}")
-            if isinstance(node, Contract):
-                names.append(f"value_{x}")
-                if len(self.form.plans[node].skeletons) > 1:
-                    names.append(f"matrix_{x}")
-            else:
-                names.append(f"total_{x}")
-        return names
-
+        return [name for name, _ in self._work_arrays()]
 
 def _row(leaf: ScalarNode) -> int:
     return leaf.first if isinstance(leaf, GroupParam) else leaf.index
