@@ -38,6 +38,25 @@ def test_work_is_members_times_steps_times_the_check_runs(tmp_path: Path) -> Non
     assert estimate(scenario, members=10).member_steps == 2 * 10 * 120 * 3
 
 
+def test_measures_add_their_series_and_metrics_to_the_sizes(tmp_path: Path) -> None:
+    """Worked by hand: a stock measure reported at the 31 times of 30 days and a flow
+    measure over 5-day windows (6 windows) add 31 + 6 values of each member's series to
+    the result file and to the saved chunks, and 5 metrics per measure row (peak value,
+    peak time, total, days above, censored) to every per-member size; 2 variants x 40
+    members."""
+    path = write_scenario(tmp_path, members=40, days=30)
+    before = estimate(api.load_scenario(path))
+    with path.open("a") as text:
+        text.write('\n[[measures]]\nname = "infectious"\nof = "I"\n'
+                   '\n[[measures]]\nname = "new_cases"\nof = "infection"\nwindow = 5\n')
+    after = estimate(api.load_scenario(path))
+    members = 2 * 40
+    metrics = 2 * 5 * 8
+    assert after.file_bytes - before.file_bytes == members * (metrics + (31 + 6) * 8)
+    assert after.work_bytes - before.work_bytes == members * (metrics + (31 + 6) * 8)
+    assert after.driver_bytes - before.driver_bytes == members * metrics
+
+
 @pytest.mark.parametrize("setting, key, shown", [
     ("scenario.members=2147483648", "scenario.members", "32-bit"),
     ("solver.step=1e-300", "solver.step", "1e+300 steps between two reported times"),

@@ -58,6 +58,11 @@ CANDIDATE_SHARE = 0.2
 the quantiles (the README: "about a fifth")."""
 
 
+METRICS_PER_MEASURE_ROW = 5
+"""Per-member values of each measure row: its peak, the peak's time, its total, the days
+above its threshold and whether the peak is censored at the horizon."""
+
+
 @dataclass(frozen=True)
 class Estimate:
     """The figures of one run.
@@ -109,8 +114,10 @@ def estimate(scenario: Scenario, members: int | None = None) -> Estimate:
     model = scenario.model
     groups = len(model.groups) if model.groups else 1
     rows = (len(model.compartments) + len(model.flows)) * groups
-    per_member = (3 * rows + len(scenario.parameters) * groups + 4) * 8
-    trajectory = rows * scenario.n_reports * 8
+    measure_series, measure_rows = _measure_sizes(scenario, groups)
+    per_member = (3 * rows + METRICS_PER_MEASURE_ROW * measure_rows
+                  + len(scenario.parameters) * groups + 4) * 8
+    trajectory = (rows * scenario.n_reports + measure_series) * 8
     kept = 1.0
     if not scenario.output.keep_members and members > KEPT_WHOLE_MEMBERS:
         kept = (KEPT_WHOLE_MEMBERS + CANDIDATE_SHARE * (members - KEPT_WHOLE_MEMBERS)) / members
@@ -121,6 +128,20 @@ def estimate(scenario: Scenario, members: int | None = None) -> Estimate:
         driver_bytes=count * per_member,
         work_bytes=count * (per_member + kept * trajectory),
         file_bytes=count * (per_member + (trajectory if scenario.output.keep_members else 0)))
+
+
+def _measure_sizes(scenario: Scenario, groups: int) -> tuple[int, int]:
+    """The values of one member's measure series (every row, every reported time or
+    window) and the measures' rows: ``groups = "each"`` gives a row per group, a sum or
+    a list of groups one row."""
+    series = rows = 0
+    for measure in scenario.measures:
+        count = groups if measure.groups == "each" else 1
+        times = (scenario.n_reports if measure.flow is None
+                 else int(scenario.days / measure.window))
+        rows += count
+        series += count * times
+    return series, rows
 
 
 def refuse_infeasible(scenario: Scenario, figures: Estimate, output: Path | None = None,
