@@ -59,14 +59,14 @@ def test_profile_fields(tmp_path: Path) -> None:
         directives=("--constraint=skylake", "--qos=low"),
         setup=("module load python/3.11", "source /opt/venvs/ens/bin/activate"))
     assert profile.walltime_seconds == 5400
-    assert profile.max_workers == 12
+    assert profile.max_workers == 12 and profile.max_threads == 12
 
 
 def test_adaptive_profile(tmp_path: Path) -> None:
     text = SLURM_PROFILE.replace("jobs = 3", "adapt = { minimum = 1, maximum = 10 }")
     profile = load_profile(write(tmp_path, "site.toml", text))
     assert profile.jobs is None and profile.adapt == (1, 10)
-    assert profile.max_workers == 40
+    assert profile.max_workers == 40 and profile.max_threads == 40
 
 
 @pytest.mark.parametrize(("change", "key", "value", "hint"), [

@@ -253,3 +253,31 @@ def test_the_collector_is_set_back_after_a_run_even_a_failed_one():
             assert gc.get_threshold() == (execute.COLLECTION_THRESHOLD, *before[1:])
             raise RuntimeError("an illustrative failure")
     assert gc.get_threshold() == before and gc.get_freeze_count() == 0
+
+
+def test_an_adaptive_cluster_sees_the_backlog_it_may_grow_to(tmp_path: Path,
+                                                             monkeypatch) -> None:
+    """dask's adaptive loop asks for worker jobs from the tasks the scheduler holds
+    (``distributed.deploy.adaptive``), so with a batch profile that may grow to more
+    threads than have connected, the driver submits for the threads it may grow to: 4
+    here, 3 tasks each, against 3 for the one thread connected."""
+    scenario = load_scenario(write_scenario(tmp_path, members=40))
+    models = [lower_model(scenario, variant) for variant in scenario.variants]
+    with open_client(workers=1) as client:
+        assert sum(client.nthreads().values()) == 1
+        submitted = []
+        real_submit = client.submit
+
+        def counting_submit(*arguments, **options):
+            submitted.append(options["key"])
+            return real_submit(*arguments, **options)
+
+        monkeypatch.setattr(client, "submit", counting_submit)
+        for variant, (capacity, most) in enumerate(((0, 4), (4, 13))):
+            submitted.clear()
+            keys = [(variant, begin, begin + 2) for begin in range(0, 40, 2)]
+            outputs = executors.on_cluster(client, scenario, models, keys, "numpy",
+                                           capacity=capacity)
+            next(outputs)
+            assert len(submitted) == most, capacity
+            outputs.close()

@@ -109,6 +109,11 @@ class ClusterProfile:
         return self.processes * (self.adapt[1] if self.adapt else self.jobs)
 
     @property
+    def max_threads(self) -> int:
+        """Most worker threads the profile runs at once (every core of every job)."""
+        return self.cores * (self.adapt[1] if self.adapt else self.jobs)
+
+    @property
     def walltime_seconds(self) -> int:
         """The walltime in seconds."""
         return _seconds(self.walltime)

@@ -198,7 +198,7 @@ def _compute_and_save(journal: WorkJournal, scenario: Scenario,
         if dashboard:
             progress.note(f"dask dashboard at {dashboard}")
         save_all(journal, on_cluster(client, scenario, models, keys, backend, journal,
-                                     candidates), progress, candidates)
+                                     candidates, where.capacity()), progress, candidates)
 
 
 def save_all(journal: WorkJournal, outputs: Generator[Finished, None, None],

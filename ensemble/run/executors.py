@@ -25,14 +25,23 @@ from ensemble.run.clusters import ClusterProfile
 from ensemble.run.journal import WorkJournal
 from ensemble.run.listening import served_dashboard
 from ensemble.run.local import LocalStart, available_cores
-from ensemble.run.tasks import (ChunkOutput, ChunkSaved, compute_and_save_chunk,
-                                compute_chunk, thread_buffers)
+from ensemble.run.tasks import (ChunkOutput, ChunkSaved, Uniforms, chunk_uniforms,
+                                compute_and_save_chunk, compute_chunk, thread_buffers)
 from ensemble.run.worker_jobs import jobqueue_cluster
 from ensemble.scenario.schema import Scenario
 
 IN_FLIGHT_PER_THREAD = 3
 """Tasks queued or running per worker thread: enough to keep every worker busy while the
 driver saves a finished chunk, few enough that unsaved results stay bounded."""
+
+
+def in_flight_window(threads: int, capacity: int = 0) -> int:
+    """Tasks the driver keeps submitted: :data:`IN_FLIGHT_PER_THREAD` per worker thread,
+    counting the threads the cluster may still grow to (``capacity``, an adaptive batch
+    profile's largest), so that the scheduler sees the backlog that makes its adaptive
+    loop ask for more worker jobs; at least 2."""
+    return max(2, IN_FLIGHT_PER_THREAD * max(threads, capacity))
+
 
 Finished = ChunkOutput | ChunkSaved
 """A finished chunk: saved already, or still to be saved by the driver."""
@@ -84,6 +93,11 @@ class Workers:
         scheduler, for a scheduler the run starts only when asked for."""
         return self.address is not None or self.dashboard is not None or (
             self.started is not None and self.started.dashboard is not None)
+
+    def capacity(self) -> int:
+        """Worker threads a batch profile may grow to (0 elsewhere: the threads are
+        those already connected)."""
+        return self.cluster.max_threads if self.cluster is not None else 0
 
     def client(self) -> AbstractContextManager[Client]:
         """:func:`open_client` for these workers."""
@@ -156,13 +170,16 @@ def chunk_failed(scenario: Scenario, key: ChunkKey, error: BaseException) -> Run
 
 
 def in_process(scenario: Scenario, models: Sequence[LoweredModel],
-               keys: Sequence[ChunkKey], backend: str) -> Generator[ChunkOutput, None, None]:
-    """Compute the chunks one after another in this process, without dask.distributed;
-    each output is valid until the next is asked for (they share buffers)."""
+               keys: Sequence[ChunkKey], backend: str, uniforms: Uniforms | None = None
+               ) -> Generator[ChunkOutput, None, None]:
+    """Compute the chunks one after another in this process, without dask.distributed
+    (with ``uniforms``, every member's draws given, :func:`compute_chunk`); each output
+    is valid until the next is asked for (they share buffers)."""
     buffers = thread_buffers(backend)
     for key in keys:
         try:
-            output = compute_chunk(scenario, models[key[0]], key, backend, None, buffers)
+            output = compute_chunk(scenario, models[key[0]], key, backend, None, buffers,
+                                   chunk_uniforms(uniforms, key))
         except Exception as error:
             raise chunk_failed(scenario, key, error) from error
         yield output
@@ -170,15 +187,18 @@ def in_process(scenario: Scenario, models: Sequence[LoweredModel],
 
 def on_cluster(client: Client, scenario: Scenario, models: Sequence[LoweredModel],
                keys: Sequence[ChunkKey], backend: str, journal: WorkJournal | None = None,
-               candidates: bool = False) -> Generator[Finished, None, None]:
+               candidates: bool = False, capacity: int = 0,
+               uniforms: Uniforms | None = None) -> Generator[Finished, None, None]:
     """Compute the chunks on ``client``'s workers and yield them as they finish.
 
     With ``journal``, a worker that sees its directory (:meth:`WorkJournal.mark`, checked
     by every task) saves its chunk there itself (as candidates for the quantiles with
-    ``candidates``) and yields only the key.  At most :data:`IN_FLIGHT_PER_THREAD` tasks
-    per worker thread are submitted at a time (re-counted as workers come and go).  A
-    task whose worker dies is rerun elsewhere by the scheduler; a task that raises, or
-    that keeps killing its workers, stops the run with :class:`RunFailed`.
+    ``candidates``) and yields only the key.  At most :func:`in_flight_window` tasks are
+    submitted at a time (re-counted as workers come and go; ``capacity`` is the worker
+    threads the cluster may grow to).  A task whose worker dies is rerun elsewhere by the
+    scheduler; a task that raises, or that keeps killing its workers, stops the run with
+    :class:`RunFailed`.  With ``uniforms`` every member's draws are given
+    (:func:`compute_chunk`), and each task carries its chunk's.
     """
     token = journal.mark() if journal is not None else None
     queue = iter(keys)
@@ -187,14 +207,15 @@ def on_cluster(client: Client, scenario: Scenario, models: Sequence[LoweredModel
 
     def submit(key: ChunkKey) -> Future:
         options = {"key": f"chunk-{key[0]}-{key[1]}-{key[2]}", "pure": False}
+        drawn = chunk_uniforms(uniforms, key)
         if journal is None:
             return client.submit(compute_chunk, scenario, models[key[0]], key, backend, 1,
-                                 **options)
+                                 uniforms=drawn, **options)
         return client.submit(compute_and_save_chunk, scenario, models[key[0]], key,
-                             journal, token, backend, 1, candidates, **options)
+                             journal, token, backend, 1, candidates, drawn, **options)
 
     def top_up() -> None:
-        window = max(2, IN_FLIGHT_PER_THREAD * sum(client.nthreads().values()))
+        window = in_flight_window(sum(client.nthreads().values()), capacity)
         while running.count() < window:
             key = next(queue, None)
             if key is None:
