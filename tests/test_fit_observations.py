@@ -15,6 +15,7 @@ from ensemble.errors import ScenarioError
 from ensemble.fit.likelihood import (negative_binomial_log_pmf, poisson_log_pmf,
                                      series_log_likelihood)
 from ensemble.fit.observations import scenario_observations
+from ensemble.scenario.load import load_scenario
 from support import load_text, run_cli
 
 COUNTS = np.array([0.0, 1.0, 7.0, 40.0, 250.0, 3000.0])
@@ -138,9 +139,8 @@ def test_bad_observations_are_refused_naming_the_key_or_line(tmp_path, change, c
                       for line in GOOD.splitlines())
     if change not in table:
         table += "\n" + change
-    scenario = _load(tmp_path, table, counts)
-    with pytest.raises(ScenarioError) as caught:
-        scenario_observations(scenario)
+    with pytest.raises(ScenarioError) as caught:     # the table's keys: when loading
+        scenario_observations(_load(tmp_path, table, counts))
     assert where in str(caught.value)
     assert ("cases.csv" in str(caught.value)) == where.startswith("line")
 
@@ -157,3 +157,45 @@ def test_check_refuses_bad_observations_with_exit_status_2(tmp_path):
     done = run_cli("check", "observed.toml", cwd=tmp_path)
     assert done.returncode == 2
     assert "cases.csv: line 2, date" in done.stderr
+
+
+def _fit_log_likelihood(scenario) -> np.ndarray:
+    """The fit's log-likelihood of a few fixed particles (normal scores of the drawn
+    columns, as the sampler moves them)."""
+    from ensemble.fit.engine import FitProblem
+
+    problem = FitProblem(scenario, "numpy", chunk=4)
+    z = np.linspace(-1.0, 1.0, 4 * problem.dimension).reshape(problem.dimension, 4)
+    return problem.log_likelihood(z)
+
+
+def test_set_reaches_the_observations_and_changes_the_likelihood(tmp_path):
+    (tmp_path / "cases.csv").write_text("date,value\n2027-03-10,4\n2027-03-24,31\n")
+    (tmp_path / "observed.toml").write_text(SCENARIO.format(observations=GOOD))
+    path = tmp_path / "observed.toml"
+    plain = load_scenario(path)
+    changed = load_scenario(path, settings=["observations[0].reporting=0.25"])
+    [series] = scenario_observations(changed)
+    assert (plain.observations[0].reporting, series.reporting) == (0.5, 0.25)
+    before, after = _fit_log_likelihood(plain), _fit_log_likelihood(changed)
+    assert np.all(np.isfinite(before)) and np.all(np.isfinite(after))
+    assert not np.any(before == after)
+    # the file edited instead gives the same likelihood, bit for bit
+    (tmp_path / "edited.toml").write_text(
+        SCENARIO.format(observations=GOOD.replace("reporting = 0.5", "reporting = 0.25")))
+    np.testing.assert_array_equal(_fit_log_likelihood(load_scenario(tmp_path /
+                                                                    "edited.toml")), after)
+
+
+@pytest.mark.parametrize("setting, key", [
+    ("observations[0].reporting=1.5", "observations[0].reporting"),
+    ('observations[0].distribution="binomial"', "observations[0].distribution"),
+    ('observations[0].measure="deaths"', "observations[0].measure"),
+    ("observations[0].dispersion=-2", "observations[0].dispersion"),
+])
+def test_a_bad_set_of_an_observation_exits_2_naming_the_key(tmp_path, setting, key):
+    (tmp_path / "cases.csv").write_text("date,value\n2027-03-10,4\n")
+    (tmp_path / "observed.toml").write_text(SCENARIO.format(observations=GOOD))
+    done = run_cli("check", "observed.toml", "--set", setting, cwd=tmp_path)
+    assert done.returncode == 2
+    assert key in done.stderr

@@ -15,8 +15,6 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-DISTRIBUTIONS = ("poisson", "negative-binomial")
-"""The distributions an observed series may follow."""
 
 def poisson_log_pmf(counts: np.ndarray, mean: np.ndarray) -> np.ndarray:
     """log P(Y = counts) for Y ~ Poisson(mean), elementwise; minus infinity where the

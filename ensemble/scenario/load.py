@@ -32,6 +32,7 @@ from ensemble.errors import ScenarioError
 from ensemble.methods import METHODS
 from ensemble.scenario.initial import read_initial
 from ensemble.scenario.measures import read_measures
+from ensemble.scenario.observations import read_observations
 from ensemble.scenario.overrides import apply_overrides
 from ensemble.scenario.parameters import ParameterReader, Resolved
 from ensemble.scenario.reader import MISSING, Reader, time_text
@@ -127,6 +128,13 @@ def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
         measures = reader.attempt(read_measures, reader, data.get("measures", []),
                                   structure.compartments, structure.groups, parts.flows,
                                   solver.report_every, head.days)
+    observations = None
+    if measures is not None and parts.resolved is not None:
+        observations = reader.attempt(read_observations, reader,
+                                      data.get("observations", []), measures,
+                                      structure.groups, parts.resolved.parameters,
+                                      parts.variants or (), head.days,
+                                      parts.resolved.time_varying)
     reader.raise_collected()
     assert head and solver and structure and parts and parts.complete
     assert output and compute and sampling
@@ -136,7 +144,8 @@ def validate(data: dict[str, Any], file: str, text: str = "") -> Scenario:
         model=parts.model(structure), parameters=MappingProxyType(parts.resolved.parameters),
         sampling=sampling, variants=parts.variants,  # type: ignore[arg-type]
         solver=solver.solver(structure.population), output=output, compute=compute,
-        source=Source(file, text), measures=measures or ())
+        source=Source(file, text), measures=measures or (),
+        observations=observations or ())
 
 
 @dataclass(frozen=True)

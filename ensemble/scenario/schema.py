@@ -293,6 +293,28 @@ class Measure:
 
 
 @dataclass(frozen=True)
+class Observation:
+    """One observed series of a measure (``[[observations]]`` in the project's
+    reference, ``ensemble/scenario/reference.md``), checked against the scenario; the
+    counts file itself is read where the counts are used.
+
+    ``file`` is the counts file as written (relative to the scenario file);
+    ``distribution`` a name of
+    :data:`ensemble.scenario.observations.OBSERVATION_DISTRIBUTIONS`; ``dispersion`` (the
+    negative binomial's k, None for a Poisson series) and ``reporting`` (the fraction
+    reported) are numbers or the names of scalar parameters; ``delay`` is in days.
+    """
+
+    key: str
+    file: str
+    measure: str
+    distribution: str
+    dispersion: float | str | None
+    reporting: float | str
+    delay: float = 0.0
+
+
+@dataclass(frozen=True)
 class Compute:
     """How to distribute the work; none of it changes a single number of the result."""
 
@@ -336,6 +358,7 @@ class Scenario:
     compute: Compute
     source: Source
     measures: tuple[Measure, ...] = ()
+    observations: tuple[Observation, ...] = ()
 
     @property
     def n_reports(self) -> int:
