@@ -7,11 +7,13 @@ construction follows van den Driessche & Watmough 2002 (Math. Biosci. 180:29-48)
 
 from __future__ import annotations
 
+import pickle
+
 import numpy as np
 import pytest
 
 from ensemble import api
-from ensemble.model.reproduction import infected_compartments
+from ensemble.model.reproduction import NextGeneration, infected_compartments
 from support import load_text, model_and_design
 
 MEMBERS = 6
@@ -256,3 +258,23 @@ def test_the_result_holds_each_members_r0_and_its_quantiles(tmp_path) -> None:
 
     row = next(line for line in summary_text(dataset).splitlines() if "R0" in line)
     assert f"{np.quantile(values, 0.5):.3g}" in row
+
+
+def test_the_machinery_is_built_once_per_model_and_told_apart_by_its_rates(tmp_path) -> None:
+    """A copy of a model (as a chunk's task gets one) finds the machinery already built;
+    a model whose rates differ (here gamma * I against 2 * gamma * I) gets its own, and
+    its R0 follows its own closed form R0 = beta / gamma' (Hethcote 2000, SIAM Review
+    42:599-653, sec. 2), computed after the first model's."""
+    first = load_text(tmp_path, seir_text())
+    model, _ = model_and_design(first)
+    infected = infected_compartments(first.model).compartments
+    built = NextGeneration.for_model(model, infected)
+    assert NextGeneration.for_model(pickle.loads(pickle.dumps(model)), infected) is built
+    faster = load_text(tmp_path, seir_text().replace('rate = "gamma * I"',
+                                                     'rate = "2 * gamma * I"'))
+    other, _ = model_and_design(faster)
+    assert NextGeneration.for_model(other, infected) is not built
+    r0, drawn = members_r0(faster)
+    susceptible_share = (10000 - 300) / 10000
+    np.testing.assert_allclose(r0, drawn["beta"] / (2 * drawn["gamma"]) * susceptible_share,
+                               rtol=1e-13)

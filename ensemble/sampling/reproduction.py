@@ -32,7 +32,8 @@ def reproduction_numbers(scenario: Scenario, model: LoweredModel, initial: np.nd
         return np.full(n_members, np.nan)
     with np.errstate(all="ignore"):
         start = disease_free_start(scenario, model, initial, infected.compartments)
-        values = NextGeneration(model, infected.compartments).basic_reproduction_number(
+        next_generation = NextGeneration.for_model(model, infected.compartments)
+        values = next_generation.basic_reproduction_number(
             start, parameters, schedules_at_start(model, schedule_values, n_members))
     values[invalid_start] = np.nan
     return values
