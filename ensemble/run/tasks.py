@@ -11,6 +11,7 @@ engine submits these functions to dask workers, and :func:`ensemble.simulate` ca
 from __future__ import annotations
 
 import copyreg
+import dataclasses
 import threading
 import types
 from collections.abc import Mapping
@@ -25,6 +26,7 @@ from ensemble.model.lower import LoweredModel
 from ensemble.records import ChunkKey, ChunkResult
 from ensemble.run.journal import WorkJournal
 from ensemble.sampling import make_design
+from ensemble.sampling.design import design_from_uniforms
 from ensemble.scenario.schema import Scenario
 
 DEFAULT_BACKEND = "compiled"
@@ -49,6 +51,21 @@ def _reduce_mappingproxy(proxy: types.MappingProxyType) -> tuple:
 copyreg.pickle(types.MappingProxyType, _reduce_mappingproxy)
 
 
+Uniforms = Mapping[tuple[str, int], np.ndarray]
+"""The uniform draws of a chunk's members: each drawn column (parameter, element) of
+:func:`~ensemble.sampling.uniform.uncertain_columns` -> (members,) values in (0, 1)."""
+
+
+def chunk_uniforms(uniforms: Uniforms | None, key: ChunkKey) -> Uniforms | None:
+    """The draws of chunk ``key``'s members, out of the draws of every member of a
+    variant (the same for every variant); None stays None."""
+    if uniforms is None:
+        return None
+    _, start, end = key
+    return {column: np.ascontiguousarray(values[start:end])
+            for column, values in uniforms.items()}
+
+
 @dataclass(frozen=True)
 class ChunkOutput:
     """What one task hands back to the driver."""
@@ -67,7 +84,8 @@ class ChunkSaved:
 
 def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
                   backend: str = DEFAULT_BACKEND,
-                  kernel_threads: int | None = None, buffers=None) -> ChunkOutput:
+                  kernel_threads: int | None = None, buffers=None,
+                  uniforms: Uniforms | None = None) -> ChunkOutput:
     """Draw and integrate members ``key[1] .. key[2] - 1`` of variant ``key[0]``.
 
     A pure function of its arguments: the same key gives the same bits in any process
@@ -77,7 +95,9 @@ def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
     thread (1 in a dask worker, whose siblings already use the other cores); None leaves
     numba's default.  With ``buffers`` (see
     :func:`~ensemble.integrate.chunk.integrate_chunk`) the trajectories are views of
-    them, to be used before the next chunk.
+    them, to be used before the next chunk.  With ``uniforms``, the chunk's members take
+    those uniform draws instead of their own (the posterior members of a fit,
+    :func:`~ensemble.sampling.design.design_from_uniforms`).
     """
     if kernel_threads is not None and backend == "compiled":
         from ensemble.integrate.kernels.launch import set_kernel_threads
@@ -85,7 +105,11 @@ def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
         set_kernel_threads(kernel_threads)
     variant, start, end = key
     member_index = np.arange(start, end, dtype=np.int64)
-    design = make_design(scenario, scenario.variants[variant], model, member_index)
+    if uniforms is None:
+        design = make_design(scenario, scenario.variants[variant], model, member_index)
+    else:
+        drawn = design_from_uniforms(scenario, scenario.variants[variant], model, uniforms)
+        design = dataclasses.replace(drawn, member_index=member_index)
     result = integrate_chunk(model, design, scenario.solver, scenario.n_reports, backend,
                              buffers)
     return ChunkOutput(key, result, dict(design.reported))
@@ -94,16 +118,18 @@ def compute_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
 def compute_and_save_chunk(scenario: Scenario, model: LoweredModel, key: ChunkKey,
                            journal: WorkJournal, token: str,
                            backend: str = DEFAULT_BACKEND,
-                           kernel_threads: int | None = None, candidates: bool = False
-                           ) -> ChunkOutput | ChunkSaved:
-    """:func:`compute_chunk`, then save the chunk into ``journal`` here (as candidates
-    for the quantiles when ``candidates`` and its pilot is in, :meth:`WorkJournal.save`)
-    when this process sees the journal's directory (it reads back ``token``, from
-    :meth:`WorkJournal.mark`), else hand the whole chunk back for the driver to save."""
+                           kernel_threads: int | None = None, candidates: bool = False,
+                           uniforms: Uniforms | None = None) -> ChunkOutput | ChunkSaved:
+    """:func:`compute_chunk` (with ``uniforms``, of members given their draws), then save
+    the chunk into ``journal`` here (as candidates for the quantiles when ``candidates``
+    and its pilot is in, :meth:`WorkJournal.save`) when this process sees the journal's
+    directory (it reads back ``token``, from :meth:`WorkJournal.mark`), else hand the
+    whole chunk back for the driver to save."""
     if not journal.shares_directory(token):
-        return compute_chunk(scenario, model, key, backend, kernel_threads)
+        return compute_chunk(scenario, model, key, backend, kernel_threads,
+                             uniforms=uniforms)
     output = compute_chunk(scenario, model, key, backend, kernel_threads,
-                           thread_buffers(backend))
+                           thread_buffers(backend), uniforms)
     journal.save(output.key, output.result, output.reported, candidates)
     return ChunkSaved(key)
 
