@@ -8,6 +8,7 @@ CF conventions 1.10, sec. 3.5); their meanings are documented in the project's r
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -45,6 +46,9 @@ class ChunkResult:
     basic_reproduction_number : (M,) float64 R0 by the next-generation matrix (NaN where
         undefined).
     status : (M,) uint8 bit flags.
+    reported : the members' parameters constant in time (``Design.reported``: name ->
+        (M,) or (n_groups, M)), which the series as observed with noise use for their
+        reporting fraction and dispersion; None when not at hand.
     """
 
     members: np.ndarray
@@ -54,3 +58,4 @@ class ChunkResult:
     observed_order: np.ndarray
     basic_reproduction_number: np.ndarray
     status: np.ndarray
+    reported: Mapping[str, np.ndarray] | None = None

@@ -2,9 +2,12 @@
 and horizon, by the weighted interval score and the coverage of the central intervals
 (:mod:`ensemble.fit.score`).
 
-The projection scored is a flow measure's quantiles (``measure_<name>_quantile``, one
-value per window, the window's end as its time) or, for a result without measures, a
-flow's counts per report interval (``flow_count_quantile``). Each observed date must be
+The projection scored is a flow measure's predictive quantiles, those of the counts as
+they would be observed (``measure_<name>_as_observed_quantile``, observation noise
+included: :mod:`ensemble.output.as_observed`) when the result has them (its scenario
+observes the measure), else the measure's own (``measure_<name>_quantile``), one value
+per window, the window's end as its time; or, for a result without measures, a flow's
+counts per report interval (``flow_count_quantile``). Each observed date must be
 one of those times; the horizon of a date is its number of days after ``after`` (by
 default the last day a fit saw, for the result of ``ensemble fit``, else the projection's
 start).
@@ -22,6 +25,7 @@ import xarray as xr
 from ensemble.errors import UsageError
 from ensemble.fit.counts_file import ObservedCounts
 from ensemble.fit.score import interval_coverage, weighted_interval_score
+from ensemble.output.as_observed import SUFFIX as AS_OBSERVED
 
 
 @dataclass(frozen=True)
@@ -63,7 +67,8 @@ def _projection(dataset: xr.Dataset, measure: str | None, flow: str | None,
                       if re.fullmatch(r"measure_\w+_quantile", name)
                       and dataset[name].dims[-1] != "time"
                       and not re.search(r"_(peak_value|peak_time|total|days_above)"
-                                        r"(_difference)?_quantile$", name))
+                                        r"(_difference)?_quantile$", name)
+                      and not name.endswith(f"{AS_OBSERVED}_quantile"))
     if flow is not None:
         names = [str(v) for v in dataset["flow_name"].values]
         if flow not in names:
@@ -79,11 +84,15 @@ def _projection(dataset: xr.Dataset, measure: str | None, flow: str | None,
     if measure not in measures:
         raise UsageError("--measure", "", measure, "the result has no flow measure of that name",
                          f"flow measures in the file: {', '.join(measures) or 'none'}")
+    predictive = f"measure_{measure}{AS_OBSERVED}_quantile"
+    if predictive in dataset:
+        return f"measure {measure} as observed (observation noise included)", \
+            dataset[predictive]
     array = dataset[f"measure_{measure}_quantile"]
     if "group" in array.dims:
         raise UsageError("--measure", "", measure,
                          "the measure is given per group; score a measure over all groups")
-    return f"measure {measure}", array
+    return f"measure {measure} (without observation noise)", array
 
 
 def score_result(dataset: xr.Dataset, observed: ObservedCounts, file: str, *,

@@ -121,4 +121,4 @@ def integrate_chunk(model: LoweredModel, design: Design, solver: Solver, n_repor
                        flow_count=model.reported_flow_count(result.flow_count),
                        step_error=error, observed_order=order,
                        basic_reproduction_number=design.basic_reproduction_number,
-                       status=status)
+                       status=status, reported=design.reported)

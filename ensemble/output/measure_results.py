@@ -20,9 +20,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ensemble.output.as_observed import SUFFIX, first_observations, long_name
 from ensemble.output.layout import ResultLayout
 from ensemble.output.measures import PREFIX, MeasureShape, measure_shapes
 from ensemble.output.quantiles import in_summary, member_quantiles
+from ensemble.scenario.schema import Observation
 
 BOUND_DIM = "bound"
 """The dimension of a window's two bounds (its first and last day)."""
@@ -97,6 +99,7 @@ def measure_variables(layout: ResultLayout, time_attrs: Mapping[str, str]
     """
     found: list[MeasureVariable] = []
     has_pairs = bool(pairs(layout))
+    observed = first_observations(layout)
     for shape in measure_shapes(layout):
         bounds = f"{shape.time_dim}_bounds"
         if shape.bounds is not None and all(v.name != bounds for v in found):
@@ -117,6 +120,8 @@ def measure_variables(layout: ResultLayout, time_attrs: Mapping[str, str]
         found.append(MeasureVariable(
             f"{stem}_quantile", shape, ("variant", "quantile", *rows, shape.time_dim),
             np.float64, {**series, "long_name": f"quantile over members of the {what}"}))
+        if measure.name in observed:
+            found.extend(_as_observed_variables(layout, shape, observed[measure.name]))
         for metric in _metrics(shape):
             units = ({"units": measure.units} if metric not in ("peak_time", "days_above")
                      else dict(time_attrs) if metric == "peak_time" else {"units": "days"})
@@ -152,6 +157,26 @@ def measure_variables(layout: ResultLayout, time_attrs: Mapping[str, str]
                 {"long_name": f"quantile over members of the {long_name}",
                  "units": units}))
     return tuple(found)
+
+
+def _as_observed_variables(layout: ResultLayout, shape: MeasureShape,
+                           observation: Observation) -> list[MeasureVariable]:
+    """The variables of an observed measure's series as observed (:mod:`.as_observed`):
+    every member's (with kept members) and its quantiles, the predictive intervals of
+    the counts."""
+    stem = PREFIX + shape.name + SUFFIX
+    attrs: dict[str, object] = {"long_name": long_name(observation), "units": "1"}
+    if shape.is_flow:
+        attrs["cell_methods"] = f"{shape.time_dim}: sum"
+    found = []
+    if layout.keep_members:
+        found.append(MeasureVariable(stem, shape, ("variant", "member", shape.time_dim),
+                                     np.float64, attrs))
+    found.append(MeasureVariable(
+        f"{stem}_quantile", shape, ("variant", "quantile", shape.time_dim), np.float64,
+        {**attrs, "long_name": f"quantile over members of the {attrs['long_name']}: "
+                               "predictive intervals of the observed counts"}))
+    return found
 
 
 def _metrics(shape: MeasureShape) -> tuple[str, ...]:

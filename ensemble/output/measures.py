@@ -29,10 +29,11 @@ import numpy as np
 from ensemble.model.ir import StateRef
 from ensemble.model.lowering import ExpressionLowering, Value, Vector
 from ensemble.model.numpy_program import NumpyProgram
+from ensemble.output.as_observed import SUFFIX, as_observed, first_observations, long_name
 from ensemble.output.layout import ResultLayout
 from ensemble.output.variables import TRAJECTORIES, TrajectoryVariable
 from ensemble.records import ChunkResult
-from ensemble.scenario.schema import Measure
+from ensemble.scenario.schema import Measure, Observation
 
 PREFIX = "measure_"
 """Every result variable of a measure is named ``measure_<name>...``."""
@@ -207,16 +208,42 @@ class MeasureTrajectory(TrajectoryVariable):
             variable.name: variable.values(result) for variable in TRAJECTORIES})
 
 
+@dataclass(frozen=True)
+class AsObservedTrajectory(MeasureTrajectory):
+    """An observed measure's series as it would be observed (:mod:`.as_observed`):
+    (members, 1, times) of a chunk, the measure's times.
+
+    Attributes
+    ----------
+    observation : the ``[[observations]]`` table whose distribution it follows.
+    """
+
+    observation: Observation | None = None
+
+    def values(self, result: ChunkResult) -> np.ndarray:
+        """The (members, 1, times) series as observed of a chunk of members."""
+        return as_observed(self.observation, self.layout.scenario.seed,
+                           super().values(result), result)
+
+
 def measure_trajectories(layout: ResultLayout) -> tuple[MeasureTrajectory, ...]:
     """One :class:`MeasureTrajectory` per measure of the layout's scenario, in file
-    order."""
+    order, then one :class:`AsObservedTrajectory` per observed measure."""
+    shapes = measure_shapes(layout)
+    observed = first_observations(layout)
     return tuple(
         MeasureTrajectory(name=PREFIX + shape.name, rows="measure", source="state"
                           if shape.measure.flow is None else "flow_count",
                           long_name=shape.measure.description or shape.name,
                           units=shape.measure.units, row_total=len(shape.group_rows),
                           time_total=len(shape.times), layout=layout, shape=shape)
-        for shape in measure_shapes(layout))
+        for shape in shapes) + tuple(
+        AsObservedTrajectory(name=PREFIX + shape.name + SUFFIX, rows="measure",
+                             source="state" if shape.measure.flow is None else "flow_count",
+                             long_name=long_name(observed[shape.name]), units="1",
+                             row_total=1, time_total=len(shape.times), layout=layout,
+                             shape=shape, observation=observed[shape.name])
+        for shape in shapes if shape.name in observed)
 
 
 def trajectory_variables(layout: ResultLayout) -> tuple[TrajectoryVariable, ...]:
@@ -240,10 +267,15 @@ def find_trajectory(layout: ResultLayout, name: str) -> TrajectoryVariable:
 
 def chunk_trajectories(layout: ResultLayout, result: ChunkResult) -> dict[str, np.ndarray]:
     """Every trajectory variable's (members, rows, times) values of a chunk, each
-    measure computed once from the chunk's ``state`` and ``flow_count``."""
+    measure computed once from the chunk's ``state`` and ``flow_count`` (and each
+    observed measure's series as observed from the measure's)."""
     values = {variable.name: variable.values(result) for variable in TRAJECTORIES}
     for shape in measure_shapes(layout):
         values[PREFIX + shape.name] = measure_series(layout, shape, values)
+    seed = layout.scenario.seed
+    for name, observation in first_observations(layout).items():
+        values[PREFIX + name + SUFFIX] = as_observed(observation, seed,
+                                                     values[PREFIX + name], result)
     return values
 
 

@@ -432,11 +432,11 @@ class WorkJournal:
         series = {variable.source: self.chunks.trajectory(key, variable.name)
                   for variable in TRAJECTORIES if variable.derive is None}
         with np.load(directory / MEMBER_FILE) as members:
+            reported = {name: members[f"param_{name}"].T for name in self.layout.parameters}
             result = ChunkResult(members=np.arange(key[1], key[2], dtype=np.int64),
                                  status=members["status"], **series,
                                  **{value.name: members[value.name]
-                                    for value in MEMBER_VALUES})
-            reported = {name: members[f"param_{name}"].T for name in self.layout.parameters}
+                                    for value in MEMBER_VALUES}, reported=reported)
         return result, reported
 
     # ------------------------------------------------------------------ finishing

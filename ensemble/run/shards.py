@@ -485,12 +485,12 @@ def _read_chunks(part: netCDF4.Dataset, info: PartInfo, layout: ResultLayout
         for first in range(start, end, block):
             last = min(first + block, end)
             rows = slice(first - start, last - start)
+            reported = {name: part[f"param_{name}"][variant, ..., rows]
+                        for name in layout.parameters}
             result = ChunkResult(
                 members=np.arange(first, last, dtype=np.int64),
                 **{variable.source: part[variable.source][variant, rows]
                    for variable in STORED},
                 **{name: part[name][variant, rows] for name in MEMBER_VALUE_NAMES},
-                status=part["status"][variant, rows])
-            reported = {name: part[f"param_{name}"][variant, ..., rows]
-                        for name in layout.parameters}
+                status=part["status"][variant, rows], reported=reported)
             yield (variant, first, last), result, reported

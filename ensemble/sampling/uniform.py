@@ -37,7 +37,7 @@ ColumnKey = tuple[str, int]
 """(parameter name, element): element g of a per-group parameter, 0 for a scalar."""
 
 _STREAM_TAGS = {"random": 1, "latin-hypercube-permutation": 2, "latin-hypercube-jitter": 3,
-                "sobol": 4}
+                "sobol": 4, "observation-noise": 5}
 """Separate the seed spaces of the methods' streams."""
 
 SOBOL_BITS = 32
@@ -93,6 +93,28 @@ def uniform_draws(scenario: Scenario, keys: Sequence[ColumnKey],
     if scenario.sampling == "sobol":
         return _sobol_columns(scenario.seed, uncertain_columns(scenario), keys, member_index)
     raise ValueError(f"unknown sampling method {scenario.sampling!r}")
+
+
+def observation_noise_draws(seed: int, series: str, count: int,
+                            member_index: np.ndarray) -> np.ndarray:
+    """Draws in (0, 1) that put observation noise on ``count`` values of the observed
+    series ``series`` (a measure's name) for each member of ``member_index``.
+
+    Value w of member i is output i of the PCG64 stream seeded by
+    ``SeedSequence([seed, tag, hash(series), w])``, reached with ``advance(i)``: it
+    depends on the seed, the series, w and i alone (not on the chunk, the sampling
+    method, the variant or the ensemble's size), so every variant's member i sees the
+    same noise (common random numbers).
+
+    Returns
+    -------
+    (M, count) float64 array.
+    """
+    member_index = np.asarray(member_index, dtype=np.int64)
+    out = np.empty((member_index.size, count))
+    for w in range(count):
+        out[:, w] = _stream_values(seed, "observation-noise", (series, w), member_index)
+    return out
 
 
 def _name_hash(name: str) -> int:
