@@ -18,8 +18,8 @@ inside the interval, how many fall below it, and how many are NaN
 (:func:`chunk_candidates`).
 
 Selection.  Summed over chunks, the counts place each interval in the order of all
-members; when both ranks of a quantile fall inside one interval, its candidates, sorted,
-hold the exact order statistics (:func:`select`).  A cell whose ranks the pilot missed is
+members; when both ranks of a quantile fall inside one interval, its candidates hold the
+exact order statistics, found by selection (:func:`select`, :mod:`.rank_select`).  A cell whose ranks the pilot missed is
 reported, and the caller computes it from whole trajectories.
 """
 
@@ -33,6 +33,7 @@ import numba
 import numpy as np
 
 from ensemble.output.quantiles import interpolate, linear_ranks
+from ensemble.output.rank_select import select_ranks_of_groups
 
 MARGIN_SD = 6.0
 """Half-width of a bracket in standard deviations of the pilot's binomial rank count."""
@@ -286,13 +287,15 @@ def order_statistics(parts: Sequence[Candidates], cells: slice, below: np.ndarra
                   else part.values[offsets[0]:offsets[-1]])
         _append_groups(values, offsets - offsets[0], cursor, out)
     rows, columns = np.nonzero(found)
-    groups = rows * intervals + interval[rows, columns]
-    for group in np.unique(groups):
-        out[starts[group]:starts[group + 1]].sort()
-    # the order statistic: group start + rank - values below the interval
+    chosen = interval[rows, columns]
+    groups = rows * intervals + chosen
+    # the order statistic's rank within its group: its rank - values below the interval
+    positions = ranks[rows, columns] - below[first + rows, chosen]
+    order = np.lexsort((positions, groups))
+    picked = np.empty(order.size)
+    select_ranks_of_groups(out, starts, groups[order], positions[order], picked)
     result = np.full(ranks.shape, np.nan)
-    result[rows, columns] = out[starts[groups] + ranks[rows, columns]
-                                - below[first + rows, interval[rows, columns]]]
+    result[rows[order], columns[order]] = picked
     return result, found
 
 
