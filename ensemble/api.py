@@ -354,10 +354,16 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
         output: str | os.PathLike[str] | None = None, particles: int = 2000,
         seed: int | None = None, backend: str | None = None, chunk: int | None = None,
         force: bool = False, resume: bool = False, workers: int | None = None,
-        report=None) -> Path:
+        address: str | None = None, cluster: ClusterProfile | str | None = None,
+        processes: bool = False, dashboard: bool | str = False,
+        report=None, note=None) -> Path:
     """Condition the scenario's ensemble on its ``[[observations]]`` by tempered
     sequential Monte Carlo and write a result file whose members are the posterior
     (equally weighted, with their log-likelihoods), projected for every variant.
+
+    Each round's likelihood and the projection are computed where :func:`run` computes
+    its chunks (``workers``, ``address``, ``cluster``, ``processes`` and ``dashboard`` as
+    for :func:`run`); the file is the same, bit for bit, wherever they are computed.
 
     Parameters
     ----------
@@ -366,28 +372,45 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     particles : particles of the sampler, the members of the result.
     seed : the sampler's seed (default the scenario's); the same seed gives the same bits.
     backend : ``"numpy"`` or ``"compiled"`` (default as for :func:`run`).
-    chunk : members integrated at once (default ``compute.chunk``, else 1000).
+    chunk : members integrated at once, one task each (default ``compute.chunk``, else
+        1000).
     force : replace an existing result file.
     resume : go on from the state an interrupted fit kept after its last round (in
         ``<output>.fit-partial``); the file is the same, bit for bit.
-    workers : threads integrating the chunks of each round's likelihood, and of the
-        projection, at once (default ``compute.workers``, else 1); the file is the same, bit for bit.
+    workers : workers on this machine (default: the file's, else one per core): threads
+        of this process, or worker processes with ``processes``; ``0`` computes
+        everything in this process, without dask.distributed.
+    address : a running dask scheduler to use instead of a local cluster.
+    cluster : a cluster profile (name or path; default the file's ``[compute] cluster``)
+        whose batch-system worker jobs do the work; ``"local"`` is this machine.
+    processes : local workers in processes of their own instead of threads.
+    dashboard : serve dask's dashboard from the scheduler the fit starts (``True`` on
+        the loopback address, or at ``"HOST:PORT"``); its address goes to ``note``.
     report : called after each round with its number and its
         :class:`ensemble.fit.smc.Round` (temperature, effective size, acceptance).
+    note : called with a line of information (the dashboard's address).
 
     Raises
     ------
     ensemble.errors.ScenarioError : bad observations (naming the key or the counts
         file's line), none, or no drawn parameter.
+    ensemble.errors.ProfileError : no such cluster profile, or an invalid one.
     ensemble.errors.ResultExists : the output exists and ``force`` is not set.
+    ensemble.errors.RunFailed : a chunk failed (exit 1).
     """
     from ensemble.errors import ResultExists
     from ensemble.fit.result import fit_and_write
     from ensemble.fit.smc import SamplerSettings
+    from ensemble.run.executors import Workers
+    from ensemble.run.listening import dashboard_at
+    from ensemble.run.local import LocalStart
     from ensemble.run.tasks import DEFAULT_BACKEND
 
     if not isinstance(scenario, Scenario):
         scenario = load_scenario(scenario)
+    profile = cluster if not isinstance(cluster, (str, type(None))) else cluster_profile(
+        cluster if cluster is not None else scenario.compute.cluster)
+    dashboard = dashboard_at(dashboard)
     default = Path(scenario.output.path)
     target = Path(output) if output is not None else default.with_name(
         f"{default.stem}-fit{default.suffix}")
@@ -396,9 +419,18 @@ def fit(scenario: Scenario | str | os.PathLike[str], *,
     target.parent.mkdir(parents=True, exist_ok=True)
     settings = SamplerSettings(particles=particles,
                                seed=scenario.seed if seed is None else seed)
-    fit_and_write(scenario, target, settings, backend=backend or DEFAULT_BACKEND,
-                  chunk=chunk or scenario.compute.chunk or 1000, resume=resume,
-                  workers=workers or scenario.compute.workers or 1, report=report)
+    local_workers = workers if workers is not None else scenario.compute.workers
+    address = address if address is not None else scenario.compute.address
+    started = (LocalStart(local_workers, processes, dashboard)
+               if local_workers != 0 and profile is None and address is None else None)
+    try:
+        fit_and_write(scenario, target, settings, backend=backend or DEFAULT_BACKEND,
+                      chunk=chunk or scenario.compute.chunk or 1000, resume=resume,
+                      where=Workers(local_workers, address, profile, started, processes,
+                                    dashboard), report=report, note=note)
+    finally:
+        if started is not None:
+            started.close()
     return target
 
 

@@ -78,6 +78,28 @@ ChunkSize = Annotated[Optional[int], typer.Option(
 BackendChoice = Annotated[Optional[Backend], typer.Option(
     "--backend", help="Integration backend (changes numbers at round-off level).")]
 Force = Annotated[bool, typer.Option("--force", help="Replace an existing result file.")]
+WorkerCount = Annotated[Optional[int], typer.Option(
+    "--workers", min=0,
+    help="Workers on this machine (default one per core): threads of this process, "
+         "or processes with --processes; 0: no dask, everything in this process.")]
+InProcesses = Annotated[bool, typer.Option(
+    "--processes",
+    help="Local workers in processes of their own (a worker that dies loses only its "
+         "task) instead of threads.")]
+Dashboard = Annotated[bool, typer.Option(
+    "--dashboard",
+    help="Serve dask's dashboard on this machine's loopback address (a free port) and "
+         "print its address; without it nothing is served.")]
+DashboardAddress = Annotated[Optional[str], typer.Option(
+    "--dashboard-address", metavar="HOST:PORT",
+    help="Serve the dashboard at HOST:PORT instead (implies --dashboard), e.g. "
+         "127.0.0.1:8787, or :8787 for every interface.")]
+SchedulerAddress = Annotated[Optional[str], typer.Option(
+    "--address", help="A running dask scheduler to use, e.g. tcp://host:8786.")]
+ClusterName = Annotated[Optional[str], typer.Option(
+    "--cluster",
+    help="Cluster profile (NAME in ./configs or ~/.config/ensemble/clusters, or a path) "
+         "whose batch jobs run the workers; 'local' is this machine.")]
 
 
 @app.command()
@@ -88,36 +110,18 @@ def run(
     seed: Seed = None,
     settings: Settings = None,
     chunk: ChunkSize = None,
-    workers: Annotated[Optional[int], typer.Option(
-        "--workers", min=0,
-        help="Workers on this machine (default one per core): threads of this process, "
-             "or processes with --processes; 0: no dask, everything in this process.")
-    ] = None,
-    processes: Annotated[bool, typer.Option(
-        "--processes",
-        help="Local workers in processes of their own (a worker that dies loses only its "
-             "task) instead of threads.")] = False,
-    dashboard: Annotated[bool, typer.Option(
-        "--dashboard",
-        help="Serve dask's dashboard on this machine's loopback address (a free port) and "
-             "print its address; without it nothing is served.")
-    ] = False,
-    dashboard_address: Annotated[Optional[str], typer.Option(
-        "--dashboard-address", metavar="HOST:PORT",
-        help="Serve the dashboard at HOST:PORT instead (implies --dashboard), e.g. "
-             "127.0.0.1:8787, or :8787 for every interface.")] = None,
-    address: Annotated[Optional[str], typer.Option(
-        "--address", help="A running dask scheduler to use, e.g. tcp://host:8786.")] = None,
+    workers: WorkerCount = None,
+    processes: InProcesses = False,
+    dashboard: Dashboard = False,
+    dashboard_address: DashboardAddress = None,
+    address: SchedulerAddress = None,
     resume: Annotated[bool, typer.Option(
         "--resume", help="Continue an interrupted run from <output>.partial.")] = False,
     force: Annotated[bool, typer.Option(
         "--force", help="Replace an existing result file, and discard the saved chunks of "
                         "an unfinished run in <output>.partial (kept otherwise).")] = False,
     backend: BackendChoice = None,
-    cluster: Annotated[Optional[str], typer.Option(
-        "--cluster",
-        help="Cluster profile (NAME in ./configs or ~/.config/ensemble/clusters, or a path) "
-             "whose batch jobs run the workers; 'local' is this machine.")] = None,
+    cluster: ClusterName = None,
     shard: Annotated[Optional[str], typer.Option(
         "--shard", metavar="I/N", callback=_shard_option,
         help="Run only shard I of N (0-based) into a part file for `ensemble merge`.")
@@ -303,13 +307,17 @@ def fit(
     force: Force = False,
     resume: Annotated[bool, typer.Option(
         "--resume", help="Go on from the last round an interrupted fit kept.")] = False,
-    workers: Annotated[Optional[int], typer.Option(
-        "--workers", min=1, help="Threads integrating the chunks of each round (and of "
-                                 "the projection) at once "
-                                 "(default: compute.workers, else 1).")] = None,
+    workers: WorkerCount = None,
+    processes: InProcesses = False,
+    dashboard: Dashboard = False,
+    dashboard_address: DashboardAddress = None,
+    address: SchedulerAddress = None,
+    cluster: ClusterName = None,
 ) -> None:
     """Fit SCENARIO's drawn parameters to its [[observations]] by tempered sequential
-    Monte Carlo and write the posterior members, projected for every variant."""
+    Monte Carlo and write the posterior members, projected for every variant; each
+    round's chunks and the projection's are computed where `ensemble run` computes its
+    own (--workers, --processes, --address, --cluster)."""
     from ensemble import api
 
     def report(number, done) -> None:
@@ -317,11 +325,16 @@ def fit(
                    f"{done.effective_size:.0f} of {particles}, acceptance "
                    f"{100 * done.acceptance:.0f}%")
 
+    _stop_on_signals()
+    loaded, profile = _loaded_for_run(scenario, None, None, settings or [], cluster,
+                                      address)
     with _reported():
-        loaded = api.load_scenario(scenario, settings=settings or [])
         path = api.fit(loaded, output=output, particles=particles, seed=seed,
                        backend=backend.value if backend else None, chunk=chunk,
-                       force=force, resume=resume, workers=workers, report=report)
+                       force=force, resume=resume, workers=workers, address=address,
+                       cluster=profile or "local", processes=processes,
+                       dashboard=dashboard_address or dashboard, report=report,
+                       note=lambda line: typer.echo(f"ensemble: {line}", err=True))
     typer.echo(f"result: {path} ({particles} posterior members per variant)")
     typer.echo(api.fit_summary(loaded, path), nl=False)
     typer.echo(CAUTION)

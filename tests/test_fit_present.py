@@ -124,29 +124,29 @@ def test_threads_and_a_resumed_projection_give_the_same_file(fitted, tmp_path,
                                                               monkeypatch):
     import xarray as xr
 
-    import ensemble.fit.result as fit_result
+    import ensemble.run.executors as executors
 
     arguments = dict(particles=60, backend="numpy", chunk=20)
     threaded = api.fit(fitted / "fitted.toml", output=tmp_path / "threaded.nc", workers=2,
                        **arguments)
-    projected = fit_result.posterior_chunk
+    projected = executors.compute_chunk
     calls: list[tuple[int, int, int]] = []
 
-    def stopping_after_two(problem, z, key):
+    def stopping_after_two(scenario, model, key, *rest):
         if len(calls) == 2 and not resumed:
             raise KeyboardInterrupt     # stands for a kill while the projection runs
         calls.append(key)
-        return projected(problem, z, key)
+        return projected(scenario, model, key, *rest)
 
-    monkeypatch.setattr(fit_result, "posterior_chunk", stopping_after_two)
+    monkeypatch.setattr(executors, "compute_chunk", stopping_after_two)
     resumed = False
     target = tmp_path / "resumed.nc"
     with pytest.raises(KeyboardInterrupt):
-        api.fit(fitted / "fitted.toml", output=target, **arguments)
+        api.fit(fitted / "fitted.toml", output=target, workers=0, **arguments)
     assert not target.exists()
     saved, calls[:] = list(calls), []
     resumed = True
-    api.fit(fitted / "fitted.toml", output=target, resume=True, **arguments)
+    api.fit(fitted / "fitted.toml", output=target, resume=True, workers=0, **arguments)
     # two variants of three chunks each: the two saved before the stop are not redone
     assert len(saved) == 2 and set(saved).isdisjoint(calls[:4]) and len(calls) >= 4
     assert not (tmp_path / "resumed.nc.fit-partial").exists()

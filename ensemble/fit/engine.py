@@ -4,20 +4,25 @@ chunks, and their measures are compared with the ``[[observations]]``.
 
 The fit uses the first variant (observations describe what already happened, before
 the variants part); the posterior members are then projected for every variant
-(``ensemble fit`` in the README), a chunk at a time (:func:`posterior_chunk`), so that
-the caller can save each chunk into a run's work journal instead of holding them all.
-With ``workers``, the chunks of a round's likelihood are integrated by that many threads;
-each chunk's numbers are those of one thread, so the log-likelihoods keep their bits.
+(``ensemble fit`` in the README) as a run's chunks are (:mod:`ensemble.fit.result`).
+
+A round's particles are split into chunks of the problem's size.  In this process they
+are integrated one after another (:meth:`FitProblem.log_likelihood`); on the run's dask
+workers (:class:`LikelihoodOnWorkers`) each chunk is one task, a pure function of the
+problem and the chunk's particles, gathered in chunk order: a chunk's numbers do not
+depend on where it was computed, so the log-likelihoods keep their bits whatever the
+workers, and a task whose worker dies is computed again elsewhere.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import hashlib
-from collections.abc import Iterator
-from concurrent.futures import ThreadPoolExecutor
+import itertools
+import uuid
 
 import numpy as np
+from distributed import Client, Future
 from scipy import special
 
 from ensemble.errors import ScenarioError
@@ -26,9 +31,11 @@ from ensemble.fit.observations import scenario_observations
 from ensemble.integrate.chunk import integrate_chunk
 from ensemble.output.layout import ResultLayout
 from ensemble.output.measures import measure_series, measure_shapes
-from ensemble.records import ChunkKey, ChunkResult
+from ensemble.records import ChunkKey
+from ensemble.run.executors import chunk_failed
 from ensemble.run.layout import lowered_models, result_layout
 from ensemble.run.plan import fingerprint
+from ensemble.run.tasks import Uniforms
 from ensemble.sampling.design import Design, design_from_uniforms
 from ensemble.sampling.uniform import uncertain_columns
 from ensemble.scenario.schema import Scenario
@@ -43,18 +50,16 @@ class FitProblem:
         drawn parameter.
     backend : the integration backend (``"numpy"`` or ``"compiled"``).
     chunk : members integrated at once (bounds memory; changes no number).
-    workers : threads integrating the chunks of a round at once (1: this thread).
 
     Raises
     ------
     ScenarioError : no observations, nothing drawn, or an observed measure per group.
     """
 
-    def __init__(self, scenario: Scenario, backend: str, chunk: int, workers: int = 1):
+    def __init__(self, scenario: Scenario, backend: str, chunk: int):
         self.scenario = scenario
         self.backend = backend
         self.chunk = chunk
-        self.workers = max(1, int(workers))
         self.series = scenario_observations(scenario)
         file = scenario.source.path
         if not self.series:
@@ -83,52 +88,41 @@ class FitProblem:
         """The number of coordinates of a particle: the scenario's drawn columns."""
         return len(self.columns)
 
-    def designs(self, z: np.ndarray, variant: int) -> Iterator[tuple[slice, Design]]:
-        """The designs of the particles ``z`` (dimension, particles) for ``variant``, a
-        chunk at a time: coordinate j through the normal CDF is column j's uniform draw
+    def uniforms(self, z: np.ndarray) -> Uniforms:
+        """The uniform draws of the particles ``z`` (dimension, particles): coordinate j
+        through the normal CDF is column j's draw
         (:func:`ensemble.fit.smc.parameters_from_normal`)."""
         uniform = special.ndtr(z)
-        for begin in range(0, z.shape[1], self.chunk):
-            part = slice(begin, min(begin + self.chunk, z.shape[1]))
-            draws = {key: uniform[j, part] for j, key in enumerate(self.columns)}
-            yield part, design_from_uniforms(self.scenario, self.scenario.variants[variant],
-                                             self.models[variant], draws)
+        return {key: uniform[j] for j, key in enumerate(self.columns)}
 
-    def keep_kernels_in_this_thread(self) -> None:
-        """Run the compiled kernels of this thread in it alone (a worker thread, whose
-        siblings use the other cores)."""
-        if self.backend == "compiled":
-            from ensemble.integrate.kernels.launch import set_kernel_threads
-
-            set_kernel_threads(1)
-
-    def integrate(self, design: Design, variant: int) -> ChunkResult:
-        """The chunk of ``design``'s members, as a run integrates it."""
-        return integrate_chunk(self.models[variant], design, self.scenario.solver,
-                               self.scenario.n_reports, self.backend)
+    def parts(self, particles: int) -> list[slice]:
+        """The chunks of ``particles`` particles, in order."""
+        return [slice(begin, min(begin + self.chunk, particles))
+                for begin in range(0, particles, self.chunk)]
 
     def log_likelihood(self, z: np.ndarray) -> np.ndarray:
         """(particles,) the log-likelihood of every observed series for each particle of
-        the first variant; minus infinity for a member with any status bit."""
+        the first variant, a chunk after another in this process; minus infinity for a
+        member with any status bit."""
         total = np.zeros(z.shape[1])
-        parts = self.designs(z, 0)
-        if self.workers == 1:
-            for part, design in parts:
-                total[part] = self._chunk_log_likelihood(design)
-            return total
-        with ThreadPoolExecutor(self.workers, "ensemble-fit") as pool:
-            running = [(part, pool.submit(self._chunk_log_likelihood, design, True))
-                       for part, design in parts]
-            for part, future in running:
-                total[part] = future.result()
+        for part in self.parts(z.shape[1]):
+            total[part] = self.chunk_log_likelihood(z[:, part])
         return total
 
-    def _chunk_log_likelihood(self, design: Design, one_thread: bool = False) -> np.ndarray:
-        """The log-likelihood of ``design``'s members (first variant); with
-        ``one_thread`` the compiled kernels stay in the calling thread (a worker)."""
-        if one_thread:
-            self.keep_kernels_in_this_thread()
-        result = self.integrate(design, 0)
+    def chunk_log_likelihood(self, z: np.ndarray, kernel_threads: int | None = None
+                             ) -> np.ndarray:
+        """The log-likelihood of the particles ``z`` of one chunk (first variant); a pure
+        function of the problem and ``z``.  ``kernel_threads`` sets the threads of the
+        compiled kernels in the calling thread (1 in a dask worker, whose siblings use
+        the other cores), as a run's tasks do."""
+        if kernel_threads is not None and self.backend == "compiled":
+            from ensemble.integrate.kernels.launch import set_kernel_threads
+
+            set_kernel_threads(kernel_threads)
+        design = design_from_uniforms(self.scenario, self.scenario.variants[0],
+                                      self.models[0], self.uniforms(z))
+        result = integrate_chunk(self.models[0], design, self.scenario.solver,
+                                 self.scenario.n_reports, self.backend)
         trajectories = {"state": result.state, "flow_count": result.flow_count}
         total = np.zeros(result.status.shape[0])
         for series, shape, where in zip(self.series, self._shapes, self._where):
@@ -138,6 +132,66 @@ class FitProblem:
                 _per_member(series.reporting, design),
                 _per_member(series.dispersion, design))
         return np.where(result.status != 0, -np.inf, total)
+
+
+def worker_chunk_log_likelihood(problem: FitProblem, z: np.ndarray) -> np.ndarray:
+    """One dask task: :meth:`FitProblem.chunk_log_likelihood` with the compiled kernels
+    kept in the worker thread."""
+    return problem.chunk_log_likelihood(z, kernel_threads=1)
+
+
+def _itself(problem: FitProblem) -> FitProblem:
+    """The problem, as the result of a task (see :class:`LikelihoodOnWorkers`)."""
+    return problem
+
+
+class LikelihoodOnWorkers:
+    """The log-likelihood of a round's particles, computed by ``client``'s workers.
+
+    The problem (scenario, lowered models, layout, observations) goes to the cluster
+    once, as the result of a task that returns it: the scheduler keeps that task, so a
+    worker that joins later fetches the problem from another, and if every worker that
+    held it dies the task is simply run again (data scattered to the workers would be
+    lost with them).  Each chunk's particles travel as a small array.
+    """
+
+    def __init__(self, client: Client, problem: FitProblem):
+        self.client = client
+        self.problem = problem
+        self._fit = uuid.uuid4().hex    # a scheduler may serve several drivers
+        self._calls = itertools.count()
+        self._held: Future = client.submit(_itself, problem, pure=False,
+                                           key=f"ensemble-fit-{self._fit}-problem")
+
+    def __call__(self, z: np.ndarray) -> np.ndarray:
+        """(particles,) as :meth:`FitProblem.log_likelihood` gives, bit for bit.
+
+        Raises
+        ------
+        ensemble.errors.RunFailed : a chunk's task failed (its own error, or it kept
+            killing its workers).
+        """
+        call = next(self._calls)
+        parts = self.problem.parts(z.shape[1])
+        futures = [self.client.submit(
+            worker_chunk_log_likelihood, self._held, np.ascontiguousarray(z[:, part]),
+            pure=False, key=f"ensemble-fit-{self._fit}-{call}-{part.start}")
+            for part in parts]
+        total = np.zeros(z.shape[1])
+        try:
+            for part, future in zip(parts, futures):
+                try:
+                    total[part] = future.result()
+                except Exception as error:  # the task's own error, or KilledWorker
+                    key: ChunkKey = (0, part.start, part.stop)
+                    raise chunk_failed(self.problem.scenario, key, error) from error
+        finally:
+            self.client.cancel(futures)
+        return total
+
+    def close(self) -> None:
+        """Let the cluster forget the problem."""
+        self._held.release()
 
 
 def _per_member(value: float | str | None, design: Design) -> np.ndarray | float | None:
@@ -161,18 +215,3 @@ def posterior_keys(problem: FitProblem, particles: int) -> list[ChunkKey]:
     return [(variant, begin, min(begin + problem.chunk, particles))
             for variant in range(len(problem.scenario.variants))
             for begin in range(0, particles, problem.chunk)]
-
-
-def posterior_chunk(problem: FitProblem, z: np.ndarray, key: ChunkKey
-                    ) -> tuple[ChunkResult, dict[str, np.ndarray]]:
-    """The chunk ``key`` (variant, first, end) of the posterior members ``z`` projected:
-    its result (members numbered as particles) and its members' reported values."""
-    variant, first, end = key
-    uniform = special.ndtr(z[:, first:end])
-    draws = {column: uniform[j] for j, column in enumerate(problem.columns)}
-    design = design_from_uniforms(problem.scenario, problem.scenario.variants[variant],
-                                  problem.models[variant], draws)
-    result = problem.integrate(design, variant)
-    members = np.arange(first, end, dtype=np.int64)
-    return dataclasses.replace(result, members=members), dict(design.reported)
-

@@ -7,33 +7,46 @@ The file is a result file as ``ensemble run`` writes it (the same variables, rea
 posterior particles, plus each member's log-likelihood and the rounds of the fit
 (``ensemble/scenario/reference.md``, the result of a fit).
 
-The posterior members are projected as a run's chunks are: each chunk is saved into a
-work journal (:class:`ensemble.run.journal.WorkJournal`, in
-``<output>.fit-partial/projection.nc.partial``) as soon as it is integrated, and the
-file is written from the saved chunks by the run's finish, block by block, so that
-memory does not grow with members times reported times; a resumed fit keeps the chunks
-already saved.  The fit's own variables are then added to that file, which is moved to
-``output`` last.
+Each round's likelihood and the projection are computed where a run's chunks are
+(:class:`ensemble.run.executors.Workers`): in this process, or on one dask client (a
+local cluster of threads or processes, a running scheduler, or batch-system worker jobs)
+opened once for the whole fit; the file is the same bit for bit wherever.
+
+The posterior members are projected as a run's chunks are
+(:mod:`ensemble.run.executors`, members given their uniform draws): each chunk is saved
+into a work journal (:class:`ensemble.run.journal.WorkJournal`, in
+``<output>.fit-partial/projection.nc.partial``) as soon as it is integrated, by the
+worker itself when it sees the directory, and the file is written from the saved chunks
+by the run's finish, block by block, so that memory does not grow with members times
+reported times; a resumed fit keeps the chunks already saved.  The fit's own variables
+are then added to that file, which is moved to ``output`` last.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import os
-from collections.abc import Callable, Iterator
-from concurrent.futures import ThreadPoolExecutor
+from collections.abc import Callable
+from contextlib import nullcontext
 from pathlib import Path
 
+import dask
 import numpy as np
 import xarray as xr
+from distributed import Client
 
 from ensemble.durable import fsync_directory
 from ensemble.fit.checkpoint import load_state, partial_directory, remove_state, save_state
-from ensemble.fit.engine import FitProblem, posterior_chunk, posterior_keys, posterior_layout
+from ensemble.fit.engine import (FitProblem, LikelihoodOnWorkers, posterior_keys,
+                                 posterior_layout)
 from ensemble.fit.parameters_text import prior_variables
 from ensemble.fit.smc import Posterior, Round, SamplerSettings, tempered_smc
 from ensemble.output.dataset import time_attrs
-from ensemble.records import ChunkKey, ChunkResult
-from ensemble.run.journal import Checkpoints, WorkJournal
+from ensemble.run.execute import save_all
+from ensemble.run.executors import Workers, dashboard_link, in_process, on_cluster
+from ensemble.run.journal import WorkJournal
+from ensemble.run.progress import Progress
+from ensemble.run.tasks import chunk_uniforms, compute_chunk
 from ensemble.scenario.schema import Scenario
 
 PROJECTION = "projection.nc"
@@ -41,64 +54,80 @@ PROJECTION = "projection.nc"
 
 
 def fit_and_write(scenario: Scenario, output: Path, settings: SamplerSettings, *,
-                  backend: str, chunk: int, resume: bool = False, workers: int = 1,
-                  report: Callable[[int, Round], None] | None = None) -> Posterior:
+                  backend: str, chunk: int, where: Workers, resume: bool = False,
+                  report: Callable[[int, Round], None] | None = None,
+                  note: Callable[[str], None] | None = None) -> Posterior:
     """Fit ``scenario`` to its observations and write the posterior's result to
     ``output`` (whole or not at all), keeping the sampler's state after every round in
     ``<output>.fit-partial``; with ``resume``, go on from the state kept there (and from
-    the projection's chunks saved there).  ``workers`` threads integrate the chunks of
-    each round's likelihood and of the projection."""
-    problem = FitProblem(scenario, backend, chunk, workers)
+    the projection's chunks saved there).  The chunks of each round's likelihood and of
+    the projection are computed ``where`` a run's would be; ``note`` receives a line of
+    information (the dashboard's address)."""
+    problem = FitProblem(scenario, backend, chunk)
     key = f"{problem.layout.fingerprint} {settings}"
     directory = partial_directory(output)
     kept = load_state(directory, key) if resume else None
-    posterior = tempered_smc(problem.log_likelihood, problem.dimension, settings, report,
-                             checkpoint=lambda state: save_state(directory, key, state),
-                             resume_from=kept)
-    projection = project_posterior(problem, posterior.z, directory / PROJECTION, resume)
-    fit_variables(posterior, problem).to_netcdf(projection, mode="a", engine="netcdf4")
+    with nullcontext(None) if where.in_this_process else where.client() as client:
+        if client is not None and where.announces_dashboard() and note is not None:
+            link = dashboard_link(client)
+            if link:
+                note(f"dask dashboard at {link}")
+        likelihood = (problem.log_likelihood if client is None
+                      else LikelihoodOnWorkers(client, problem))
+        posterior = tempered_smc(likelihood, problem.dimension, settings, report,
+                                 checkpoint=lambda state: save_state(directory, key, state),
+                                 resume_from=kept)
+        if client is not None:
+            likelihood.close()
+        journal = project_posterior(problem, posterior.z, directory / PROJECTION, resume,
+                                    client)
+        # written while the client is open (its closing resets dask's scheduler
+        # setting), with xarray's file locks of this process rather than the cluster's
+        with dask.config.set(scheduler="threads"):
+            projection = finish_projection(journal, problem, posterior.z)
+            fit_variables(posterior, problem).to_netcdf(projection, mode="a",
+                                                        engine="netcdf4")
     os.replace(projection, output)
     fsync_directory(output.parent)
     remove_state(directory)
     return posterior
 
 
-def project_posterior(problem: FitProblem, z: np.ndarray, path: Path,
-                      resume: bool) -> Path:
-    """Write the result of the posterior members ``z`` projected for every variant to
-    ``path``, through a run's work journal (its chunks kept for a resume)."""
+def project_posterior(problem: FitProblem, z: np.ndarray, path: Path, resume: bool,
+                      client: Client | None = None) -> WorkJournal:
+    """Save every chunk of the posterior members ``z`` projected for every variant into
+    the run's work journal of ``path`` (chunks already saved there kept): in this
+    process, or on ``client``'s workers (each saving its chunks when it sees the
+    journal's directory)."""
+    uniforms = problem.uniforms(z)
     journal = WorkJournal.open(path, posterior_layout(problem, z), resume=resume,
                                force=True)
     try:
-        pending = journal.pending(posterior_keys(problem, z.shape[1]))
-        with Checkpoints(journal) as checkpoints:
-            for key, (result, reported) in _projected(problem, z, pending):
-                journal.save(key, result, reported, candidates=True)
-                checkpoints.add(key)
+        keys = journal.pending(posterior_keys(problem, z.shape[1]))
+        scenario, models = _posterior_scenario(problem, z), problem.models
+        outputs = (in_process(scenario, models, keys, problem.backend, uniforms)
+                   if client is None
+                   else on_cluster(client, scenario, models, keys, problem.backend,
+                                   journal, candidates=True, uniforms=uniforms))
+        save_all(journal, outputs, Progress(bar=False), candidates=True)
     except BaseException:
         journal.close()
         raise
-    return journal.finish(lambda key: posterior_chunk(problem, z, key)[0])
+    return journal
 
 
-def _projected(problem: FitProblem, z: np.ndarray, keys: list[ChunkKey]
-               ) -> Iterator[tuple[ChunkKey, tuple[ChunkResult, dict[str, np.ndarray]]]]:
-    """Each chunk of ``keys`` projected, in order: in this thread, or by the problem's
-    worker threads ``workers`` chunks at a time (so that at most that many wait to be
-    saved)."""
-    if problem.workers == 1:
-        for key in keys:
-            yield key, posterior_chunk(problem, z, key)
-        return
+def finish_projection(journal: WorkJournal, problem: FitProblem, z: np.ndarray) -> Path:
+    """Write the projection's file from the chunks saved in ``journal`` (a chunk found
+    damaged is computed again here)."""
+    scenario, uniforms = _posterior_scenario(problem, z), problem.uniforms(z)
+    return journal.finish(lambda key: compute_chunk(
+        scenario, problem.models[key[0]], key, problem.backend,
+        uniforms=chunk_uniforms(uniforms, key)).result)
 
-    def in_worker(key: ChunkKey) -> tuple[ChunkResult, dict[str, np.ndarray]]:
-        problem.keep_kernels_in_this_thread()
-        return posterior_chunk(problem, z, key)
 
-    with ThreadPoolExecutor(problem.workers, "ensemble-fit") as pool:
-        for begin in range(0, len(keys), problem.workers):
-            batch = keys[begin:begin + problem.workers]
-            yield from zip(batch, pool.map(in_worker, batch))
+def _posterior_scenario(problem: FitProblem, z: np.ndarray) -> Scenario:
+    """The scenario with the posterior's particles as its members."""
+    return dataclasses.replace(problem.scenario, member_count=z.shape[1])
 
 
 def fit_variables(posterior: Posterior, problem: FitProblem) -> xr.Dataset:
