@@ -1,12 +1,12 @@
 """No lost or mixed work: the work in progress of a run (``<result>.partial``) is kept
 unless the run is told to continue it (``--resume``) or discard it (``--force``); the
 program removes only a directory that carries its own mark; one run at a time holds a
-work directory's lock; every saved chunk is checked against its SHA-256 checksums at a
+work directory's lock; every saved chunk is checked against its CRC-32 checksums at a
 resume and before the result is written.
 
 The expected behaviour is the contract of ensemble/run/journal.py and
 ensemble/run/work_directory.py (the README's command-line section on ``--resume`` and
-``--force``).  Checksums are SHA-256 (FIPS 180-4) as Python's hashlib computes them; the
+``--force``).  Checksums are CRC-32 (ISO 3309, RFC 1952) as Python's zlib computes them; the
 lock is flock(2) (Linux manual page), which the kernel releases when its holder dies.
 Reference numbers come from an uninterrupted run of the same scenario in this process.
 Concurrent runs are real processes that meet at a barrier (a line on a pipe), not after
@@ -30,7 +30,7 @@ import pytest
 
 from ensemble import api
 from ensemble.errors import IncompleteWork, RunFailed, WorkInProgress, WorkLocked
-from ensemble.run import tasks, work_directory
+from ensemble.run import chunk_files, tasks, work_directory
 from ensemble.run.chunk_files import CHECKSUM_FILE, MEMBER_FILE
 from ensemble.run.execute import run_scenario
 from ensemble.run.journal import WorkJournal, partial_path
@@ -245,6 +245,20 @@ def test_where_files_cannot_be_locked_the_record_decides(tmp_path, monkeypatch):
 
 
 # ------------------------------------------------------------ checksums of saved chunks
+
+
+def test_the_checksum_is_the_crc32_of_the_whole_file(tmp_path, monkeypatch):
+    """CRC-32 of the nine bytes "123456789" is cbf43926, the check value of the
+    polynomial of zlib and gzip (Williams 1993, "A painless guide to CRC error detection
+    algorithms", sec. 17, the "CRC-32" entry); read a few bytes at a time, the file gives
+    the same."""
+    path = tmp_path / "digits"
+    path.write_bytes(b"123456789")
+    assert chunk_files.file_checksum(path) == "cbf43926"
+    monkeypatch.setattr(chunk_files, "CHECKSUM_BLOCK", 4)
+    assert chunk_files.file_checksum(path) == "cbf43926"
+    path.write_bytes(b"")
+    assert chunk_files.file_checksum(path) == "00000000"
 
 
 def flip_a_value(path: Path, value: float = 59_972.0) -> None:

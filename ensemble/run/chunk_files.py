@@ -15,8 +15,8 @@ One directory per chunk of members::
         members.npz           step_error, observed_order, status, param_<name> and the
                               per-member metrics
         boot                  the boot of the operating system that wrote it
-        sha256sums            the SHA-256 of each file above (FIPS 180-4), written last,
-                              in the format of ``sha256sum`` (GNU coreutils)
+        crc32sums             the CRC-32 of each file above (:func:`file_checksum`),
+                              written last, a line ``<8 hex digits>  <name>`` each
 
 Trajectories are time-major so that the quantiles over members are computed block of
 times by block of times, reading each chunk file once whatever the number of members.
@@ -31,11 +31,11 @@ from __future__ import annotations
 
 import concurrent.futures
 import errno
-import hashlib
 import os
 import re
 import shutil
 import threading
+import zlib
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import BinaryIO
@@ -57,8 +57,10 @@ TEMP_PREFIX = ".tmp-"
 MEMBER_FILE = "members.npz"
 BOOT_FILE = "boot"
 """File in each chunk directory naming the boot of the system that wrote it."""
-CHECKSUM_FILE = "sha256sums"
-"""File in each chunk directory with the SHA-256 of each of its other files."""
+CHECKSUM_FILE = "crc32sums"
+"""File in each chunk directory with the CRC-32 of each of its other files."""
+CHECKSUM_BLOCK = 8 * 2**20
+"""Bytes of a file read at a time to compute its checksum."""
 CHUNK_NAME = re.compile(rf"{CHUNK_PREFIX}v(\d+)-(\d+)-(\d+)")
 """The directory name of a saved chunk (:func:`chunk_name`)."""
 CANDIDATE_PARTS = ("below", "nans", "offsets", "values")
@@ -306,30 +308,45 @@ class ChunkFiles:
 # ---------------------------------------------------------------------- checksums
 
 def file_checksum(path: Path) -> str:
-    """The SHA-256 of the file ``path``, in hexadecimal."""
-    with open(path, "rb") as handle:
-        return hashlib.file_digest(handle, "sha256").hexdigest()
+    """The CRC-32 of the file ``path`` (ISO 3309; the polynomial of zlib, gzip and PNG:
+    Deutsch 1996, RFC 1952, sec. 8), 8 hexadecimal digits.
+
+    The checksum tells a damaged chunk (edited, truncated, replaced) from the one that
+    was written: it catches every burst of up to 32 flipped bits and any other change but
+    one in 2^32, at about 2.5 times the speed of SHA-256 with the processor's SHA
+    instructions (measured here: 3.9 against 1.6 GB/s), which mattered because every
+    saved byte is checksummed twice, when saved and before the result is written.  It
+    does not guard against deliberate forgery, which the work directory's owner could
+    commit anyway.
+    """
+    checksum = 0
+    buffer = bytearray(CHECKSUM_BLOCK)
+    view = memoryview(buffer)
+    with open(path, "rb", buffering=0) as handle:
+        while read := handle.readinto(buffer):
+            checksum = zlib.crc32(view[:read], checksum)
+    return f"{checksum:08x}"
 
 
 def write_checksums(directory: Path) -> None:
-    """List the SHA-256 of every file of ``directory`` in its :data:`CHECKSUM_FILE`."""
+    """List the checksum of every file of ``directory`` in its :data:`CHECKSUM_FILE`."""
     lines = [f"{file_checksum(entry)}  {entry.name}\n"
              for entry in sorted(directory.iterdir()) if entry.name != CHECKSUM_FILE]
     (directory / CHECKSUM_FILE).write_text("".join(lines), encoding="ascii")
 
 
 def read_checksums(directory: Path) -> dict[str, str]:
-    """File name -> SHA-256 listed in ``directory``'s :data:`CHECKSUM_FILE`.
+    """File name -> checksum listed in ``directory``'s :data:`CHECKSUM_FILE`.
 
     Raises
     ------
     OSError, UnicodeDecodeError : the list cannot be read.
-    ValueError : a line is not ``<64 hexadecimal digits>  <name>``.
+    ValueError : a line is not ``<8 hexadecimal digits>  <name>``.
     """
     listed = {}
     for line in (directory / CHECKSUM_FILE).read_text(encoding="ascii").splitlines():
         digest, separator, name = line.partition("  ")
-        if not separator or not re.fullmatch(r"[0-9a-f]{64}", digest) or not name:
+        if not separator or not re.fullmatch(r"[0-9a-f]{8}", digest) or not name:
             raise ValueError(f"not a checksum line: {line!r}")
         listed[name] = digest
     return listed

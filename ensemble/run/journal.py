@@ -28,7 +28,7 @@ Saved work is never lost or mixed.  A run that finds saved chunks continues them
 when asked to resume, discards them only when forced, and refuses otherwise; it removes
 nothing from a directory without the program's mark; it holds the directory's lock from
 :meth:`WorkJournal.open` to the end, so a second run on the same result is refused.
-Each chunk lists the SHA-256 of its files (:mod:`.chunk_files`): a resume, and the check
+Each chunk lists the CRC-32 of its files (:mod:`.chunk_files`): a resume, and the check
 before the result is written, remove any chunk whose files do not match, to be computed
 again.
 """
