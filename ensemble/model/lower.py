@@ -18,6 +18,7 @@ from ensemble.model.derivatives import partial_derivatives
 from ensemble.model.ir import Const, ParamRef, ScalarNode, ScheduleRef, StateRef, TimeRef
 from ensemble.model.elements import StateLayout, model_elements
 from ensemble.model.lowering import Reduction
+from ensemble.model.sharing import reduce_shared
 from ensemble.model.lowering import (ExpressionLowering, Value, Vector, constant_matrix,
                                      fold_sum)
 from ensemble.scenario.schema import Derived, Flow, Parameter, Scenario, Schedule, Variant
@@ -99,6 +100,11 @@ class LoweredModel:
     closed: bool
     constants: ConstantTrees
     reductions: tuple[Reduction, ...] = ()
+
+    def __reduce__(self) -> tuple:
+        """Pickled once per process and rebuilt once per receiving process
+        (:mod:`ensemble.model.sharing`): every task of a run carries the model."""
+        return reduce_shared(self)
 
     @property
     def n_states(self) -> int:
