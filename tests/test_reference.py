@@ -125,6 +125,14 @@ name = "infections"
 of = "infection"
 groups = ["old"]
 window = 2
+
+[[observations]]
+file = "infections.csv"
+measure = "infections"
+distribution = "negative-binomial"
+dispersion = 10
+reporting = 0.5
+delay = 1
 """
 
 SCENARIOS = sorted((REPO / "scenarios").glob("*.toml"))
