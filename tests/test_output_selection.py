@@ -8,10 +8,13 @@ probability text).
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 
 from ensemble.output import selection
+from ensemble.output.brackets import BracketCache
 from ensemble.output.selection import (chunk_candidates, pilot_brackets, recut,
                                        refined_brackets, select)
 
@@ -125,3 +128,19 @@ def test_recut_refuses_brackets_outside_the_coarse_ones():
     wider = selection.Brackets(coarse.lower - 1.0, coarse.upper)
     with pytest.raises(ValueError, match="not inside"):
         recut(part, coarse, wider)
+
+
+def test_a_large_ensemble_refines_from_a_share_of_its_members(monkeypatch, tmp_path):
+    """Four pilots' worth of members give the refined brackets up to 80 pilots' worth of
+    members; beyond, a twentieth of the members does, up to 32 pilots' worth; an ensemble
+    under twice that gains nothing (the rule of ensemble/output/brackets.py, common
+    practice, no source)."""
+    def refine(members: int) -> int:
+        cache = BracketCache(SimpleNamespace(member_count=members), None, tmp_path, 1)
+        monkeypatch.setattr(cache, "pilot_member_count", lambda: 1000)
+        return cache.refining_member_count()
+
+    assert refine(7_999) == 0
+    assert refine(30_000) == 4_000
+    assert refine(200_000) == 10_000
+    assert refine(1_000_000) == 32_000

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 import threading
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -35,11 +35,11 @@ def reusable(workspace: threading.local, name: str, shape: tuple[int, ...]) -> n
     return buffer[:size].reshape(shape)
 
 
-def summed_counts(parts: Sequence[Candidates], brackets: Brackets
+def summed_counts(parts: Sequence[Candidates], intervals: int
                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(below, nans, inside) of the chunks' candidates summed: (cells, K), (cells,) and
-    (cells, K)."""
-    cells, intervals = brackets.lower.shape
+    """(below, nans, inside) of the chunks' candidates (of the same cells, ``intervals``
+    intervals each) summed: (cells, K), (cells,) and (cells, K)."""
+    cells = parts[0].below.shape[0]
     return (sum(np.asarray(part.below) for part in parts),
             sum(np.asarray(part.nans) for part in parts),
             sum(np.diff(part.offsets).reshape(cells, intervals) for part in parts))
@@ -95,3 +95,51 @@ def candidate_parts(source: MemberSource, name: str, keys: Sequence[ChunkKey],
                                             reusable(workspace, "read", (stop - start,)))
 
     return parts, read
+
+
+def candidates_per_cell(source: MemberSource, name: str, keys: Sequence[ChunkKey],
+                        known: Mapping[str, Brackets], cells: int) -> int:
+    """An upper bound of the candidates of one cell, on average over the cells, summed
+    over the chunks ``keys``: the values a chunk cut with brackets of ``known`` (by
+    digest) keeps (the last of its offsets), and every member of any other chunk."""
+    total = 0
+    for key in keys:
+        kept_with = known.get(source.cut_with(key, name))
+        if kept_with is None:
+            total += (key[2] - key[1]) * cells
+            continue
+        intervals = kept_with.lower.shape[1]
+        total += int(source.candidate_counts(key, name, cells - 1, cells,
+                                             intervals).offsets[-1])
+    return max(1, total // cells)
+
+
+def block_candidates(source: MemberSource, name: str, key: ChunkKey, included: np.ndarray,
+                     span: slice, brackets: Brackets, known: Mapping[str, Brackets],
+                     workspace: threading.local) -> Candidates:
+    """Chunk ``key``'s candidates of trajectory variable ``name`` for the cells ``span``
+    only, cut with ``brackets`` (their offsets from 0, values in memory), whatever the
+    chunk keeps: read as saved when cut with ``brackets``, cut again when cut with
+    other brackets of ``known`` (by digest: the pilot's, of which ``brackets`` are a
+    refinement), cut here from every value otherwise (``included`` marks the chunk's
+    members behind the quantiles)."""
+    first, stop = span.start, span.stop
+    block = Brackets(brackets.lower[span], brackets.upper[span])
+    cut_with = source.cut_with(key, name)
+    kept_with = known.get(cut_with) if cut_with is not None else None
+    if kept_with is not None:
+        counts = source.candidate_counts(key, name, first, stop, kept_with.lower.shape[1])
+        start = int(counts.offsets[0])
+        values = source.read_candidate_values(key, name, start,
+                                              np.empty(int(counts.offsets[-1]) - start))
+        part = Candidates(counts.below, counts.nans, counts.offsets - start, values)
+        if kept_with is brackets:
+            return part
+        return selection.recut(part, Brackets(kept_with.lower[span], kept_with.upper[span]),
+                               block)
+    if cut_with is None:
+        values = source.read_cells(key, name, first,
+                                   reusable(workspace, "whole", (stop - first, key[2] - key[1])))
+    else:
+        values = np.ascontiguousarray(source.whole(key, name)[first:stop])
+    return selection.chunk_candidates(values, included, block)

@@ -21,7 +21,7 @@ import numpy as np
 
 from ensemble.output import selection
 from ensemble.output.brackets import BracketCache
-from ensemble.output.candidates import (candidate_parts, cells_per_block, reusable,
+from ensemble.output.candidates import (block_candidates, candidates_per_cell, reusable,
                                         summed_counts)
 from ensemble.output.layout import ResultLayout
 from ensemble.output.measure_results import finish_measures
@@ -198,8 +198,11 @@ class Finisher:
                             included: np.ndarray, pool: ThreadPoolExecutor) -> np.ndarray:
         """(quantile, rows, time) quantiles of ``variable`` of one variant whose chunks
         past the pilot keep candidates (:func:`.selection.select`), cut with the refined
-        brackets where there are some, cells in blocks of about ``block_bytes`` of
-        candidates, on the pool's threads."""
+        brackets where there are some, on the pool's threads.
+
+        Cells go in blocks of about ``block_bytes`` of candidates, and each block reads
+        from every chunk only its own cells (:func:`.candidates.block_candidates`), so
+        memory stays within a few blocks whatever the number of chunks."""
         if self.brackets is None:
             raise ValueError("chunks keep candidates only, and no brackets were given")
         layout = self.layout
@@ -209,18 +212,21 @@ class Finisher:
         refined = self.brackets.refined(variant)
         brackets = refined[variable.name] if refined is not None else coarse
         workspace = threading.local()
-        parts, read = candidate_parts(self.source, variable.name, keys, included, brackets,
-                                      coarse, layout.cell_count(variable), workspace, pool)
-        below, nans, inside = summed_counts(parts, brackets)
-        cells = brackets.lower.shape[0]
         count = int(included.sum())
-        step = cells_per_block(inside, self.block_bytes)
+        cells = brackets.lower.shape[0]
+        known = {coarse.digest(): coarse, brackets.digest(): brackets}
+        step = max(1, self.block_bytes // max(1, 8 * candidates_per_cell(
+            self.source, variable.name, keys, known, cells)))
         spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
 
         def select_block(span: slice) -> tuple[np.ndarray, np.ndarray]:
-            buffer = reusable(workspace, "candidates", (int(inside[span].sum()),))
-            return selection.select(parts, span, count, nans, below, inside, probabilities,
-                                    buffer, read)
+            parts = [block_candidates(self.source, variable.name, key,
+                                      included[key[1]:key[2]], span, brackets, known,
+                                      workspace) for key in keys]
+            below, nans, inside = summed_counts(parts, brackets.lower.shape[1])
+            buffer = reusable(workspace, "candidates", (int(inside.sum()),))
+            return selection.select(parts, slice(0, span.stop - span.start), count, nans,
+                                    below, inside, probabilities, buffer)
 
         selected = list(pool.map(select_block, spans))
         values = np.concatenate([block for block, _ in selected], axis=1)

@@ -59,6 +59,12 @@ class MemberSource(Protocol):
                               out: np.ndarray) -> np.ndarray:
         """``out`` filled with the candidate values ``start ..`` of a cut chunk."""
 
+    def candidate_counts(self, key: ChunkKey, name: str, first: int, stop: int,
+                         intervals: int) -> Candidates:
+        """The counts a cut chunk keeps for cells ``first .. stop - 1`` (``values`` None):
+        ``below`` and ``nans`` of those cells, and the ``offsets`` of their ``intervals``
+        intervals each (with the one after the last), into the chunk's whole values."""
+
     def whole(self, key: ChunkKey, name: str) -> np.ndarray:
         """Every value, (cells, members), whatever the chunk keeps (a chunk that keeps
         candidates only is computed again by the source's owner)."""

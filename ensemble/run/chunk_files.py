@@ -281,6 +281,18 @@ class ChunkFiles:
                               out: np.ndarray) -> np.ndarray:
         return read_range(self.directory(key) / f"{name}-values.npy", start, out)
 
+    def candidate_counts(self, key: ChunkKey, name: str, first: int, stop: int,
+                         intervals: int) -> Candidates:
+        directory = self.directory(key)
+        cells = stop - first
+        return Candidates(
+            read_range(directory / f"{name}-below.npy", first * intervals,
+                       np.empty((cells, intervals), np.int64)),
+            read_range(directory / f"{name}-nans.npy", first, np.empty(cells, np.int64)),
+            read_range(directory / f"{name}-offsets.npy", first * intervals,
+                       np.empty(cells * intervals + 1, np.int64)),
+            None)
+
     def whole(self, key: ChunkKey, name: str) -> np.ndarray:
         """Every value, (cells, members): a map of the file of a chunk kept whole, else
         the chunk computed again (the last one computed is kept for the next variable).
@@ -408,7 +420,8 @@ def read_slab(path: Path, times: slice, rows: slice, out: np.ndarray) -> None:
 
 
 def read_range(path: Path, first: int, out: np.ndarray) -> np.ndarray:
-    """``out`` filled with the flat values ``first ..`` of the ``.npy`` file ``path``."""
+    """``out`` filled with the flat values ``first ..`` of the ``.npy`` file ``path``
+    (float64 or int64: 8 bytes each, as ``out``)."""
     with open(path, "rb") as handle:
         _npy_shape(handle)
         _read_into(handle, path, first, out)
