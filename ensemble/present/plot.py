@@ -125,6 +125,7 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
     """The figure of measure ``name``: one panel per variant (one row per group for a
     measure by group), with the ``observed`` counts as points on every panel."""
     array = dataset[f"measure_{name}_quantile"]
+    predictive = dataset.get(f"measure_{name}_as_observed_quantile")
     time_dim = array.dims[-1]
     groups = list(array["group"].values) if "group" in array.dims else [None]
     figure, axes, variants = _panels(dataset, len(groups))
@@ -144,6 +145,9 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
             axis.plot(times, _quantile(part, 0.5), color=LINE, linewidth=1.6,
                       drawstyle="steps-pre" if time_dim != "time" else "default",
                       label="median")
+            if predictive is not None and bands:
+                _draw_predictive(axis, predictive.sel(variant=variant), times,
+                                 max(bands), time_dim)
             for points in observed:
                 _draw_points(axis, points, f"{row}-{column}")
             axis.grid(color="#dddddd", linewidth=0.6)
@@ -158,6 +162,17 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
     figure.tight_layout(rect=(0, 0.05, 1, 1))
     _footer(figure, dataset)
     return figure
+
+
+def _draw_predictive(axis, array: xr.DataArray, times: np.ndarray,
+                     band: tuple[int, float, float], time_dim: str) -> None:
+    """The widest ``band`` of the counts as observed (observation noise included) as
+    dashed bounds: where observed counts are expected to fall."""
+    width, lower, upper = band
+    style = "steps-pre" if time_dim != "time" else "default"
+    for probability, label in ((lower, f"{width}% of counts as observed"), (upper, None)):
+        axis.plot(times, _quantile(array, probability), color=LINE, linewidth=0.9,
+                  linestyle="--", drawstyle=style, label=label)
 
 
 def _draw_points(axis, points: ObservedPoints, panel: str) -> None:
