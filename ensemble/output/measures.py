@@ -16,7 +16,10 @@ Each measure's series is a trajectory variable of its own (:class:`MeasureTrajec
 the work journal saves it with a chunk's trajectories (past the pilot only its
 candidates for the quantiles), and the finish reduces it to exact quantile bands as it
 reduces ``state``, so memory does not grow with the members when they are not kept.  Its
-metrics, one number per member and row, are computed when a chunk is saved.
+metrics, one number per member and row, are computed when a chunk is saved.  A measure
+that an ``[[observations]]`` table observes has a second trajectory variable, the measure
+as it would be observed (:class:`AsObservedTrajectory`, :mod:`.as_observed`), reduced the
+same way (it has no metrics).
 """
 
 from __future__ import annotations
