@@ -1,7 +1,8 @@
 """``ensemble fit`` on the run's engine: each round's likelihood and the projection of the
 posterior computed by dask workers (threads, processes, or SLURM worker jobs through a
-cluster profile) give the file the fit computed in this process gives, bit for bit; bad
-engine options stop the command with exit status 2 before anything is written.
+cluster profile) give the file the fit computed in this process gives, bit for bit, and
+so does a fit whose worker process is killed while it computes a chunk; bad engine
+options stop the command with exit status 2 before anything is written.
 
 The in-process fit these are compared with is itself checked against a posterior
 computed on a fine grid from scipy's ``solve_ivp`` by quadrature
@@ -11,15 +12,21 @@ computed on a fine grid from scipy's ``solve_ivp`` by quadrature
 
 from __future__ import annotations
 
+import os
 import shutil
+import signal
+import subprocess
+import time
 from pathlib import Path
 
 import pytest
 import xarray as xr
+from distributed import Client, LocalCluster
 
 from ensemble import api
-from support import REPO, assert_same_values, invoke_cli, run_cli
+from support import REPO, assert_same_values, ensemble_command, invoke_cli, run_cli
 from test_fit_run import COUNTS, SCENARIO
+from test_run_determinism import rerun_after_worker_loss, worker_holding_work
 
 PARTICLES = 60
 """Few particles: the test is of where the numbers are computed, not of the posterior."""
@@ -95,6 +102,52 @@ def test_bad_engine_options_exit_2_and_write_nothing(in_this_process, tmp_path, 
     assert message in done.stderr
     assert sorted(path.name for path in tmp_path.iterdir()) == [
         "cases.csv", "configs", "fitted.toml"]
+
+
+@pytest.mark.slow
+def test_a_killed_worker_does_not_change_the_fit(in_this_process, tmp_path):
+    """SIGKILL a dask worker process while it computes a chunk of a round: the scheduler
+    gives the chunk (and the problem it held) to a worker again, and the file equals the
+    fit in this process.  The fit uses a scheduler this test started (``--address``) so
+    that the test sees which tasks each worker holds; the kill comes at a barrier (the
+    first round's state kept), with a small step so that each round's chunks take a
+    while."""
+    for name in ("cases.csv", "fitted.toml"):
+        shutil.copy(in_this_process / name, tmp_path)
+    options = ("--particles", "40", "--chunk", "10", "--seed", "3", "--backend",
+               "compiled", "--set", f"solver.step={1 / 256}")
+    state = tmp_path / "killed.nc.fit-partial" / "state.npz"
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as cluster, Client(cluster) as client:
+        process = subprocess.Popen(
+            ensemble_command("fit", "fitted.toml", *options, "--address",
+                             cluster.scheduler_address, "-o", "killed.nc"),
+            cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+            start_new_session=True)
+        try:
+            while not state.exists():       # a barrier: the first round is kept
+                assert process.poll() is None, process.communicate()
+                time.sleep(0.01)
+            victim, held = worker_holding_work(client, process)
+            os.kill(client.run(os.getpid, workers=[victim])[victim], signal.SIGKILL)
+            out, err = process.communicate(timeout=300)
+            history = client.story(*held)
+        finally:
+            try:
+                os.killpg(process.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+    assert process.returncode == 0, err
+    assert any(rerun_after_worker_loss(history, key) for key in held), (
+        f"none of the killed worker's tasks {held} was given to a worker again: {history}")
+    done = run_cli("fit", "fitted.toml", *options, "--workers", "0", "-o", "here.nc",
+                   cwd=tmp_path, timeout=300)
+    assert done.returncode == 0, done.stderr
+    with xr.open_dataset(tmp_path / "here.nc", decode_times=False) as a, \
+            xr.open_dataset(tmp_path / "killed.nc", decode_times=False) as b:
+        for name in a.variables:
+            assert_same_values(name, a[name].values, b[name].values, a.encoding["source"],
+                               b.encoding["source"])
 
 
 def _why_no_slurm() -> str | None:
