@@ -19,6 +19,7 @@ from scipy import integrate, stats
 
 from ensemble import api
 from ensemble.about import CAUTION
+from ensemble.sampling.uniform import observation_noise_draws
 from support import ensemble_command, run_cli
 
 SCENARIO = """\
@@ -211,8 +212,16 @@ def test_dispersion_and_reporting_drawn_as_parameters_are_each_members_own(tmp_p
         share = dataset["param_ascertained"].isel(variant=0).values[:, None]
         weeks = dataset["measure_cases"].isel(variant=0).values[:, :3]
         stored = dataset["log_likelihood"].values
+        every_week = dataset["measure_cases"].isel(variant=0).values
+        as_observed = dataset["measure_cases_as_observed"].isel(variant=0).values
     counts = np.array([35.0, 80.0, 190.0])
     # scipy.stats.nbinom with n = k, p = k / (k + mean), mean = reporting x measure
     expected = stats.nbinom.logpmf(counts, k, k / (k + share * weeks)).sum(axis=1)
     np.testing.assert_allclose(stored, expected, rtol=1e-10)
     assert np.std(k) > 0 and np.std(share) > 0
+    # the fit's result holds the counts as observed, each member's with its own k and
+    # reporting: scipy.stats.nbinom.ppf at the member's draws
+    draws = observation_noise_draws(api.load_scenario(tmp_path / "drawn.toml").seed,
+                                    "cases", every_week.shape[1], np.arange(k.size))
+    mean = share * every_week
+    np.testing.assert_array_equal(as_observed, stats.nbinom.ppf(draws, k, k / (k + mean)))

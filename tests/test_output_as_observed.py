@@ -165,3 +165,22 @@ def test_central_intervals_cover_counts_drawn_from_the_model_at_their_level(tmp_
             inside = int(np.sum((counts >= lower) & (counts <= upper)))
             least, most = stats.binom.interval(0.999, counts.size, nominal)
             assert least <= inside <= most, (window, nominal, inside)
+
+
+def test_score_judges_counts_by_the_predictive_band(tmp_path):
+    """``ensemble score`` of a measure the scenario observes reads the quantiles of the
+    counts as observed: its medians are theirs (those of the measure itself differ)."""
+    scenario = _scenario(tmp_path, members=60)
+    path = api.run(scenario, output=tmp_path / "run.nc", workers=0, progress=False,
+                   backend="numpy")
+    later = tmp_path / "later.csv"
+    later.write_text("date,value\n14,300\n21,900\n")
+    text = api.score(path, later)
+    assert "measure cases as observed (observation noise included)" in text
+    with xr.open_dataset(path, decode_times=False) as dataset:
+        medians = [dataset[f"measure_cases{suffix}_quantile"].sel(quantile=0.5).isel(
+            variant=0, time_7d=[1, 2]).values for suffix in ("_as_observed", "")]
+    rows = text.split("variant baseline\n")[1].splitlines()[1:3]
+    shown = np.array([float(row.split()[2]) for row in rows])
+    np.testing.assert_allclose(shown, np.round(medians[0], 1))
+    assert not np.allclose(shown, np.round(medians[1], 1))
