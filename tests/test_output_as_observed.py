@@ -15,7 +15,9 @@ import xarray as xr
 from scipy import stats
 
 from ensemble import api
+from ensemble.output import brackets as brackets_module
 from ensemble.output.as_observed import observed_count_quantile
+from ensemble.output.finish import Finisher
 from support import load_text
 
 SCENARIO = """\
@@ -184,3 +186,40 @@ def test_score_judges_counts_by_the_predictive_band(tmp_path):
     shown = np.array([float(row.split()[2]) for row in rows])
     np.testing.assert_allclose(shown, np.round(medians[0], 1))
     assert not np.allclose(shown, np.round(medians[1], 1))
+
+
+def test_bands_past_the_pilot_are_those_of_every_member(tmp_path, monkeypatch):
+    """Without kept members, chunks past the pilot (lowered to 6 members) keep only the
+    candidates of the series as observed for its quantiles: its bands equal
+    ``numpy.quantile`` (Hyndman and Fan 1996, definition 7) over every member of the
+    same scenario run with its members kept, bit for bit."""
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBER_COUNT", 6)
+    monkeypatch.setattr(brackets_module, "REFINE_PILOTS", 2)
+    selected = []
+    select = Finisher._selected_quantiles
+
+    def recording(self, variable, *arguments):
+        selected.append(variable.name)
+        return select(self, variable, *arguments)
+
+    monkeypatch.setattr(Finisher, "_selected_quantiles", recording)
+    bands = {}
+    for keep in (True, False):
+        directory = tmp_path / f"kept-{keep}"
+        directory.mkdir()
+        scenario = _scenario(directory, members=40)
+        if not keep:
+            text = (directory / "noisy.toml").read_text().replace(
+                "[output]\n", "[output]\nkeep_members = false\n")
+            scenario = load_text(directory, text, "noisy")
+        path = api.run(scenario, output=directory / "noisy.nc", workers=0, progress=False,
+                       backend="numpy", chunk=5)
+        with xr.open_dataset(path, decode_times=False) as dataset:
+            bands[keep] = dataset["measure_cases_as_observed_quantile"].values
+            if keep:
+                members = dataset["measure_cases_as_observed"].values
+                levels = dataset["quantile"].values
+    assert "measure_cases_as_observed" in selected
+    expected = np.moveaxis(np.quantile(members, levels, axis=1), 0, 1)
+    np.testing.assert_array_equal(bands[True], expected)
+    np.testing.assert_array_equal(bands[False], expected)
