@@ -199,3 +199,11 @@ def test_a_bad_set_of_an_observation_exits_2_naming_the_key(tmp_path, setting, k
     done = run_cli("check", "observed.toml", "--set", setting, cwd=tmp_path)
     assert done.returncode == 2
     assert key in done.stderr
+
+
+def test_a_measure_named_as_another_as_observed_is_refused(tmp_path):
+    text = SCENARIO.format(observations=GOOD).replace(
+        '[[measures]]\nname = "prevalent"', '[[measures]]\nname = "cases_as_observed"')
+    (tmp_path / "observed.toml").write_text(text)
+    with pytest.raises(ScenarioError, match="observations\\[0\\].measure"):
+        load_scenario(tmp_path / "observed.toml")

@@ -29,9 +29,10 @@ import numpy as np
 from ensemble.output.layout import ResultLayout
 from ensemble.records import ChunkResult
 from ensemble.sampling.uniform import observation_noise_draws
+from ensemble.scenario.observations import AS_OBSERVED_SUFFIX
 from ensemble.scenario.schema import Observation
 
-SUFFIX = "_as_observed"
+SUFFIX = AS_OBSERVED_SUFFIX
 """The series of measure ``<name>`` as observed is ``measure_<name>_as_observed``."""
 
 

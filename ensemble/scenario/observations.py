@@ -23,6 +23,10 @@ OBSERVATION_DISTRIBUTIONS = ("poisson", "negative-binomial")
 the measure, or negative binomial with that mean and dispersion k (variance
 mean + mean^2 / k)."""
 
+AS_OBSERVED_SUFFIX = "_as_observed"
+"""An observed measure ``<name>`` is written a second time as it would be observed, as
+``measure_<name>_as_observed``, so no other measure may be named ``<name>_as_observed``."""
+
 OBSERVATION_KEYS = ("file", "measure", "distribution", "dispersion", "reporting", "delay")
 """The keys of an ``[[observations]]`` table."""
 
@@ -64,6 +68,10 @@ def _read_observation(reader: Reader, value: object, path: str,
     if measure not in by_name:
         raise reader.error(key_path(path, "measure"), measure, "no measure of that name",
                            f"measures: {', '.join(by_name) or 'none ([[measures]])'}")
+    if measure + AS_OBSERVED_SUFFIX in by_name:
+        raise reader.error(key_path(path, "measure"), measure,
+                           f"measure {measure + AS_OBSERVED_SUFFIX!r} would have the name of "
+                           "this measure as observed", "rename that measure")
     if by_name[measure].groups == "each" and groups and len(groups) > 1:
         raise reader.error(key_path(path, "measure"), measure,
                            "an observed measure must be one series, not one per group",
