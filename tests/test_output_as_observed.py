@@ -93,6 +93,12 @@ def test_the_quantile_function_is_scipys():
     np.testing.assert_array_equal(
         observed_count_quantile(np.array([0.5, 0.5]), np.array([0.0, np.nan]), "poisson"),
         [0.0, np.nan])
+    # the Poisson's own search, over means from 0.01 to 10^6 and draws in the tails
+    generator = np.random.default_rng(1)
+    u = np.concatenate([generator.uniform(size=20000), [1e-12, 1 - 1e-12]])
+    mean = np.exp(generator.uniform(np.log(0.01), np.log(1e6), u.size))
+    np.testing.assert_array_equal(observed_count_quantile(u, mean, "poisson"),
+                                  stats.poisson.ppf(u, mean))
 
 
 @pytest.mark.parametrize("distribution, dispersion", [("poisson", ""),

@@ -36,12 +36,26 @@ SUFFIX = AS_OBSERVED_SUFFIX
 """The series of measure ``<name>`` as observed is ``measure_<name>_as_observed``."""
 
 
+SEARCH_STEPS = 12
+"""Steps of one count up or down from the first guess before a value is handed to
+scipy's own quantile function (which inverts the distribution function by iteration,
+ten times slower)."""
+
+
 def observed_count_quantile(probability: np.ndarray, mean: np.ndarray, distribution: str,
                             dispersion: np.ndarray | float | None = None) -> np.ndarray:
     """The quantile function of an observed count: the smallest whole y with
     P(Y <= y) >= ``probability``, elementwise, for Y Poisson with ``mean`` or negative
     binomial with ``mean`` and ``dispersion`` k; 0 where the mean is 0 (or below, a
     solver's round-off), NaN where it is NaN.
+
+    The negative binomial's is scipy.stats' ``nbinom.ppf``. The Poisson's is the same
+    number found faster: the search starts from the Cornish-Fisher approximation (the
+    normal quantile corrected for skewness; Cornish & Fisher 1938, "Moments and cumulants
+    in the specification of distributions", Rev. Inst. Int. Stat. 5:307-320) and walks
+    one count at a time while the definition fails, with P(Y <= y) = Q(y + 1, mean), the
+    regularised upper incomplete gamma function of :mod:`scipy.special`; values still
+    open after :data:`SEARCH_STEPS` steps are scipy.stats' ``poisson.ppf``.
 
     Parameters
     ----------
@@ -50,13 +64,18 @@ def observed_count_quantile(probability: np.ndarray, mean: np.ndarray, distribut
     distribution : ``"poisson"`` or ``"negative-binomial"``.
     dispersion : k of the negative binomial, broadcast against ``probability``.
     """
-    from scipy import stats     # here only: scipy.stats takes half a second to import
+    from scipy import special, stats    # stats here only: it takes half a second to import
 
     probability, mean = np.broadcast_arrays(np.asarray(probability, dtype=float),
                                             np.asarray(mean, dtype=float))
     positive = np.where(mean > 0, mean, 1.0)
     if distribution == "poisson":
-        counts = stats.poisson.ppf(probability, positive)
+        z = special.ndtri(probability)
+        guess = positive + np.sqrt(positive) * z + (z * z - 1.0) / 6.0
+        counts = _walk(np.maximum(np.floor(np.nan_to_num(guess)), 0.0), probability,
+                       lambda y, where: special.gammaincc(y + 1.0, positive[where]))
+        open_ = np.isnan(counts) & (mean > 0)
+        counts[open_] = stats.poisson.ppf(probability[open_], positive[open_])
     elif distribution == "negative-binomial":
         k = np.broadcast_to(np.asarray(dispersion, dtype=float), mean.shape)
         counts = stats.nbinom.ppf(probability, k, k / (k + positive))
@@ -64,6 +83,30 @@ def observed_count_quantile(probability: np.ndarray, mean: np.ndarray, distribut
         raise ValueError(f"unknown distribution {distribution!r}")
     counts = np.where(mean > 0, counts, 0.0)
     return np.where(np.isnan(mean), np.nan, counts).astype(np.float64)
+
+
+def _walk(counts: np.ndarray, probability: np.ndarray, cdf) -> np.ndarray:
+    """From ``counts``, the smallest y with ``cdf(y) >= probability``, one step at a time;
+    NaN where :data:`SEARCH_STEPS` steps do not reach it."""
+    counts = np.array(counts, dtype=float)
+    active = np.arange(counts.size)
+    flat, target = counts.reshape(-1), probability.reshape(-1)
+    for _ in range(SEARCH_STEPS):
+        y, u = flat[active], target[active]
+        low = cdf(y, _unravel(active, counts.shape)) < u
+        below = np.maximum(y - 1.0, 0.0)
+        high = ~low & (y > 0) & (cdf(below, _unravel(active, counts.shape)) >= u)
+        flat[active[low]] += 1.0
+        flat[active[high]] -= 1.0
+        active = active[low | high]
+        if not active.size:
+            return counts
+    flat[active] = np.nan
+    return counts
+
+
+def _unravel(flat: np.ndarray, shape: tuple[int, ...]) -> tuple[np.ndarray, ...]:
+    return np.unravel_index(flat, shape)
 
 
 def first_observations(layout: ResultLayout) -> dict[str, Observation]:
