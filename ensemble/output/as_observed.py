@@ -37,9 +37,9 @@ SUFFIX = AS_OBSERVED_SUFFIX
 
 
 SEARCH_STEPS = 12
-"""Steps of one count up or down from the first guess before a value is handed to
-scipy's own quantile function (which inverts the distribution function by iteration,
-ten times slower)."""
+"""Steps of one count up or down from the first guess before a Poisson value is handed
+to scipy.stats' quantile function (which inverts the distribution function by iteration,
+about five times slower)."""
 
 
 def observed_count_quantile(probability: np.ndarray, mean: np.ndarray, distribution: str,
