@@ -1,8 +1,9 @@
 """Time and peak memory of `ensemble fit` at scale: the invented demo scenarios/seir-fit.toml
 (an SEIR with four uncertain parameters, ten weekly counts) with 20,000 particles, the
-compiled backend, in this process. Prints each round, the wall time of the sampler and of
-the whole fit (kernel compilation excluded: one small fit first fills the kernel cache),
-and the peak resident memory. The goal it is measured against: two minutes on 2 cores.
+compiled backend, on the default local workers (dask threads of this process, one per
+core, so the peak memory below is the whole fit's). Prints each round, the wall time of
+the sampler and of the whole fit (kernel compilation excluded: one small fit first fills
+the kernel cache), and the peak resident memory. The goal it is measured against: two minutes on 2 cores.
 
 Usage: .venv/bin/python scripts/fit_scale.py [PARTICLES]
 """
