@@ -346,6 +346,28 @@ def test_task_copies_read_the_brackets_the_first_derivation_stored(tmp_path, mon
     assert (journal.work / "refined-brackets-v0.npz").is_file()
 
 
+def test_task_copies_in_one_process_share_the_brackets_read(tmp_path, monkeypatch):
+    """Copies of the journal in one process read a bracket file once and share its
+    arrays (dask keeps recent tasks, each with its copy, so arrays per copy would add up
+    over a large run); a file stored anew, as by a new run of the same work directory,
+    is read again."""
+    pilot = 500
+    layout = layout_of(grouped_scenario(tmp_path, members=4 * pilot, keep_members=False))
+    monkeypatch.setattr(brackets_module, "PILOT_MEMBER_COUNT", pilot)
+    journal = _open(tmp_path / "r.nc", layout)
+    journal.save((0, 0, pilot), *made_up_members(layout, 0, 0, pilot))
+    journal.brackets.pilot(0)
+    first, second = (pickle.loads(pickle.dumps(journal)).brackets.pilot(0) for _ in range(2))
+    assert all(first[name].lower is second[name].lower for name in first)
+
+    path = journal.work / "pilot-brackets-v0.npz"
+    stored = dict(np.load(path))
+    path.unlink()
+    np.savez(path, **{name: values + 1.0 for name, values in stored.items()})
+    third = pickle.loads(pickle.dumps(journal)).brackets.pilot(0)
+    assert all(np.array_equal(third[name].lower, first[name].lower + 1.0) for name in first)
+
+
 def test_a_large_model_gets_a_smaller_pilot_not_none(tmp_path, monkeypatch):
     """The pilot shrinks so that its trajectories fit PILOT_BYTES (worked example: the
     bytes of one member's cells times the pilot's members), down to SMALLEST_PILOT;

@@ -16,6 +16,7 @@ from collections.abc import Generator, Iterator, Sequence
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass
 
+import dask
 from distributed import Client, Future, as_completed
 
 from ensemble.errors import RunFailed, StoreWriteError
@@ -24,7 +25,7 @@ from ensemble.records import ChunkKey
 from ensemble.run.clusters import ClusterProfile
 from ensemble.run.journal import WorkJournal
 from ensemble.run.listening import served_dashboard
-from ensemble.run.local import LocalStart, available_cores
+from ensemble.run.local import SHORT_LOGS, LocalStart, available_cores
 from ensemble.run.tasks import (ChunkOutput, ChunkSaved, Uniforms, chunk_uniforms,
                                 compute_and_save_chunk, compute_chunk, thread_buffers)
 from ensemble.run.worker_jobs import jobqueue_cluster
@@ -126,12 +127,14 @@ def open_client(workers: int | None = None, address: str | None = None,
     dashboard : where the dashboard of the scheduler started here listens, or None for
         none (:mod:`ensemble.run.listening`).
     """
-    if cluster is not None:
-        with jobqueue_cluster(cluster, dashboard) as batch, Client(batch) as client:
+    if cluster is not None:     # workers join the scheduler here while the run goes on
+        with dask.config.set(SHORT_LOGS), jobqueue_cluster(cluster, dashboard) as batch, \
+                Client(batch) as client:
             yield client
         return
     if address is not None:
-        client = Client(address)
+        with dask.config.set(SHORT_LOGS):
+            client = Client(address)
         try:
             yield client
         finally:
