@@ -97,14 +97,16 @@ def candidate_parts(source: MemberSource, name: str, keys: Sequence[ChunkKey],
     return parts, read
 
 
-def candidates_per_cell(source: MemberSource, name: str, keys: Sequence[ChunkKey],
+def candidates_per_cell(source: MemberSource, name: str,
+                        cuts: Mapping[ChunkKey, str | None],
                         known: Mapping[str, Brackets], cells: int) -> int:
     """An upper bound of the candidates of one cell, on average over the cells, summed
-    over the chunks ``keys``: the values a chunk cut with brackets of ``known`` (by
-    digest) keeps (the last of its offsets), and every member of any other chunk."""
+    over the chunks of ``cuts`` (each chunk's :meth:`~.sources.MemberSource.cut_with`):
+    the values a chunk cut with brackets of ``known`` (by digest) keeps (the last of its
+    offsets), and every member of any other chunk."""
     total = 0
-    for key in keys:
-        kept_with = known.get(source.cut_with(key, name))
+    for key, cut_with in cuts.items():
+        kept_with = known.get(cut_with)
         if kept_with is None:
             total += (key[2] - key[1]) * cells
             continue
@@ -114,18 +116,19 @@ def candidates_per_cell(source: MemberSource, name: str, keys: Sequence[ChunkKey
     return max(1, total // cells)
 
 
-def block_candidates(source: MemberSource, name: str, key: ChunkKey, included: np.ndarray,
-                     span: slice, brackets: Brackets, known: Mapping[str, Brackets],
-                     workspace: threading.local) -> Candidates:
+def block_candidates(source: MemberSource, name: str, key: ChunkKey, cut_with: str | None,
+                     included: np.ndarray, span: slice, brackets: Brackets,
+                     known: Mapping[str, Brackets], workspace: threading.local
+                     ) -> Candidates:
     """Chunk ``key``'s candidates of trajectory variable ``name`` for the cells ``span``
     only, cut with ``brackets`` (their offsets from 0, values in memory), whatever the
-    chunk keeps: read as saved when cut with ``brackets``, cut again when cut with
-    other brackets of ``known`` (by digest: the pilot's, of which ``brackets`` are a
-    refinement), cut here from every value otherwise (``included`` marks the chunk's
-    members behind the quantiles)."""
+    chunk keeps (``cut_with``, the digest of the brackets it was cut with, or None):
+    read as saved when cut with ``brackets``, cut again when cut with other brackets of
+    ``known`` (by digest: the pilot's, of which ``brackets`` are a refinement), cut here
+    from every value otherwise (``included`` marks the chunk's members behind the
+    quantiles)."""
     first, stop = span.start, span.stop
     block = Brackets(brackets.lower[span], brackets.upper[span])
-    cut_with = source.cut_with(key, name)
     kept_with = known.get(cut_with) if cut_with is not None else None
     if kept_with is not None:
         counts = source.candidate_counts(key, name, first, stop, kept_with.lower.shape[1])

@@ -215,12 +215,13 @@ class Finisher:
         count = int(included.sum())
         cells = brackets.lower.shape[0]
         known = {coarse.digest(): coarse, brackets.digest(): brackets}
+        cuts = {key: self.source.cut_with(key, variable.name) for key in keys}
         step = max(1, self.block_bytes // max(1, 8 * candidates_per_cell(
-            self.source, variable.name, keys, known, cells)))
+            self.source, variable.name, cuts, known, cells)))
         spans = [slice(first, min(first + step, cells)) for first in range(0, cells, step)]
 
         def select_block(span: slice) -> tuple[np.ndarray, np.ndarray]:
-            parts = [block_candidates(self.source, variable.name, key,
+            parts = [block_candidates(self.source, variable.name, key, cuts[key],
                                       included[key[1]:key[2]], span, brackets, known,
                                       workspace) for key in keys]
             below, nans, inside = summed_counts(parts, brackets.lower.shape[1])

@@ -3,10 +3,10 @@ whole or not at all, and the same dataset in memory (:func:`ensemble.simulate`).
 
 Both take their variables from a :class:`~ensemble.output.finish.Finisher` and their
 names, dimensions and attributes from :mod:`.dataset`.  The file is netCDF-4: the
-per-member variables are written by xarray while the quantiles of the trajectories are
-selected (netCDF compresses without the interpreter lock), then those quantiles and,
-when the result keeps them, every member's trajectories chunk by chunk are added with
-netCDF4.  It is written under a temporary name beside its final one and renamed into
+per-member variables are written by xarray and let go (for a million members of a
+16-group model they hold 2.4 GB), then the quantiles of the trajectories are selected
+and added with netCDF4, and, when the result keeps them, every member's trajectories
+chunk by chunk.  It is written under a temporary name beside its final one and renamed into
 place once complete (:func:`ensemble.durable.replace_atomically`); what makes a file a
 complete result is in :mod:`.result_file`.
 """
@@ -14,7 +14,6 @@ complete result is in :mod:`.result_file`.
 from __future__ import annotations
 
 import shutil
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import netCDF4
@@ -73,15 +72,11 @@ def _write_file(target: Path, finisher: Finisher) -> None:
     layout = finisher.layout
     variables = finisher.member_variables()
     included = in_summary(variables["status"])
-    dataset = build_dataset(layout, variables)
-    del variables
-    with ThreadPoolExecutor(1, "ensemble-result-writer") as writer:
-        written = writer.submit(dataset.to_netcdf, target, format="NETCDF4",
-                                engine="netcdf4", encoding=encoding(layout, dataset))
-        trajectory_quantiles = finisher.trajectory_quantiles(included)
-        written.result()
-    dataset.close()
-    append_variables(target, layout, trajectory_quantiles)
+    with build_dataset(layout, variables) as dataset:
+        dataset.to_netcdf(target, format="NETCDF4", engine="netcdf4",
+                          encoding=encoding(layout, dataset))
+    del variables, dataset      # the per-member arrays, before the quantiles' blocks
+    append_variables(target, layout, finisher.trajectory_quantiles(included))
     if layout.keep_members:
         write_trajectories(target, finisher)
 

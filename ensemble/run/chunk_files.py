@@ -31,6 +31,8 @@ from __future__ import annotations
 
 import concurrent.futures
 import errno
+import functools
+import io
 import os
 import re
 import shutil
@@ -391,38 +393,66 @@ def write_npy(path: Path, array: np.ndarray) -> None:
         handle.truncate()
 
 
-def _npy_shape(handle: BinaryIO) -> tuple[int, ...]:
-    """Read the header of the ``.npy`` file open in ``handle`` (which is left at the
-    start of the data) and return the array's shape."""
-    version = np.lib.format.read_magic(handle)
-    shape, _, _ = (np.lib.format.read_array_header_1_0(handle) if version == (1, 0)
-                   else np.lib.format.read_array_header_2_0(handle))
+NPY_MAGIC = b"\x93NUMPY"
+"""The first bytes of every ``.npy`` file (NEP 1, "A simple file format for NumPy
+arrays")."""
+
+
+@functools.lru_cache(maxsize=4096)
+def _npy_header(header: bytes) -> tuple[int, ...]:
+    """The shape an ``.npy`` header (magic string to the end of its dictionary) gives.
+
+    Cached by the header's bytes: the finish of a large run reads parts of every chunk's
+    files block after block, and chunks of one size have identical headers, so each
+    distinct header is parsed (``ast.literal_eval`` inside numpy) once."""
+    with io.BytesIO(header) as handle:
+        version = np.lib.format.read_magic(handle)
+        shape, _, _ = (np.lib.format.read_array_header_1_0(handle) if version == (1, 0)
+                       else np.lib.format.read_array_header_2_0(handle))
     return shape
 
 
-def _read_into(handle: BinaryIO, path: Path, first: int, out: np.ndarray) -> None:
-    """Read ``out.size`` float64 values of the open ``.npy`` file from flat index
-    ``first`` into the contiguous ``out`` (a read into memory already in use, rather
-    than a mapping of the file: cheaper where mapping pages costs, as on the test
-    machines)."""
-    handle.seek(handle.tell() + first * 8)
-    if handle.readinto(memoryview(out).cast("B")) != out.nbytes:
-        raise OSError(errno.EIO, f"{path} is shorter than its header says")
+def _npy_layout(descriptor: int, path: Path) -> tuple[int, tuple[int, ...]]:
+    """(where the data start, shape) of the ``.npy`` file open as ``descriptor``
+    (versions 1 and 2 of the format: the header's length in 2 or 4 little-endian bytes
+    after the magic string and version)."""
+    start = os.pread(descriptor, 12, 0)
+    if len(start) < 10 or not start.startswith(NPY_MAGIC):
+        raise OSError(errno.EIO, f"{path} is not an .npy file")
+    if start[6] == 1:
+        data = 10 + int.from_bytes(start[8:10], "little")
+    else:
+        data = 12 + int.from_bytes(start[8:12], "little")
+    try:
+        return data, _npy_header(os.pread(descriptor, data, 0))
+    except ValueError as error:
+        raise OSError(errno.EIO, f"{path} has a damaged header ({error})") from error
+
+
+def _read_at(path: Path, first: Callable[[tuple[int, ...]], int], out: np.ndarray) -> None:
+    """Read ``out.size`` 8-byte values of the ``.npy`` file ``path`` from flat index
+    ``first(shape)`` into the contiguous ``out``: one positioned read into memory already
+    in use (cheaper than mapping the file where mapping pages costs, as on the test
+    machines, and than a buffered file object for the many small reads of a finish)."""
+    descriptor = os.open(path, os.O_RDONLY)
+    try:
+        data, shape = _npy_layout(descriptor, path)
+        if os.preadv(descriptor, [memoryview(out).cast("B")],
+                     data + first(shape) * 8) != out.nbytes:
+            raise OSError(errno.EIO, f"{path} is shorter than its header says")
+    finally:
+        os.close(descriptor)
 
 
 def read_slab(path: Path, times: slice, rows: slice, out: np.ndarray) -> None:
     """Read ``[times, rows]`` of the time-major float64 ``.npy`` file ``path`` into the
     contiguous ``out``: one read, as the slab is contiguous in the file when it spans
     whole rows or a single time (the blocks of :func:`ensemble.output.finish.block_plan`)."""
-    with open(path, "rb") as handle:
-        _, n_rows, members = _npy_shape(handle)
-        _read_into(handle, path, (times.start * n_rows + rows.start) * members, out)
+    _read_at(path, lambda shape: (times.start * shape[1] + rows.start) * shape[2], out)
 
 
 def read_range(path: Path, first: int, out: np.ndarray) -> np.ndarray:
     """``out`` filled with the flat values ``first ..`` of the ``.npy`` file ``path``
     (float64 or int64: 8 bytes each, as ``out``)."""
-    with open(path, "rb") as handle:
-        _npy_shape(handle)
-        _read_into(handle, path, first, out)
+    _read_at(path, lambda shape: first, out)
     return out
