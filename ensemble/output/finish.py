@@ -33,8 +33,12 @@ from ensemble.output.sources import MemberSource
 from ensemble.output.variables import TrajectoryVariable
 from ensemble.records import ChunkKey
 
-DEFAULT_BLOCK_BYTES = 128 * 2**20
-"""Memory for one block of trajectories gathered over all members."""
+DEFAULT_BLOCK_BYTES = 384 * 2**20
+"""Memory for one block of trajectories (or of candidates) gathered over all members.
+Each block reads a piece of every chunk's files, so with thousands of chunks larger
+blocks mean fewer, larger reads (measured on a million members of a 16-group model,
+3,907 chunks: the selection was limited by opening files and reading a few kilobytes at
+a time with blocks of 128 MB); a thread holds about two blocks at a time."""
 
 FINISH_THREADS = min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
                      else os.cpu_count() or 1)
