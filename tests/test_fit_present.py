@@ -59,13 +59,27 @@ def test_the_fan_chart_draws_the_counts_the_fit_saw_on_every_panel(fitted):
         figure = fan_chart(dataset, "cases", band_quantiles(dataset, (50, 90)),
                            observed["cases"])
         windows = dataset["time_7d"].values
+        bounds = dataset["time_7d_bounds"].values
+        median = dataset["measure_cases_quantile"].sel(quantile=0.5).values
+        lines = [line for line in figure.axes[0].get_lines() if line.get_label() == "median"]
     try:
+        # each count is the count of a window of the measure (its date the window's end:
+        # 7, 14 and 21 days), drawn in the middle of that window
+        assert set(dates) <= set(windows)
+        middles = dates - np.timedelta64(84, "h")
         for panel in ("0-0", "0-1"):        # both variants' panels
             x, y = _points(figure, f"observed-fitted-{panel}")
-            np.testing.assert_array_equal(np.asarray(x, dtype="datetime64[ns]"), dates)
+            np.testing.assert_array_equal(np.asarray(x, dtype="datetime64[ns]"), middles)
             np.testing.assert_array_equal(y, values)
-        # each count sits at the end of a window of the measure (7, 14 and 21 days)
-        assert set(dates) <= set(windows)
+        # the median's step over a window spans it, from its start to its end, so the
+        # point lies on the step of the value it is compared with
+        x = np.asarray(lines[0].get_xdata(), dtype="datetime64[ns]")
+        np.testing.assert_array_equal(x, np.append(bounds[:, 0], bounds[-1, 1]))
+        assert lines[0].get_drawstyle() == "steps-post"
+        for middle in middles:
+            window = np.searchsorted(x, middle) - 1
+            assert bounds[window, 0] < middle < bounds[window, 1]
+            assert lines[0].get_ydata()[window] == median[0, window]
     finally:
         plt.close(figure)
 

@@ -10,7 +10,8 @@ result's caution in its footer.
 
 Observed counts are drawn as points on the panels of the measure they count: those a
 fit saw (the ``observation_*`` variables of a fit's result) as filled dots, and counts
-given later (``ensemble plot --observed``) as open circles, at the end of their window.
+given later (``ensemble plot --observed``) as open circles, each in the middle of the
+window it counts (a measure over windows is drawn as steps spanning each window).
 """
 
 from __future__ import annotations
@@ -129,7 +130,7 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
     time_dim = array.dims[-1]
     groups = list(array["group"].values) if "group" in array.dims else [None]
     figure, axes, variants = _panels(dataset, len(groups))
-    times = dataset[time_dim].values
+    axis_times = TimeAxis.of(dataset, time_dim)
     units = str(array.attrs.get("units", ""))
     for column, variant in enumerate(variants):
         for row, group in enumerate(groups):
@@ -138,18 +139,17 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
             if group is not None:
                 part = part.sel(group=group)
             for width, lower, upper in bands:
-                axis.fill_between(times, _quantile(part, lower), _quantile(part, upper),
+                axis.fill_between(axis_times.x, axis_times.values(_quantile(part, lower)),
+                                  axis_times.values(_quantile(part, upper)),
                                   color=LINE, alpha=BAND_ALPHA, linewidth=0,
-                                  step="pre" if time_dim != "time" else None,
-                                  label=f"{width}% of members")
-            axis.plot(times, _quantile(part, 0.5), color=LINE, linewidth=1.6,
-                      drawstyle="steps-pre" if time_dim != "time" else "default",
-                      label="median")
+                                  step=axis_times.step, label=f"{width}% of members")
+            axis.plot(axis_times.x, axis_times.values(_quantile(part, 0.5)), color=LINE,
+                      linewidth=1.6, drawstyle=axis_times.drawstyle, label="median")
             if predictive is not None and bands:
-                _draw_predictive(axis, predictive.sel(variant=variant), times,
-                                 max(bands), time_dim)
+                _draw_predictive(axis, predictive.sel(variant=variant), axis_times,
+                                 max(bands))
             for points in observed:
-                _draw_points(axis, points, f"{row}-{column}")
+                _draw_points(axis, points, axis_times, f"{row}-{column}")
             axis.grid(color="#dddddd", linewidth=0.6)
             heading = _title(dataset, variant) + (f" ({group})" if group else "")
             axis.set_title(heading, fontsize=9)
@@ -164,23 +164,67 @@ def fan_chart(dataset: xr.Dataset, name: str, bands: Sequence[tuple[int, float, 
     return figure
 
 
-def _draw_predictive(axis, array: xr.DataArray, times: np.ndarray,
-                     band: tuple[int, float, float], time_dim: str) -> None:
+@dataclass(frozen=True)
+class TimeAxis:
+    """Where a series is drawn along the time axis.
+
+    A measure counted over windows is drawn as steps, each window's value level over the
+    whole window (from its start to its end, the coordinate's CF bounds), and a count
+    observed over a window as a point in the middle of its window, inside the step it is
+    compared with; a daily series is drawn as a line through its times.
+
+    Attributes
+    ----------
+    x : the x values to draw at (every window's start, then the last window's end; or
+        the times).
+    half_window : how far before a window's end its middle lies (0 for a daily series).
+    step : ``fill_between``'s ``step`` (None for a line).
+    drawstyle : ``plot``'s ``drawstyle``.
+    """
+
+    x: np.ndarray
+    half_window: object
+    step: str | None
+    drawstyle: str
+
+    @classmethod
+    def of(cls, dataset: xr.Dataset, time_dim: str) -> TimeAxis:
+        times = dataset[time_dim].values
+        bounds = dataset[time_dim].attrs.get("bounds")
+        if time_dim == "time" or bounds not in dataset:
+            return cls(times, times[0] - times[0], None, "default")
+        edges = dataset[bounds].values
+        return cls(np.append(edges[:, 0], edges[-1, 1]), (edges[0, 1] - edges[0, 0]) / 2,
+                   "post", "steps-post")
+
+    def values(self, values: np.ndarray) -> np.ndarray:
+        """``values`` (one per time) as drawn at :attr:`x`: the last window's repeated
+        at its end, where its step closes."""
+        return values if self.step is None else np.append(values, values[-1])
+
+    def points(self, times: np.ndarray) -> np.ndarray:
+        """Where counts observed at ``times`` (the ends of their windows) are drawn."""
+        return times - self.half_window
+
+
+def _draw_predictive(axis, array: xr.DataArray, axis_times: TimeAxis,
+                     band: tuple[int, float, float]) -> None:
     """The widest ``band`` of the counts as observed (observation noise included) as
     dashed bounds: where observed counts are expected to fall."""
     width, lower, upper = band
-    style = "steps-pre" if time_dim != "time" else "default"
     for probability, label in ((lower, f"{width}% of counts as observed"), (upper, None)):
-        axis.plot(times, _quantile(array, probability), color=LINE, linewidth=0.9,
-                  linestyle="--", drawstyle=style, label=label)
+        axis.plot(axis_times.x, axis_times.values(_quantile(array, probability)),
+                  color=LINE, linewidth=0.9, linestyle="--",
+                  drawstyle=axis_times.drawstyle, label=label)
 
 
-def _draw_points(axis, points: ObservedPoints, panel: str) -> None:
-    """``points`` on ``axis``: filled dots for counts a fit saw, open circles for later
-    ones."""
+def _draw_points(axis, points: ObservedPoints, axis_times: TimeAxis, panel: str) -> None:
+    """``points`` on ``axis``, each in the middle of its window: filled dots for counts a
+    fit saw, open circles for later ones."""
     seen = np.isfinite(points.values)
     filled = points.kind == "fitted"
-    axis.plot(points.times[seen], points.values[seen], linestyle="none", marker="o",
+    axis.plot(axis_times.points(points.times[seen]), points.values[seen],
+              linestyle="none", marker="o",
               markersize=4, color=OBSERVED, markerfacecolor=OBSERVED if filled else "none",
               label=points.label, gid=f"observed-{points.kind}-{panel}", zorder=3)
 
