@@ -15,7 +15,7 @@ line.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from fractions import Fraction
 from pathlib import Path
 
@@ -26,31 +26,18 @@ from ensemble.fit.counts_file import read_counts
 from ensemble.scenario.schema import Measure, Observation, Scenario
 
 
-@dataclass(frozen=True)
-class ObservedSeries:
-    """One observed series, checked against the scenario.
+@dataclass(frozen=True, kw_only=True)
+class ObservedSeries(Observation):
+    """One observed series with its counts, checked against the scenario: the table's
+    :class:`~ensemble.scenario.schema.Observation` with ``file`` resolved against the
+    scenario's directory, and
 
     Attributes
     ----------
-    key : the table's key path (``observations[0]``).
-    file : the counts file, resolved against the scenario's directory.
-    measure : the measure observed.
-    distribution : ``"poisson"`` or ``"negative-binomial"``.
-    dispersion : k of the negative binomial (a number or a parameter's name); None for
-        a Poisson series.
-    reporting : the fraction reported (a number or a parameter's name).
-    delay : days between the end of a window and the date its count carries.
     times : each row's time in the model, in days since the start (window ends).
     counts : each row's count, NaN where missing.
     """
 
-    key: str
-    file: str
-    measure: str
-    distribution: str
-    dispersion: float | str | None
-    reporting: float | str
-    delay: float
     times: np.ndarray
     counts: np.ndarray
 
@@ -89,9 +76,8 @@ def _read_series(scenario: Scenario, observation: Observation) -> ObservedSeries
                                  f"not the end of a window of measure {measure.name!r} "
                                  f"(every {float(measure.window):g} days from the "
                                  "start, after the delay)")
-    return ObservedSeries(observation.key, str(file), measure.name, observation.distribution,
-                          observation.dispersion, observation.reporting, observation.delay,
-                          times, counts.values)
+    table = {field.name: getattr(observation, field.name) for field in fields(Observation)}
+    return ObservedSeries(**table | {"file": str(file)}, times=times, counts=counts.values)
 
 
 def _grid(scenario: Scenario, measure: Measure) -> np.ndarray:
