@@ -38,6 +38,16 @@ def test_work_is_members_times_steps_times_the_check_runs(tmp_path: Path) -> Non
     assert estimate(scenario, members=10).member_steps == 2 * 10 * 120 * 3
 
 
+def test_the_time_estimate_counts_the_rows_of_a_member(tmp_path: Path) -> None:
+    """Worked by hand: the SEIR town has 4 compartments and 3 flows, so a member-step is 7
+    row-steps, and the time is the row-steps over the measured pace times the cores
+    (2 variants x 40 members x 120 steps x 3 runs x 7 rows at 2e8 a core-second)."""
+    scenario = api.load_scenario(write_scenario(tmp_path, members=40, days=30, step=0.25))
+    figures = estimate(scenario)
+    assert figures.row_steps == 2 * 40 * 120 * 3 * 7
+    assert figures.hours(2) * 3600 == pytest.approx(2 * 40 * 120 * 3 * 7 / (2e8 * 2))
+
+
 def test_measures_add_their_series_and_metrics_to_the_sizes(tmp_path: Path) -> None:
     """Worked by hand: a stock measure reported at the 31 times of 30 days and a flow
     measure over 5-day windows (6 windows) add 31 + 6 values of each member's series to

@@ -31,12 +31,16 @@ of the integrators stay far from their limits (common practice, no source)."""
 
 MAX_MEMBER_STEPS = 1e18
 """Most member-steps of a run (every run of the step check counted): more than a week on
-ten thousand cores at :data:`MEMBER_STEPS_PER_CORE_SECOND` (common practice, no source)."""
+ten thousand cores of the compiled kernels' pace on a small model (common practice, no
+source)."""
 
-MEMBER_STEPS_PER_CORE_SECOND = 5e7
-"""A rough pace of the compiled kernels, measured with ``scripts/benchmark.py`` on the
-four-compartment SEIR demo (about 8.8e8 member-steps in 8 s on two cores); larger models
-are slower.  Used only to say how long a run may take."""
+ROW_STEPS_PER_CORE_SECOND = 2e8
+"""A rough end-to-end pace of ``ensemble run`` with the compiled kernels, in row-steps
+(member-steps times the rows of a member's state: compartments and flows in every group)
+per core and second.  Measured on two cores (``scripts/benchmark.py``, step check on):
+2.6e8 for 200,000 members of the four-compartment SEIR (7 rows, 11.7 s) and 2.0e8 for a
+million members of the 16-group SEIR (112 rows, 20.6 minutes); the slower is kept.  Used
+only to say how long a run may take."""
 
 COMPRESSION_ALLOWANCE = 4.0
 """The result file is taken to be at least a quarter of its uncompressed size: zlib with
@@ -74,6 +78,8 @@ class Estimate:
     steps_per_report : integration steps between two reported times.
     member_steps : steps of integration over every member, variant and run of the step
         check (a run at h / r takes r times the steps).
+    row_steps : ``member_steps`` times the rows of a member's state (compartments and
+        flows in every group): the work the time estimate counts.
     driver_bytes : memory the driver holds for every member's values at the finish.
     work_bytes : the work directory's saved chunks (uncompressed).
     file_bytes : the result file, uncompressed.
@@ -83,13 +89,14 @@ class Estimate:
     variants: int
     steps_per_report: int
     member_steps: float
+    row_steps: float
     driver_bytes: float
     work_bytes: float
     file_bytes: float
 
     def hours(self, cores: int) -> float:
         """Rough hours of computing on ``cores`` cores."""
-        return self.member_steps / (MEMBER_STEPS_PER_CORE_SECOND * max(cores, 1)) / 3600
+        return self.row_steps / (ROW_STEPS_PER_CORE_SECOND * max(cores, 1)) / 3600
 
     def lines(self, cores: int) -> list[str]:
         """The figures as lines for ``ensemble check``."""
@@ -122,9 +129,10 @@ def estimate(scenario: Scenario, members: int | None = None) -> Estimate:
     if not scenario.output.keep_members and members > KEPT_WHOLE_MEMBERS:
         kept = (KEPT_WHOLE_MEMBERS + CANDIDATE_SHARE * (members - KEPT_WHOLE_MEMBERS)) / members
     count = float(variants) * members
+    member_steps = count * _as_float(scenario.days / solver.step) * runs
     return Estimate(
         members=members, variants=variants, steps_per_report=solver.steps_per_report,
-        member_steps=count * _as_float(scenario.days / solver.step) * runs,
+        member_steps=member_steps, row_steps=member_steps * rows,
         driver_bytes=count * per_member,
         work_bytes=count * (per_member + kept * trajectory),
         file_bytes=count * (per_member + (trajectory if scenario.output.keep_members else 0)))
