@@ -3,7 +3,8 @@
 compiled backend, on the default local workers (dask threads of this process, one per
 core, so the peak memory below is the whole fit's). Prints each round, the wall time of
 the sampler and of the whole fit (kernel compilation excluded: one small fit first fills
-the kernel cache), and the peak resident memory. The goal it is measured against: two minutes on 2 cores.
+the kernel cache), and the peak resident memory. The goal it is measured against: two
+minutes on 2 cores.
 
 Usage: .venv/bin/python scripts/fit_scale.py [PARTICLES]
 """

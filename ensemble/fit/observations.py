@@ -15,7 +15,7 @@ line.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
 
@@ -76,8 +76,8 @@ def _read_series(scenario: Scenario, observation: Observation) -> ObservedSeries
                                  f"not the end of a window of measure {measure.name!r} "
                                  f"(every {float(measure.window):g} days from the "
                                  "start, after the delay)")
-    table = {field.name: getattr(observation, field.name) for field in fields(Observation)}
-    return ObservedSeries(**table | {"file": str(file)}, times=times, counts=counts.values)
+    return ObservedSeries(**{**vars(observation), "file": str(file)}, times=times,
+                          counts=counts.values)
 
 
 def _grid(scenario: Scenario, measure: Measure) -> np.ndarray:

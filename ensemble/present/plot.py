@@ -179,23 +179,26 @@ class TimeAxis:
         the times).
     half_window : how far before a window's end its middle lies (0 for a daily series).
     step : ``fill_between``'s ``step`` (None for a line).
-    drawstyle : ``plot``'s ``drawstyle``.
     """
 
     x: np.ndarray
     half_window: object
     step: str | None
-    drawstyle: str
 
     @classmethod
     def of(cls, dataset: xr.Dataset, time_dim: str) -> TimeAxis:
         times = dataset[time_dim].values
         bounds = dataset[time_dim].attrs.get("bounds")
         if time_dim == "time" or bounds not in dataset:
-            return cls(times, times[0] - times[0], None, "default")
+            return cls(times, times[0] - times[0], None)
         edges = dataset[bounds].values
         return cls(np.append(edges[:, 0], edges[-1, 1]), (edges[0, 1] - edges[0, 0]) / 2,
-                   "post", "steps-post")
+                   "post")
+
+    @property
+    def drawstyle(self) -> str:
+        """``plot``'s ``drawstyle`` matching :attr:`step`."""
+        return "default" if self.step is None else f"steps-{self.step}"
 
     def values(self, values: np.ndarray) -> np.ndarray:
         """``values`` (one per time) as drawn at :attr:`x`: the last window's repeated

@@ -124,29 +124,27 @@ class LocalStart:
     @staticmethod
     def _start(workers: int, processes: bool, dashboard: str | None
                ) -> tuple[LocalCluster, Client]:
-        settings = {} if dashboard is not None else dict(NO_PAGES)
+        settings = SHORT_LOGS | ({} if dashboard is not None else NO_PAGES)
         scheduler = {"dashboard": dashboard is not None,
                      "dashboard_address": dashboard or LOOPBACK_ANY_PORT}
-        if processes:
-            with dask.config.set(settings | SHORT_LOGS | KEEP_FREED_MEMORY):
+        with dask.config.set(settings | (KEEP_FREED_MEMORY if processes else {})):
+            if processes:
                 cluster = LocalCluster(
                     n_workers=workers, threads_per_worker=1, processes=True,
                     scheduler_kwargs=scheduler, silence_logs=logging.ERROR,
                     env=dict(SINGLE_THREAD_ENV))
-        else:
-            with dask.config.set(settings | SHORT_LOGS):
+            else:
                 cluster = LocalCluster(
                     n_workers=1, threads_per_worker=workers, processes=False,
                     worker_class=LoopbackWorker, scheduler_kwargs=scheduler,
                     silence_logs=logging.ERROR)
-        try:
-            with dask.config.set(SHORT_LOGS):
+            try:
                 client = Client(cluster)
-            if processes:   # thread workers share the driver's imports and signals
-                client.register_plugin(WarmWorker())
-        except BaseException:
-            cluster.close()
-            raise
+                if processes:   # thread workers share the driver's imports and signals
+                    client.register_plugin(WarmWorker())
+            except BaseException:
+                cluster.close()
+                raise
         return cluster, client
 
     def client(self) -> Client:
