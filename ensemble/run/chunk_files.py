@@ -393,6 +393,11 @@ def write_npy(path: Path, array: np.ndarray) -> None:
         handle.truncate()
 
 
+NPY_HEADER_PEEK = 256
+"""Bytes read at the start of an ``.npy`` file to find its header: numpy pads a header to
+a multiple of 64 bytes, and those of chunk files (a shape of up to three numbers) take
+128; a longer one is read again whole."""
+
 NPY_MAGIC = b"\x93NUMPY"
 """The first bytes of every ``.npy`` file (NEP 1, "A simple file format for NumPy
 arrays")."""
@@ -416,15 +421,16 @@ def _npy_layout(descriptor: int, path: Path) -> tuple[int, tuple[int, ...]]:
     """(where the data start, shape) of the ``.npy`` file open as ``descriptor``
     (versions 1 and 2 of the format: the header's length in 2 or 4 little-endian bytes
     after the magic string and version)."""
-    start = os.pread(descriptor, 12, 0)
+    start = os.pread(descriptor, NPY_HEADER_PEEK, 0)
     if len(start) < 10 or not start.startswith(NPY_MAGIC):
         raise OSError(errno.EIO, f"{path} is not an .npy file")
     if start[6] == 1:
         data = 10 + int.from_bytes(start[8:10], "little")
     else:
         data = 12 + int.from_bytes(start[8:12], "little")
+    header = start[:data] if data <= len(start) else os.pread(descriptor, data, 0)
     try:
-        return data, _npy_header(os.pread(descriptor, data, 0))
+        return data, _npy_header(header)
     except ValueError as error:
         raise OSError(errno.EIO, f"{path} has a damaged header ({error})") from error
 
