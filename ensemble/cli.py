@@ -225,8 +225,9 @@ def _reported(work: Path | None = None) -> Iterator[None]:
     error's exit status (:mod:`ensemble.errors`: 2 for invalid input, nothing written; 1
     for a failed run).  An interrupt exits 130; an operating-system error the run did not
     expect exits 1.  A failed or interrupted run says how many finished chunks its work in
-    progress ``work`` keeps for ``--resume``, when it keeps any (:func:`_kept`)."""
-    from ensemble.errors import EnsembleError
+    progress ``work`` keeps for ``--resume``, when it keeps any (:func:`_kept`); an
+    interrupt after the result was written says that the result is complete."""
+    from ensemble.errors import EnsembleError, InterruptedAfterWriting
 
     try:
         yield
@@ -236,6 +237,9 @@ def _reported(work: Path | None = None) -> Iterator[None]:
             lines[-1] += _kept(work)
         typer.echo("\n".join(f"error: {line}" for line in lines), err=True)
         raise typer.Exit(error.exit_status) from None
+    except InterruptedAfterWriting as interrupt:
+        typer.echo(str(interrupt), err=True)
+        raise typer.Exit(INTERRUPTED) from None
     except KeyboardInterrupt:
         typer.echo(f"interrupted{_kept(work)}", err=True)
         raise typer.Exit(INTERRUPTED) from None

@@ -13,6 +13,9 @@ Every error the command line turns into a message is an :class:`EnsembleError`, 
   about result, work-in-progress and part files.
 - :class:`RunError` (status 1, finished work kept): a run failed while it was computing
   (:class:`RunFailed`) or writing (:class:`StoreWriteError`, :class:`IncompleteWork`).
+
+:class:`InterruptedAfterWriting` is not an error but an interrupt (status 130) that came
+too late to cost anything: its message says the result is complete.
 """
 
 from __future__ import annotations
@@ -143,6 +146,16 @@ class StoreWriteError(RunError):
 
 class IncompleteWork(RunError):
     """A result was to be written before every one of its members was saved."""
+
+
+class InterruptedAfterWriting(KeyboardInterrupt):
+    """An interrupt that came once the result file was complete, while its work in
+    progress was being removed: the result is whole and what is left of the work
+    directory is no longer needed (exit status 130 all the same, as for any interrupt)."""
+
+    def __init__(self, result: object, work: object):
+        super().__init__(f"interrupted after {result} was written: the result is complete, "
+                         f"and what is left of {work} is no longer needed")
 
 
 def did_you_mean(word: str, choices: Iterable[str]) -> str | None:

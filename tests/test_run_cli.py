@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import os
 import re
+import shutil
 import signal
 import subprocess
 from pathlib import Path
@@ -26,7 +27,7 @@ import pytest
 
 import ensemble
 from ensemble import api
-from support import (assert_same_numbers, ensemble_command, run_cli, saved_chunks,
+from support import (assert_same_numbers, ensemble_command, invoke_cli, run_cli, saved_chunks,
                      wait_for_saved_chunks, write_scenario)
 
 SLOW = {"members": 16, "days": 60, "step": 1 / 256}
@@ -190,6 +191,31 @@ def test_interrupt_exits_130_and_keeps_finished_work(
     saved = len(saved_chunks(work))
     assert 1 <= saved < TOTAL_CHUNKS, "the run had no work in flight when it was signalled"
     resume_and_compare(tmp_path, saved, uninterrupted)
+
+
+def test_interrupt_while_the_work_directory_is_removed_says_the_result_is_complete(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Ctrl-C that lands once the result file is in place, while ``result.nc.partial``
+    is being removed: exit status 130 as for any interrupt, but the line says the result
+    is complete (it is: it equals an uninterrupted run) instead of offering a resume."""
+    scenario = write_scenario(tmp_path, members=12)
+    reference = api.run(scenario, output=tmp_path / "reference.nc", workers=0,
+                        progress=False)
+    remove = shutil.rmtree
+
+    def interrupted_removal(path, *args, **kwargs) -> None:
+        if Path(path).name == "result.nc.partial":
+            remove(next(Path(path).glob("chunk-*")))    # part of it is gone already
+            raise KeyboardInterrupt
+        remove(path, *args, **kwargs)
+
+    monkeypatch.setattr(shutil, "rmtree", interrupted_removal)
+    done = invoke_cli("run", scenario, "--workers", "0", cwd=tmp_path)
+    assert done.returncode == 130, done.stderr
+    assert done.stderr.splitlines()[-1] == (
+        "interrupted after result.nc was written: the result is complete, "
+        "and what is left of result.nc.partial is no longer needed")
+    assert_same_numbers(tmp_path / "result.nc", reference)
 
 
 def test_without_dashboard_no_address_is_printed(tmp_path: Path) -> None:

@@ -48,8 +48,8 @@ import numpy as np
 import psutil
 
 from ensemble.durable import fsync_directory, replace_atomically
-from ensemble.errors import (FingerprintMismatch, IncompleteWork, ResultExists, StoreWriteError,
-                             WorkInProgress)
+from ensemble.errors import (FingerprintMismatch, IncompleteWork, InterruptedAfterWriting,
+                             ResultExists, StoreWriteError, WorkInProgress)
 from ensemble.output.brackets import FILE_PREFIX, BracketCache
 from ensemble.output.finish import DEFAULT_BLOCK_BYTES, Finisher
 from ensemble.output.layout import ResultLayout
@@ -489,7 +489,10 @@ class WorkJournal:
             self.largest_block_bytes = max(self.largest_block_bytes,
                                            finisher.largest_block_bytes)
             # the result is complete; a leftover work directory is only clutter
-            shutil.rmtree(self.work, ignore_errors=True)
+            try:
+                shutil.rmtree(self.work, ignore_errors=True)
+            except KeyboardInterrupt:
+                raise InterruptedAfterWriting(self.path, self.work) from None
         finally:
             self.close()
         return self.path
