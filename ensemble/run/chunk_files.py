@@ -398,11 +398,6 @@ NPY_HEADER_PEEK = 256
 a multiple of 64 bytes, and those of chunk files (a shape of up to three numbers) take
 128; a longer one is read again whole."""
 
-NPY_MAGIC = b"\x93NUMPY"
-"""The first bytes of every ``.npy`` file (NEP 1, "A simple file format for NumPy
-arrays")."""
-
-
 @functools.lru_cache(maxsize=4096)
 def _npy_header(header: bytes) -> tuple[int, ...]:
     """The shape an ``.npy`` header (magic string to the end of its dictionary) gives.
@@ -422,7 +417,7 @@ def _npy_layout(descriptor: int, path: Path) -> tuple[int, tuple[int, ...]]:
     (versions 1 and 2 of the format: the header's length in 2 or 4 little-endian bytes
     after the magic string and version)."""
     start = os.pread(descriptor, NPY_HEADER_PEEK, 0)
-    if len(start) < 10 or not start.startswith(NPY_MAGIC):
+    if len(start) < 10 or not start.startswith(np.lib.format.MAGIC_PREFIX):
         raise OSError(errno.EIO, f"{path} is not an .npy file")
     if start[6] == 1:
         data = 10 + int.from_bytes(start[8:10], "little")

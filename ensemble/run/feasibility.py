@@ -78,8 +78,7 @@ class Estimate:
     steps_per_report : integration steps between two reported times.
     member_steps : steps of integration over every member, variant and run of the step
         check (a run at h / r takes r times the steps).
-    row_steps : ``member_steps`` times the rows of a member's state (compartments and
-        flows in every group): the work the time estimate counts.
+    rows : the rows of a member's state (compartments and flows in every group).
     driver_bytes : memory the driver holds for every member's values at the finish.
     work_bytes : the work directory's saved chunks (uncompressed).
     file_bytes : the result file, uncompressed.
@@ -89,10 +88,15 @@ class Estimate:
     variants: int
     steps_per_report: int
     member_steps: float
-    row_steps: float
+    rows: int
     driver_bytes: float
     work_bytes: float
     file_bytes: float
+
+    @property
+    def row_steps(self) -> float:
+        """``member_steps`` times :attr:`rows`: the work the time estimate counts."""
+        return self.member_steps * self.rows
 
     def hours(self, cores: int) -> float:
         """Rough hours of computing on ``cores`` cores."""
@@ -129,10 +133,9 @@ def estimate(scenario: Scenario, members: int | None = None) -> Estimate:
     if not scenario.output.keep_members and members > KEPT_WHOLE_MEMBERS:
         kept = (KEPT_WHOLE_MEMBERS + CANDIDATE_SHARE * (members - KEPT_WHOLE_MEMBERS)) / members
     count = float(variants) * members
-    member_steps = count * _as_float(scenario.days / solver.step) * runs
     return Estimate(
         members=members, variants=variants, steps_per_report=solver.steps_per_report,
-        member_steps=member_steps, row_steps=member_steps * rows,
+        member_steps=count * _as_float(scenario.days / solver.step) * runs, rows=rows,
         driver_bytes=count * per_member,
         work_bytes=count * (per_member + kept * trajectory),
         file_bytes=count * (per_member + (trajectory if scenario.output.keep_members else 0)))
